@@ -1,0 +1,32 @@
+# Everything a fresh machine needs: `make test` and `make run` build .venv from nothing.
+PYTHON ?= python3.11
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: run test lint bench openapi clean
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+run: $(STAMP)
+	$(BIN)/heedful demo-data --out demo
+	$(BIN)/heedful lint demo/instrument.json
+	$(BIN)/heedful screen demo/responses.csv --instrument demo/instrument.json --out demo/screened.csv
+
+test: $(STAMP)
+	$(BIN)/ruff check detectors service tests
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python tests/benchmarks/bench_detectors.py
+	$(BIN)/python tests/benchmarks/bench_screen_cli.py
+
+openapi: $(STAMP)
+	$(BIN)/heedful openapi --out openapi/openapi.json
+
+clean:
+	rm -rf $(VENV) demo .pytest_cache

@@ -1,0 +1,340 @@
+"""The contract every detector follows, and the checks of detector settings.
+
+A detector is a class with keyword-only settings stored under their own names (nothing is
+checked in ``__init__``); ``screen`` checks the settings against ``parameter_constraints`` and
+returns a :class:`DetectorResult`. Higher scores are always more suspect; the cut-off is a
+separate per-respondent array, and ``flags == (scores >= cutoffs)`` wherever the state is
+``assessed``.
+"""
+
+from __future__ import annotations
+
+import inspect
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from enum import IntEnum
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .errors import SettingError
+from .instrument import Instrument
+from .responses import ResponseMatrix
+
+__all__ = [
+    "Detector",
+    "DetectorResult",
+    "Interval",
+    "Options",
+    "State",
+    "FAMILIES",
+]
+
+#: Kinds of evidence; style flags are reported but are not evidence of carelessness.
+FAMILIES = ("invariance", "inconsistency", "outlier", "effort", "style")
+
+
+class State(IntEnum):
+    """Whether a detector could judge a respondent."""
+
+    ASSESSED = 0
+    NOT_ASSESSED = 1  # the index applies but this respondent's data cannot support it (reason given)
+    NOT_APPLICABLE = 2  # the index does not apply to this instrument (reason given)
+
+    @property
+    def label(self) -> str:
+        return self.name.lower()
+
+
+# Settings constraints, declared as data ---------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Interval:
+    """A number (``int`` or ``float``) within bounds; ``closed`` says which ends are included."""
+
+    kind: type
+    low: float | None = None
+    high: float | None = None
+    closed: str = "both"  # both, left, right, neither
+    allow_none: bool = False
+
+    def accepts(self, value: Any) -> bool:
+        if value is None:
+            return self.allow_none
+        if isinstance(value, bool):
+            return False
+        if self.kind is int and not isinstance(value, int | np.integer):
+            return False
+        if self.kind is float and not isinstance(value, int | float | np.integer | np.floating):
+            return False
+        if self.kind is float and not math.isfinite(float(value)):
+            return False
+        if self.low is not None:
+            if value < self.low or (value == self.low and self.closed in ("right", "neither")):
+                return False
+        if self.high is not None:
+            if value > self.high or (value == self.high and self.closed in ("left", "neither")):
+                return False
+        return True
+
+    def describe(self) -> str:
+        noun = "an integer" if self.kind is int else "a number"
+        if self.low is not None and self.high is not None:
+            left = "[" if self.closed in ("both", "left") else "("
+            right = "]" if self.closed in ("both", "right") else ")"
+            text = f"{noun} in {left}{self.low:g}, {self.high:g}{right}"
+        elif self.low is not None:
+            text = f"{noun} {'>=' if self.closed in ('both', 'left') else '>'} {self.low:g}"
+        elif self.high is not None:
+            text = f"{noun} {'<=' if self.closed in ('both', 'right') else '<'} {self.high:g}"
+        else:
+            text = noun
+        return text + (" or null" if self.allow_none else "")
+
+
+@dataclass(frozen=True)
+class Options:
+    """One of a closed set of values."""
+
+    values: tuple[Any, ...]
+
+    def accepts(self, value: Any) -> bool:
+        return value in self.values
+
+    def describe(self) -> str:
+        return "one of " + ", ".join(repr(v) for v in self.values)
+
+
+# Results ------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class DetectorResult:
+    """What one detector found for every respondent of a matrix.
+
+    Attributes
+    ----------
+    name, version : str
+    params : mapping
+        The settings used.
+    scores : ndarray of float64, shape (n,)
+        Higher = more suspect; NaN where the state is not ``assessed``.
+    cutoffs : ndarray of float64, shape (n,)
+        Score at or above which a respondent is flagged (per respondent, since some cut-offs
+        depend on how many items were answered).
+    flags : ndarray of bool, shape (n,)
+        ``scores >= cutoffs`` where assessed; False elsewhere.
+    states : ndarray of int8, shape (n,)
+        :class:`State` codes.
+    reasons : ndarray of object, shape (n,)
+        Why a respondent was not assessed or why the index does not apply; None when assessed.
+    evidence : mapping of str to ndarray
+        Structured values per respondent (first axis n), read by ``sentence``.
+    item_ids : tuple of str
+        The instrument's item ids, for turning item positions in the evidence into names.
+    """
+
+    name: str
+    version: str
+    family: str
+    params: Mapping[str, Any]
+    scores: np.ndarray
+    cutoffs: np.ndarray
+    flags: np.ndarray
+    states: np.ndarray
+    reasons: np.ndarray
+    evidence: Mapping[str, np.ndarray]
+    item_ids: tuple[str, ...]
+    describe: Callable[[Mapping[str, Any], tuple[str, ...]], str] = field(repr=False)
+
+    def __len__(self) -> int:
+        return len(self.scores)
+
+    def state_of(self, i: int) -> State:
+        return State(int(self.states[i]))
+
+    def evidence_for(self, i: int) -> dict[str, Any]:
+        """Evidence of respondent ``i`` as plain Python values (JSON-ready)."""
+        out: dict[str, Any] = {}
+        for key, values in self.evidence.items():
+            value = values[i]
+            if isinstance(value, np.ndarray):
+                value = value.tolist()
+            elif isinstance(value, np.generic):
+                value = value.item()
+            if isinstance(value, float) and math.isnan(value):
+                value = None
+            out[key] = value
+        return out
+
+    def sentence_for(self, i: int) -> str:
+        """One sentence a reviewer can read about respondent ``i``."""
+        state = self.state_of(i)
+        if state is not State.ASSESSED:
+            return f"{self.name}: {state.label.replace('_', ' ')} ({self.reasons[i]})."
+        return self.describe(self.evidence_for(i), self.item_ids)
+
+
+# The base class -----------------------------------------------------------------------------------
+
+
+class Detector:
+    """Base class of every detector.
+
+    Subclasses declare ``name``, ``family``, ``summary``, ``reference`` and
+    ``parameter_constraints``; take their settings as keyword-only ``__init__`` arguments with
+    defaults, stored unchanged under the same names; and implement ``_screen`` (and ``_fit``
+    when ``needs_sample``).
+    """
+
+    name: ClassVar[str]
+    version: ClassVar[str] = "1"
+    family: ClassVar[str]
+    summary: ClassVar[str]
+    reference: ClassVar[str]
+    #: True when the detector needs a reference sample (estimated by ``fit``).
+    needs_sample: ClassVar[bool] = False
+    parameter_constraints: ClassVar[dict[str, Interval | Options]] = {}
+
+    # Settings ---------------------------------------------------------------------------------
+
+    @classmethod
+    def setting_names(cls) -> list[str]:
+        signature = inspect.signature(cls.__init__)
+        return [p.name for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY]
+
+    @classmethod
+    def defaults(cls) -> dict[str, Any]:
+        signature = inspect.signature(cls.__init__)
+        return {
+            p.name: p.default
+            for p in signature.parameters.values()
+            if p.kind is p.KEYWORD_ONLY
+        }
+
+    def get_params(self) -> dict[str, Any]:
+        return {name: getattr(self, name) for name in self.setting_names()}
+
+    @classmethod
+    def check_settings(cls, settings: Mapping[str, Any]) -> None:
+        """Raise SettingError for an unknown setting or a value outside its constraint."""
+        names = cls.setting_names()
+        for key, value in settings.items():
+            if key not in names:
+                raise SettingError(
+                    cls.name,
+                    key,
+                    f"{cls.name} has no setting {key!r}; its settings are: {', '.join(names)}.",
+                )
+            constraint = cls.parameter_constraints.get(key)
+            if constraint is not None and not constraint.accepts(value):
+                raise SettingError(
+                    cls.name,
+                    key,
+                    f"The {key!r} setting of {cls.name} must be {constraint.describe()}; "
+                    f"got {value!r}.",
+                )
+
+    @classmethod
+    def from_settings(cls, *layers: Mapping[str, Any] | None) -> Detector:
+        """Build with defaults overridden by each layer in turn (instrument, then caller)."""
+        merged: dict[str, Any] = {}
+        for layer in layers:
+            if layer:
+                cls.check_settings(layer)
+                merged.update(layer)
+        return cls(**merged)
+
+    # Screening --------------------------------------------------------------------------------
+
+    def fit(self, instrument: Instrument, matrix: ResponseMatrix) -> dict[str, Any] | None:
+        """Estimate the reference this detector needs from a sample (JSON-ready), or None."""
+        self.check_settings(self.get_params())
+        if not self.needs_sample:
+            return None
+        return self._fit(instrument, matrix)
+
+    def screen(
+        self,
+        instrument: Instrument,
+        matrix: ResponseMatrix,
+        reference: Mapping[str, Any] | None = None,
+    ) -> DetectorResult:
+        """Score every respondent of ``matrix``.
+
+        A detector that needs a sample uses ``reference`` when given (from an earlier ``fit``),
+        otherwise it estimates one from ``matrix`` itself.
+        """
+        self.check_settings(self.get_params())
+        if self.needs_sample and reference is None:
+            reference = self._fit(instrument, matrix)
+        return self._screen(instrument, matrix, reference)
+
+    def _fit(self, instrument: Instrument, matrix: ResponseMatrix) -> dict[str, Any]:
+        raise NotImplementedError
+
+    def _screen(
+        self,
+        instrument: Instrument,
+        matrix: ResponseMatrix,
+        reference: Mapping[str, Any] | None,
+    ) -> DetectorResult:
+        raise NotImplementedError
+
+    @staticmethod
+    def _sentence(evidence: Mapping[str, Any], item_ids: tuple[str, ...]) -> str:
+        raise NotImplementedError
+
+    # Helpers for subclasses -------------------------------------------------------------------
+
+    def _result(
+        self,
+        instrument: Instrument,
+        scores: np.ndarray,
+        cutoffs: np.ndarray | float,
+        states: np.ndarray,
+        reasons: np.ndarray,
+        evidence: Mapping[str, np.ndarray],
+    ) -> DetectorResult:
+        """Assemble a result; scores outside ``assessed`` become NaN and flags follow the cut-off."""
+        n = len(scores)
+        scores = np.asarray(scores, dtype=np.float64).copy()
+        cutoffs = np.broadcast_to(np.asarray(cutoffs, dtype=np.float64), (n,)).copy()
+        assessed = states == State.ASSESSED
+        scores[~assessed] = np.nan
+        flags = np.zeros(n, dtype=bool)
+        np.greater_equal(scores, cutoffs, out=flags, where=assessed)
+        return DetectorResult(
+            name=self.name,
+            version=self.version,
+            family=self.family,
+            params=self.get_params(),
+            scores=scores,
+            cutoffs=cutoffs,
+            flags=flags,
+            states=states.astype(np.int8),
+            reasons=reasons,
+            evidence=dict(evidence),
+            item_ids=instrument.item_ids,
+            describe=self._sentence,
+        )
+
+
+def new_states(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """All-assessed state codes and empty reasons for n respondents."""
+    return np.zeros(n, dtype=np.int8), np.full(n, None, dtype=object)
+
+
+def mark(
+    states: np.ndarray, reasons: np.ndarray, where: np.ndarray | slice, state: State, reason: str
+) -> None:
+    """Set ``state`` with ``reason`` for the selected respondents (in place)."""
+    states[where] = state
+    reasons[where] = reason
+
+
+def item_range(item_ids: tuple[str, ...], first: int, last: int) -> str:
+    """'q05 to q18' (or one id) for evidence sentences."""
+    return item_ids[first] if first == last else f"{item_ids[first]} to {item_ids[last]}"

@@ -1,0 +1,59 @@
+"""Name-to-class registry of every detector; the only list of detectors in the project.
+
+The web service, the CLI and the exports discover detectors here, so adding a detector is:
+write its module, add it to ``_DETECTORS`` below, write its tests.
+"""
+
+from __future__ import annotations
+
+from .acquiescence import Acquiescence
+from .errors import FieldProblem, InstrumentError, SettingError
+from .extreme_style import ExtremeStyle
+from .long_string import LongString
+from .mahalanobis import Mahalanobis
+from .midpoint_style import MidpointStyle
+from .straightlining import Straightlining
+
+__all__ = ["REGISTRY", "get_detector", "check_screening_section"]
+
+_DETECTORS = (
+    Acquiescence,
+    ExtremeStyle,
+    MidpointStyle,
+    Straightlining,
+    LongString,
+    Mahalanobis,
+)
+
+#: Detector name to class, in the order results are reported.
+REGISTRY: dict[str, type] = {cls.name: cls for cls in _DETECTORS}
+
+
+def get_detector(name: str) -> type:
+    try:
+        return REGISTRY[name]
+    except KeyError:
+        raise KeyError(
+            f"unknown detector {name!r}; known detectors: {', '.join(REGISTRY)}"
+        ) from None
+
+
+def check_screening_section(instrument) -> None:
+    """Check the instrument's ``screening`` settings against each detector's constraints."""
+    problems = []
+    for name, settings in instrument.screening.items():
+        if name not in REGISTRY:
+            problems.append(
+                FieldProblem(
+                    f"screening.{name}",
+                    f"unknown detector; known detectors: {', '.join(REGISTRY)}",
+                )
+            )
+            continue
+        for key, value in settings.items():
+            try:
+                REGISTRY[name].check_settings({key: value})
+            except SettingError as error:
+                problems.append(FieldProblem(f"screening.{name}.{key}", str(error)))
+    if problems:
+        raise InstrumentError(problems)

@@ -1,0 +1,279 @@
+"""The instrument model: a questionnaire's items, answer formats, keying and screening settings.
+
+An instrument is a JSON document of Heedful's own format::
+
+    {
+      "survey": "staff-pulse-2027",
+      "title": "Staff pulse",
+      "response_format": {"points": 5, "lowest": 1, "labels": ["Strongly disagree", ...]},
+      "items": [
+        {"id": "q01", "text": "...", "scale": "workload", "keyed": 1, "block": "grid-a"},
+        {"id": "q02", "text": "...", "scale": "workload", "keyed": -1, "block": "grid-a"},
+        {"id": "chk1", "text": "Please answer 'Agree'", "instructed_answer": 4}
+      ],
+      "opposite_pairs": [["q01", "q02"]],
+      "screening": {"long_string": {"run_cutoff": 12}}
+    }
+
+``Instrument.model_validate`` (or :func:`load_instrument`) checks it and raises
+:class:`~detectors.errors.InstrumentError` naming every offending field or item.
+Derived per-item arrays (lowest and highest answer, midpoint, keying) are computed once and
+cached, so detectors can work on whole response matrices.
+"""
+
+from __future__ import annotations
+
+import json
+from functools import cached_property
+from itertools import product
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from .errors import FieldProblem, InstrumentError
+
+__all__ = ["Instrument", "Item", "ResponseFormat", "load_instrument", "parse_instrument"]
+
+#: Likert items have 2 to 10 points (common practice, no source).
+MIN_POINTS, MAX_POINTS = 2, 10
+#: Answers are stored as 8-bit integers, so codes must stay well inside -128..127.
+MIN_LOWEST, MAX_LOWEST = -50, 50
+
+ItemId = Annotated[str, Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.\-]+$")]
+
+
+class ResponseFormat(BaseModel):
+    """The answer options of an item: ``points`` consecutive integer codes from ``lowest``."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    points: int = Field(ge=MIN_POINTS, le=MAX_POINTS, description="Number of answer options.")
+    lowest: int = Field(default=1, ge=MIN_LOWEST, le=MAX_LOWEST, description="Code of the first option.")
+    labels: list[str] | None = Field(default=None, description="One label per option, lowest first.")
+
+    @model_validator(mode="after")
+    def _labels_match_points(self) -> ResponseFormat:
+        if self.labels is not None and len(self.labels) != self.points:
+            raise ValueError(
+                f"labels has {len(self.labels)} entries but points is {self.points}; "
+                "give one label per answer option"
+            )
+        return self
+
+    @property
+    def highest(self) -> int:
+        return self.lowest + self.points - 1
+
+    @property
+    def midpoint(self) -> float:
+        return (self.lowest + self.highest) / 2
+
+    @property
+    def has_midpoint(self) -> bool:
+        """An even number of points has no neutral midpoint (common practice, no source)."""
+        return self.points % 2 == 1
+
+
+class Item(BaseModel):
+    """One Likert item, in presentation order."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    id: ItemId
+    text: str = ""
+    scale: str | None = Field(default=None, min_length=1, description="Summed scale of the item.")
+    keyed: Literal[1, -1] = Field(default=1, description="1 for positively, -1 for reverse keyed.")
+    block: str | None = Field(default=None, min_length=1, description="Grid or page the item is shown on.")
+    instructed_answer: int | None = Field(
+        default=None, description="For an attention-check item: the answer it asks for."
+    )
+    response_format: ResponseFormat | None = None
+
+
+class Instrument(BaseModel):
+    """A questionnaire as Heedful screens it."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    survey: ItemId = Field(description="Survey id.")
+    title: str = ""
+    response_format: ResponseFormat
+    items: list[Item] = Field(min_length=1)
+    opposite_pairs: list[tuple[ItemId, ItemId]] | None = Field(
+        default=None,
+        description="Pairs of items that state opposite things. When absent, every pairing of a "
+        "+1-keyed with a -1-keyed item within a scale.",
+    )
+    screening: dict[str, dict[str, Any]] = Field(
+        default_factory=dict, description="Per-detector settings overriding the defaults."
+    )
+
+    @model_validator(mode="after")
+    def _check_items(self) -> Instrument:
+        problems: list[str] = []
+        seen: dict[str, int] = {}
+        for position, item in enumerate(self.items):
+            if item.id in seen:
+                problems.append(
+                    f"items[{position}].id: duplicate item id {item.id!r} "
+                    f"(first used at items[{seen[item.id]}])"
+                )
+            else:
+                seen[item.id] = position
+            fmt = item.response_format or self.response_format
+            if item.instructed_answer is not None and not (
+                fmt.lowest <= item.instructed_answer <= fmt.highest
+            ):
+                problems.append(
+                    f"items[{position}].instructed_answer: {item.instructed_answer} is outside "
+                    f"the item's answer range {fmt.lowest}..{fmt.highest}"
+                )
+        for number, pair in enumerate(self.opposite_pairs or []):
+            first, second = pair
+            for side, item_id in enumerate(pair):
+                if item_id not in seen:
+                    problems.append(f"opposite_pairs[{number}][{side}]: unknown item id {item_id!r}")
+            if first == second:
+                problems.append(f"opposite_pairs[{number}]: pairs an item ({first!r}) with itself")
+            elif first in seen and second in seen:
+                a, b = self.items[seen[first]], self.items[seen[second]]
+                if a.keyed == b.keyed:
+                    problems.append(
+                        f"opposite_pairs[{number}]: {first!r} and {second!r} are both keyed "
+                        f"{a.keyed:+d}; opposite items must be keyed in opposite directions"
+                    )
+                if a.instructed_answer is not None or b.instructed_answer is not None:
+                    problems.append(
+                        f"opposite_pairs[{number}]: attention-check items cannot be paired"
+                    )
+        if problems:
+            raise ValueError("\n".join(problems))
+        return self
+
+    # Derived structure, computed once per instrument -------------------------------------------
+
+    @cached_property
+    def item_ids(self) -> tuple[str, ...]:
+        return tuple(item.id for item in self.items)
+
+    @cached_property
+    def item_index(self) -> dict[str, int]:
+        return {item_id: i for i, item_id in enumerate(self.item_ids)}
+
+    def format_of(self, item: Item) -> ResponseFormat:
+        return item.response_format or self.response_format
+
+    @cached_property
+    def lowest(self) -> np.ndarray:
+        """Lowest answer code per item (int8)."""
+        return np.array([self.format_of(i).lowest for i in self.items], dtype=np.int8)
+
+    @cached_property
+    def highest(self) -> np.ndarray:
+        """Highest answer code per item (int8)."""
+        return np.array([self.format_of(i).highest for i in self.items], dtype=np.int8)
+
+    @cached_property
+    def points(self) -> np.ndarray:
+        return np.array([self.format_of(i).points for i in self.items], dtype=np.int8)
+
+    @cached_property
+    def midpoint(self) -> np.ndarray:
+        """(lowest + highest) / 2 per item; not an answer code when points is even."""
+        return (self.lowest.astype(np.float64) + self.highest) / 2
+
+    @cached_property
+    def keyed(self) -> np.ndarray:
+        return np.array([i.keyed for i in self.items], dtype=np.int8)
+
+    @cached_property
+    def is_instructed(self) -> np.ndarray:
+        """True for attention-check items (left out of the style and pattern indices)."""
+        return np.array([i.instructed_answer is not None for i in self.items], dtype=bool)
+
+    @cached_property
+    def content_items(self) -> np.ndarray:
+        """Column indices of the items that are not attention checks, in presentation order."""
+        return np.flatnonzero(~self.is_instructed)
+
+    @cached_property
+    def scales(self) -> dict[str, np.ndarray]:
+        """Scale name to its column indices, in order of first appearance."""
+        out: dict[str, list[int]] = {}
+        for i, item in enumerate(self.items):
+            if item.scale is not None and item.instructed_answer is None:
+                out.setdefault(item.scale, []).append(i)
+        return {name: np.array(cols, dtype=np.intp) for name, cols in out.items()}
+
+    @cached_property
+    def blocks(self) -> dict[str, np.ndarray]:
+        """Block name to its content-item columns; one block of all items when none is defined."""
+        if all(item.block is None for item in self.items):
+            return {"(whole questionnaire)": self.content_items}
+        out: dict[str, list[int]] = {}
+        for i, item in enumerate(self.items):
+            if item.block is not None and item.instructed_answer is None:
+                out.setdefault(item.block, []).append(i)
+        return {name: np.array(cols, dtype=np.intp) for name, cols in out.items()}
+
+    @cached_property
+    def pairs(self) -> np.ndarray:
+        """Opposite pairs as an (m, 2) array of column indices (given or derived)."""
+        if self.opposite_pairs is not None:
+            rows = [(self.item_index[a], self.item_index[b]) for a, b in self.opposite_pairs]
+        else:
+            rows = []
+            for cols in self.scales.values():
+                positive = [c for c in cols if self.items[c].keyed == 1]
+                negative = [c for c in cols if self.items[c].keyed == -1]
+                rows.extend(product(positive, negative))
+        return np.array(rows, dtype=np.intp).reshape(-1, 2)
+
+    def settings_for(self, detector: str) -> dict[str, Any]:
+        """The instrument's own settings for one detector (empty when none)."""
+        return dict(self.screening.get(detector, {}))
+
+
+def _field_problems(error: ValidationError) -> list[FieldProblem]:
+    problems = []
+    for entry in error.errors():
+        location = ""
+        for part in entry["loc"]:
+            location += f"[{part}]" if isinstance(part, int) else (f".{part}" if location else str(part))
+        message = entry["msg"].removeprefix("Value error, ")
+        if entry["type"] == "value_error" and not location:
+            # The whole-document check lists "location: message" lines.
+            for line in message.split("\n"):
+                where, _, text = line.partition(": ")
+                problems.append(FieldProblem(where, text) if text else FieldProblem("", line))
+            continue
+        problems.append(FieldProblem(location, message))
+    return problems
+
+
+def parse_instrument(document: Any) -> Instrument:
+    """Validate a decoded JSON document as an instrument; raise InstrumentError on problems."""
+    try:
+        instrument = Instrument.model_validate(document)
+    except ValidationError as error:
+        raise InstrumentError(_field_problems(error)) from None
+    from ._registry import check_screening_section  # late: the registry imports detectors
+
+    check_screening_section(instrument)
+    return instrument
+
+
+def load_instrument(path: str | Path) -> Instrument:
+    """Read and validate an instrument JSON file."""
+    path = Path(path)
+    try:
+        document = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InstrumentError([FieldProblem("", f"no such file: {path}")]) from None
+    except json.JSONDecodeError as error:
+        raise InstrumentError(
+            [FieldProblem("", f"{path} is not valid JSON (line {error.lineno}, column {error.colno}): {error.msg}")]
+        ) from None
+    return parse_instrument(document)
