@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -116,6 +116,7 @@ def screen(
     overrides: Mapping[str, Mapping[str, Any]] | None = None,
     references: Mapping[str, Mapping[str, Any]] | None = None,
     names: Iterable[str] | None = None,
+    progress: Callable[[str, int, int], None] | None = None,
 ) -> Screening:
     """Run the detectors (all registered ones by default) over ``matrix``.
 
@@ -130,10 +131,14 @@ def screen(
         estimates it from ``matrix``.
     names : iterable of str, optional
         Only these detectors, in this order.
+    progress : callable, optional
+        Called as ``progress(name, index, total)`` before each detector runs.
     """
     references = references or {}
-    results = {
-        name: detector.screen(instrument, matrix, references.get(name))
-        for name, detector in build_detectors(instrument, overrides, names).items()
-    }
+    detectors = build_detectors(instrument, overrides, names)
+    results = {}
+    for index, (name, detector) in enumerate(detectors.items()):
+        if progress is not None:
+            progress(name, index, len(detectors))
+        results[name] = detector.screen(instrument, matrix, references.get(name))
     return Screening(instrument=instrument, respondent_ids=matrix.respondent_ids, results=results)

@@ -1,0 +1,1 @@
+"""The HTTP API: one router module per resource; ``service.app`` assembles them."""

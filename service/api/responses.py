@@ -1,0 +1,194 @@
+"""Ingestion: the survey platform posts completed responses (key or signed webhook)."""
+
+from __future__ import annotations
+
+import asyncio
+import datetime as dt
+from typing import Any
+
+import orjson
+from fastapi import APIRouter, Query, Request, Response
+
+from detectors import ResponseDataError
+
+from .. import jobs
+from ..ingest_queue import IngestQueue
+from ..models import Role
+from ..problems import Problem, field_error
+from ..schemas import IngestReply, ResponseIn
+from ..security import WebhookRejected, verify_webhook
+from ..settings import Settings
+from .common import errors, parse_json, read_body
+from .deps import SettingsDep, authenticate_in
+
+router = APIRouter(tags=["responses"])
+
+_FIELDS = set(ResponseIn.model_fields)
+
+
+@router.post(
+    "/v1/surveys/{survey}/responses",
+    operation_id="postResponses",
+    summary="Post one completed response or a batch; each respondent is screened on arrival",
+    description=(
+        "Authenticate with an `ingest` (or `admin`) key, or sign the request as a Standard "
+        "Webhooks sender with the survey's `webhook_secret` (headers `webhook-id`, "
+        "`webhook-timestamp`, `webhook-signature`). The same respondent with the same answers "
+        "is a duplicate (stored once); other answers under a stored respondent id are refused "
+        "with 409 unless `replace=true`. A batch is all-or-nothing unless `partial=true`. "
+        "The reply comes after the data is committed."
+    ),
+    response_model=IngestReply,
+    status_code=201,
+    responses={200: {"description": "Nothing new was stored (duplicates or a replay)"}}
+    | errors(400, 401, 403, 404, 409, 413, 415, 422),
+    openapi_extra={
+        "requestBody": {
+            "required": True,
+            "content": {
+                "application/json": {
+                    "schema": {
+                        "oneOf": [
+                            {"$ref": "#/components/schemas/ResponseIn"},
+                            {"$ref": "#/components/schemas/BatchIn"},
+                        ]
+                    },
+                    "examples": {
+                        "one": {
+                            "summary": "One respondent",
+                            "value": ResponseIn.model_config["json_schema_extra"]["examples"][0],
+                        },
+                        "batch": {
+                            "summary": "A batch",
+                            "value": {
+                                "responses": [
+                                    {"respondent_id": "v0002", "answers": {"be01": 5, "be02": 1}},
+                                    {"respondent_id": "v0003", "answers": {"be01": 3, "be02": 3}},
+                                ]
+                            },
+                        },
+                    },
+                }
+            },
+        }
+    },
+)
+async def post_responses(
+    survey: str,
+    request: Request,
+    settings: SettingsDep,
+    replace: bool = Query(
+        False, description="Replace stored answers of a respondent (the old ones go to history)."
+    ),
+    partial: bool = Query(
+        False, description="Store the valid respondents of a batch and report the rejected ones."
+    ),
+) -> Response:
+    headers = request.headers
+    signed = "webhook-signature" in headers or "webhook-id" in headers
+    authorization = headers.get("authorization")
+    body = await read_body(request, settings.max_body_bytes)
+    document = parse_json(body, headers.get("content-type"))
+    rows, batch = _rows_of(document, settings)
+    if signed:
+        signature = (
+            headers.get("webhook-id"), headers.get("webhook-timestamp"),
+            headers.get("webhook-signature"),
+        )
+        submission = jobs.Submission(
+            survey, rows,
+            jobs.IngestOptions(replace=replace, partial=partial, webhook_id=signature[0]),
+            verify=lambda found: _verify(found, signature, body, settings),
+        )
+    else:
+        submission = jobs.Submission(
+            survey, rows, jobs.IngestOptions(replace=replace, partial=partial),
+            authorize=lambda session: _authorize(session, authorization),
+        )
+    queue: IngestQueue = request.app.state.ingest_queue
+    try:
+        reply = await asyncio.wrap_future(queue.submit(submission))
+    except ResponseDataError as error:
+        raise Problem(
+            422,
+            f"{len(error.problems)} problem(s) in the responses; nothing was stored.",
+            kind="invalid-responses",
+            errors=[
+                field_error(
+                    _pointer(batch, p.row, p.column), p.reason, row=p.row,
+                    respondent_id=p.respondent_id, item=p.column,
+                )
+                for p in error.problems
+            ],
+        ) from None
+    # The reply is built by the use case in the documented shape; it is sent as it is, since a
+    # second validation of thousands of result rows would cost more than the screening.
+    status = 200 if reply["stored"] == 0 and reply["replaced"] == 0 else 201
+    return Response(orjson.dumps(reply), status_code=status, media_type="application/json")
+
+
+def _authorize(session: Any, authorization: str | None) -> None:
+    caller = authenticate_in(session, authorization)
+    if caller.role not in (Role.INGEST, Role.ADMIN):
+        raise Problem(
+            403,
+            f"This key has the role {caller.role.value!r}; posting responses needs an ingest "
+            "or admin key.",
+            kind="forbidden",
+        )
+
+
+def _rows_of(document: Any, settings: Settings) -> tuple[list[Any], bool]:
+    if isinstance(document, dict) and set(document) == {"responses"}:
+        rows = document["responses"]
+        if not isinstance(rows, list) or not rows:
+            raise Problem(
+                422, "`responses` must be a non-empty list of respondents.",
+                kind="invalid-request",
+                errors=[field_error("#/responses", "must be a non-empty list")],
+            )
+        batch = True
+    elif isinstance(document, dict):
+        rows, batch = [document], False
+    else:
+        raise Problem(
+            422,
+            "Send one respondent as an object, or a batch as {\"responses\": [...]}.",
+            kind="invalid-request",
+            errors=[field_error("#", "must be an object")],
+        )
+    if len(rows) > settings.max_batch_respondents:
+        raise Problem(
+            413,
+            f"The post holds {len(rows)} respondents; at most {settings.max_batch_respondents} "
+            "are accepted at once (HEEDFUL_MAX_BATCH_RESPONDENTS).",
+            kind="batch-too-large",
+        )
+    return rows, batch
+
+
+def _pointer(batch: bool, row: int | None, column: str | None) -> str:
+    base = f"#/responses/{row - 1}" if batch and row is not None else "#"
+    if column is None:
+        return base
+    if column in _FIELDS:
+        return f"{base}/{column}"
+    return f"{base}/answers/{column}"
+
+
+def _verify(found: Any, signature: tuple[Any, Any, Any], body: bytes, settings: Settings) -> None:
+    candidates = [found.webhook_secret]
+    now = dt.datetime.now(dt.UTC)
+    if found.previous_webhook_secret and found.previous_secret_until and (
+        found.previous_secret_until > now
+    ):
+        candidates.append(found.previous_webhook_secret)
+    try:
+        verify_webhook(candidates, *signature, body, settings.webhook_tolerance_seconds)
+    except WebhookRejected as error:
+        raise Problem(
+            401, f"The webhook signature was refused: {error.reason}.", kind="bad-signature"
+        ) from None
+
+
+__all__ = ["router"]

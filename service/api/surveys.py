@@ -1,0 +1,239 @@
+"""Surveys: register instruments (versions), read them, rotate secrets, re-screen, summaries."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+from fastapi import APIRouter, Request, Response
+from starlette.concurrency import run_in_threadpool
+
+from detectors import Instrument, lint, parse_instrument
+
+from .. import jobs, store
+from ..models import Role, Survey
+from ..problems import Problem
+from ..schemas import (
+    DayTally,
+    DetectorTally,
+    LintWarning,
+    ReferenceInfo,
+    RescreenReply,
+    SecretRotated,
+    SurveyDetail,
+    SurveyList,
+    SurveyRegistered,
+    SurveyReport,
+    SurveySummaryRow,
+    VersionInfo,
+)
+from .common import errors, read_json
+from .deps import Admin, DatabaseDep, Reader, SettingsDep, authenticate
+
+router = APIRouter(tags=["surveys"])
+
+_INSTRUMENT_SCHEMA = Instrument.model_json_schema(ref_template="#/components/schemas/{model}")
+_EXAMPLE_INSTRUMENT = {
+    "survey": "orchard-volunteers-2027",
+    "title": "Volunteer survey 2027",
+    "response_format": {"points": 5, "lowest": 1},
+    "items": [
+        {"id": "be01", "text": "I feel part of the orchard team.", "scale": "belonging"},
+        {"id": "be02", "text": "I often feel like an outsider.", "scale": "belonging", "keyed": -1},
+    ],
+}
+
+
+def survey_or_404(session: Any, survey: str) -> Survey:
+    found = store.get_survey(session, survey)
+    if found is None:
+        raise Problem(404, f"No survey {survey!r} is registered.", kind="unknown-survey")
+    return found
+
+
+@router.post(
+    "/v1/surveys",
+    operation_id="registerSurvey",
+    summary="Register an instrument (a changed one becomes a new version); returns lint warnings",
+    response_model=SurveyRegistered,
+    status_code=201,
+    responses={200: {"description": "The same document was already registered"}}
+    | errors(400, 401, 403, 413, 415, 422),
+    openapi_extra={
+        "requestBody": {
+            "required": True,
+            "content": {
+                "application/json": {
+                    "schema": {"$ref": "#/components/schemas/Instrument"},
+                    "examples": {"small": {"value": _EXAMPLE_INSTRUMENT}},
+                }
+            },
+        }
+    },
+)
+async def register_survey(
+    request: Request, response: Response, database: DatabaseDep, settings: SettingsDep
+) -> SurveyRegistered:
+    caller = await run_in_threadpool(
+        authenticate, database, request.headers.get("authorization")
+    )
+    if caller.role is not Role.ADMIN:
+        raise Problem(
+            403,
+            f"This key has the role {caller.role.value!r}; registering a survey needs an "
+            "admin key.",
+            kind="forbidden",
+        )
+    _, document = await read_json(request, settings.max_body_bytes)
+    reply = await run_in_threadpool(_register, database, document)
+    if not reply.new_version:
+        response.status_code = 200
+    return reply
+
+
+def _register(database: Any, document: Any) -> SurveyRegistered:
+    instrument = parse_instrument(document)
+    notes = lint(instrument)
+    stored_document = instrument.model_dump(mode="json")
+    with database.write() as session:
+        registered = store.register_version(session, stored_document, instrument.title)
+        return SurveyRegistered(
+            survey=registered.survey.survey,
+            title=registered.survey.title,
+            version=registered.version.number,
+            new_version=registered.new_version,
+            lint=[LintWarning(code=n.code, location=n.location, message=n.message) for n in notes],
+            webhook_secret=registered.survey.webhook_secret,
+        )
+
+
+@router.get(
+    "/v1/surveys",
+    operation_id="listSurveys",
+    summary="List the registered surveys",
+    response_model=SurveyList,
+    responses=errors(401, 403),
+)
+def list_surveys(caller: Reader, database: DatabaseDep) -> SurveyList:
+    with database.read() as session:
+        rows = store.list_surveys(session)
+    return SurveyList(
+        data=[
+            SurveySummaryRow(
+                survey=s.survey, title=s.title, version=number, respondents=count,
+                created_at=s.created_at,
+            )
+            for s, number, count in rows
+        ]
+    )
+
+
+def _reference_info(session: Any, survey: Survey, numbers: dict[int, int]) -> ReferenceInfo | None:
+    reference = store.reference_of(session, survey.current_reference_id)
+    if reference is None:
+        return None
+    return ReferenceInfo(
+        id=reference.id,
+        version=numbers[reference.survey_version_id],
+        respondents=reference.respondents,
+        detectors=sorted(reference.data),
+        created_at=reference.created_at,
+    )
+
+
+@router.get(
+    "/v1/surveys/{survey}",
+    operation_id="getSurvey",
+    summary="A survey's current instrument, versions and reference sample "
+    "(and webhook secret, for admin keys)",
+    response_model=SurveyDetail,
+    response_model_exclude_none=False,
+    responses=errors(401, 403, 404),
+)
+def get_survey(survey: str, caller: Reader, database: DatabaseDep) -> SurveyDetail:
+    with database.read() as session:
+        found = survey_or_404(session, survey)
+        versions = store.versions_of(session, found.id)
+        numbers = {v.id: v.number for v in versions}
+        current = next(v for v in versions if v.id == found.current_version_id)
+        return SurveyDetail(
+            survey=found.survey,
+            title=found.title,
+            version=current.number,
+            respondents=store.count_respondents(session, found.id),
+            created_at=found.created_at,
+            versions=[VersionInfo(number=v.number, created_at=v.created_at) for v in versions],
+            reference=_reference_info(session, found, numbers),
+            instrument=current.document,
+            webhook_secret=found.webhook_secret if caller.role is Role.ADMIN else None,
+        )
+
+
+@router.post(
+    "/v1/surveys/{survey}/webhook-secret",
+    operation_id="rotateWebhookSecret",
+    summary="Replace the survey's webhook secret (the old one verifies for a grace period)",
+    response_model=SecretRotated,
+    responses=errors(401, 403, 404),
+)
+def rotate_webhook_secret(
+    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep
+) -> SecretRotated:
+    with database.write() as session:
+        found = survey_or_404(session, survey)
+        until = store.rotate_secret(
+            session, found, dt.timedelta(seconds=settings.secret_grace_seconds)
+        )
+        return SecretRotated(
+            survey=found.survey, webhook_secret=found.webhook_secret,
+            previous_secret_valid_until=until,
+        )
+
+
+@router.post(
+    "/v1/surveys/{survey}/rescreen",
+    operation_id="rescreenSurvey",
+    summary="Re-estimate the reference sample from stored respondents and re-score them all",
+    response_model=RescreenReply,
+    responses=errors(401, 403, 404),
+)
+def rescreen_survey(
+    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep
+) -> RescreenReply:
+    with database.write() as session:
+        found = survey_or_404(session, survey)
+        return RescreenReply.model_validate(jobs.rescreen(session, found, settings))
+
+
+@router.get(
+    "/v1/surveys/{survey}/summary",
+    operation_id="getSurveySummary",
+    summary="Counts and flag rates per detector and per day of arrival",
+    response_model=SurveyReport,
+    responses=errors(401, 403, 404),
+)
+def survey_summary(survey: str, caller: Reader, database: DatabaseDep) -> SurveyReport:
+    with database.read() as session:
+        found = survey_or_404(session, survey)
+        counts = store.report(session, found.id)
+    return SurveyReport(
+        survey=survey,
+        respondents=counts["respondents"],
+        flagged_any=counts["flagged_any"],
+        reviewed=counts["reviewed"],
+        detectors={
+            name: DetectorTally(
+                **tally,
+                flag_rate=tally["flagged"] / tally["assessed"] if tally["assessed"] else None,
+            )
+            for name, tally in counts["detectors"].items()
+        },
+        days=[DayTally(**day) for day in counts["days"]],
+    )
+
+
+def instrument_schema() -> dict[str, Any]:
+    """The instrument's JSON schema and its definitions, for the OpenAPI components."""
+    schema = dict(_INSTRUMENT_SCHEMA)
+    definitions = schema.pop("$defs", {})
+    return {"Instrument": schema, **definitions}

@@ -1,0 +1,328 @@
+"""The service's subcommands of ``heedful``: serve, db, keys, survey, rescreen, openapi.
+
+Only argument parsing and printing live here; the work is done by ``store`` and ``jobs``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+from pydantic import ValidationError
+
+from .settings import Settings
+
+__all__ = ["register", "settings_from"]
+
+EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
+DEFAULT_OPENAPI = Path("openapi") / "openapi.json"
+
+
+def settings_from(args: argparse.Namespace, **overrides: Any) -> Settings:
+    """The environment's settings, with ``--database`` (and other flags) taking precedence."""
+    values = dict(overrides)
+    if getattr(args, "database", None):
+        values["database_url"] = args.database
+    return Settings(**values)
+
+
+def _database(args: argparse.Namespace):
+    from .database import Database
+    from .db import make_engine, upgrade
+
+    engine = make_engine(settings_from(args).database_url)
+    upgrade(engine)
+    return Database(engine)
+
+
+def _add_database(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--database", metavar="URL",
+        help="database URL (default: HEEDFUL_DATABASE_URL, else sqlite:///./heedful.db)",
+    )
+
+
+def _error(message: str) -> int:
+    print(f"error: {message}", file=sys.stderr)
+    return EXIT_BAD_INPUT
+
+
+# serve / db ---------------------------------------------------------------------------------------
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from .app import create_app, prepare_process
+
+    overrides: dict[str, Any] = {}
+    if args.host:
+        overrides["host"] = args.host
+    if args.port is not None:
+        overrides["port"] = args.port
+    settings = settings_from(args, **overrides)
+    app = create_app(settings)
+    prepare_process()
+    print(f"Heedful listening on http://{settings.host}:{settings.port} "
+          f"(docs: http://{settings.host}:{settings.port}/docs)", flush=True)
+    uvicorn.run(
+        app, host=settings.host, port=settings.port, log_level=settings.log_level,
+        access_log=args.access_log,
+    )
+    return EXIT_OK
+
+
+def cmd_db_upgrade(args: argparse.Namespace) -> int:
+    from .db import current_revision, make_engine, upgrade
+
+    engine = make_engine(settings_from(args).database_url)
+    upgrade(engine)
+    print(f"database schema at revision {current_revision(engine)}")
+    engine.dispose()
+    return EXIT_OK
+
+
+# keys -------------------------------------------------------------------------------------------
+
+
+def cmd_keys_create(args: argparse.Namespace) -> int:
+    from sqlalchemy.exc import IntegrityError
+
+    from . import store
+    from .models import Role
+
+    database = _database(args)
+    try:
+        with database.write() as session:
+            token = store.create_key(session, args.name, Role(args.role))
+    except IntegrityError:
+        return _error(f"a key named {args.name!r} already exists")
+    finally:
+        database.dispose()
+    print(f"Created {args.role} key {args.name!r}. The token is shown once; store it now:")
+    print(token)
+    return EXIT_OK
+
+
+def cmd_keys_list(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    with database.read() as session:
+        keys = store.list_keys(session)
+    database.dispose()
+    print(f"{'name':<24} {'role':<8} {'created':<20} revoked")
+    for key in keys:
+        revoked = key.revoked_at.strftime("%Y-%m-%d %H:%M") if key.revoked_at else "-"
+        print(f"{key.name:<24} {key.role.value:<8} {key.created_at:%Y-%m-%d %H:%M}     {revoked}")
+    return EXIT_OK
+
+
+def cmd_keys_revoke(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    with database.write() as session:
+        found = store.revoke_key(session, args.name)
+    database.dispose()
+    if not found:
+        return _error(f"no key named {args.name!r}")
+    print(f"revoked key {args.name!r}")
+    return EXIT_OK
+
+
+# survey ------------------------------------------------------------------------------------------
+
+
+def register_document(database: Any, document: Any) -> dict[str, Any]:
+    """Register an instrument document; the reply the API gives (lint warnings, secret)."""
+    from detectors import lint, parse_instrument
+
+    from . import store
+
+    instrument = parse_instrument(document)
+    notes = lint(instrument)
+    with database.write() as session:
+        registered = store.register_version(
+            session, instrument.model_dump(mode="json"), instrument.title
+        )
+        return {
+            "survey": registered.survey.survey,
+            "version": registered.version.number,
+            "new_version": registered.new_version,
+            "lint": [str(note) for note in notes],
+            "webhook_secret": registered.survey.webhook_secret,
+        }
+
+
+def cmd_survey_register(args: argparse.Namespace) -> int:
+    path = Path(args.file)
+    try:
+        document = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        return _error(f"no such file: {path}")
+    except json.JSONDecodeError as error:
+        return _error(f"{path} is not valid JSON (line {error.lineno}): {error.msg}")
+    database = _database(args)
+    try:
+        reply = register_document(database, document)
+    finally:
+        database.dispose()
+    state = "new version" if reply["new_version"] else "unchanged"
+    print(f"survey {reply['survey']!r}: version {reply['version']} ({state})")
+    for note in reply["lint"]:
+        print(f"warning: {note}")
+    print(f"webhook secret: {reply['webhook_secret']}")
+    return EXIT_OK
+
+
+def cmd_survey_list(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    with database.read() as session:
+        rows = store.list_surveys(session)
+    database.dispose()
+    print(f"{'survey':<32} {'version':>7} {'respondents':>11}  title")
+    for survey, number, count in rows:
+        print(f"{survey.survey:<32} {number:>7} {count:>11}  {survey.title}")
+    return EXIT_OK
+
+
+def cmd_survey_show(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    with database.read() as session:
+        survey = store.get_survey(session, args.survey)
+        if survey is None:
+            database.dispose()
+            return _error(f"no survey {args.survey!r} is registered")
+        versions = store.versions_of(session, survey.id)
+        current = next(v for v in versions if v.id == survey.current_version_id)
+        document = {
+            "survey": survey.survey,
+            "title": survey.title,
+            "version": current.number,
+            "versions": [v.number for v in versions],
+            "respondents": store.count_respondents(session, survey.id),
+            "reference_id": survey.current_reference_id,
+            "webhook_secret": survey.webhook_secret,
+            "instrument": current.document,
+        }
+    database.dispose()
+    print(json.dumps(document, indent=2))
+    return EXIT_OK
+
+
+def cmd_rescreen(args: argparse.Namespace) -> int:
+    from . import jobs, store
+
+    settings = settings_from(args)
+    database = _database(args)
+    try:
+        with database.write() as session:
+            survey = store.get_survey(session, args.survey)
+            if survey is None:
+                return _error(f"no survey {args.survey!r} is registered")
+            reply = jobs.rescreen(session, survey, settings)
+    finally:
+        database.dispose()
+    print(f"re-screened {reply['respondents']} respondent(s) of {reply['survey']!r}")
+    for reference in reply["references"]:
+        print(
+            f"  version {reference['version']}: reference sample {reference['id']} from "
+            f"{reference['respondents']} respondents ({', '.join(reference['detectors'])})"
+        )
+    for version, reason in reply["without_reference"].items():
+        print(f"  version {version}: no new reference sample: {reason}")
+    return EXIT_OK
+
+
+def cmd_openapi(args: argparse.Namespace) -> int:
+    from .app import openapi_document
+
+    text = json.dumps(openapi_document(), indent=2, sort_keys=False) + "\n"
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text, encoding="utf-8")
+    print(f"wrote {out}")
+    return EXIT_OK
+
+
+def _guard(func: Any) -> Any:
+    """Bad settings (e.g. an unsupported database URL) are bad input: exit code 2."""
+
+    def run(args: argparse.Namespace) -> int:
+        try:
+            return func(args)
+        except ValidationError as error:
+            first = error.errors()[0]
+            where = ".".join(str(p) for p in first["loc"])
+            return _error(f"invalid setting {where}: {first['msg']}")
+
+    return run
+
+
+# the parsers ------------------------------------------------------------------------------------
+
+
+def register(subparsers: Any) -> None:
+    """Add the service's subcommands to ``heedful``'s argument parser."""
+    p = subparsers.add_parser("serve", help="run the screening web service")
+    p.add_argument("--host", help="address to listen on (default: HEEDFUL_HOST, else 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port (default: HEEDFUL_PORT, else 8000)")
+    p.add_argument("--access-log", action="store_true", help="log every request line")
+    _add_database(p)
+    p.set_defaults(func=_guard(cmd_serve))
+
+    p = subparsers.add_parser("db", help="manage the service's database")
+    db = p.add_subparsers(dest="db_command", required=True, metavar="ACTION")
+    q = db.add_parser("upgrade", help="create or upgrade the schema (Alembic migrations)")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_db_upgrade))
+
+    p = subparsers.add_parser("keys", help="manage API keys")
+    keys = p.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
+    q = keys.add_parser("create", help="create a key and print its token once")
+    q.add_argument("--role", required=True, choices=["ingest", "analyst", "admin"])
+    q.add_argument("--name", required=True, help="unique name, recorded with reviews")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_keys_create))
+    q = keys.add_parser("list", help="list keys (never their tokens)")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_keys_list))
+    q = keys.add_parser("revoke", help="revoke a key by name")
+    q.add_argument("name")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_keys_revoke))
+
+    p = subparsers.add_parser("survey", help="register and inspect surveys")
+    survey = p.add_subparsers(dest="survey_command", required=True, metavar="ACTION")
+    q = survey.add_parser("register", help="register an instrument (JSON file)")
+    q.add_argument("file")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_survey_register))
+    q = survey.add_parser("list", help="list registered surveys")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_survey_list))
+    q = survey.add_parser("show", help="show a survey (with its webhook secret)")
+    q.add_argument("survey")
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_survey_show))
+
+    p = subparsers.add_parser(
+        "rescreen", help="re-estimate the reference sample and re-score a survey's respondents"
+    )
+    p.add_argument("--survey", required=True)
+    _add_database(p)
+    p.set_defaults(func=_guard(cmd_rescreen))
+
+    p = subparsers.add_parser("openapi", help="write the service's OpenAPI document")
+    p.add_argument(
+        "--out", default=str(DEFAULT_OPENAPI), help="output file (default: %(default)s)"
+    )
+    p.set_defaults(func=_guard(cmd_openapi))

@@ -1,0 +1,139 @@
+"""Database engine, typed-model base and migrations.
+
+SQLite (the embedded default) runs in WAL mode with foreign keys on; write transactions start
+with ``BEGIN IMMEDIATE`` so two writers queue on the lock instead of failing half-way.
+PostgreSQL is used through psycopg 3. Callers own sessions and transactions::
+
+    with Session(engine) as session, session.begin():
+        ...
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+from typing import Any
+
+import orjson
+from sqlalchemy import DateTime, Engine, create_engine, event
+from sqlalchemy.orm import DeclarativeBase
+from sqlalchemy.types import TypeDecorator
+
+__all__ = [
+    "Base",
+    "UTCDateTime",
+    "make_engine",
+    "writer",
+    "upgrade",
+    "current_revision",
+    "head_revision",
+    "utcnow",
+]
+
+MIGRATIONS = Path(__file__).with_name("migrations")
+#: Seconds a SQLite writer waits for the lock before giving up.
+SQLITE_BUSY_SECONDS = 30
+
+
+def utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+class UTCDateTime(TypeDecorator[dt.datetime]):
+    """A timestamp stored in UTC and always returned timezone-aware (SQLite keeps no zone)."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError("timestamps must carry a time zone")
+        value = value.astimezone(dt.UTC)
+        return value.replace(tzinfo=None) if dialect.name == "sqlite" else value
+
+    def process_result_value(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=dt.UTC) if value.tzinfo is None else value.astimezone(dt.UTC)
+
+
+class Base(DeclarativeBase):
+    """Base of every table."""
+
+
+def _json_text(value: Any) -> str:
+    return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+
+
+def make_engine(url: str, **kwargs: Any) -> Engine:
+    """An engine for ``url`` with Heedful's connection settings."""
+    kwargs.setdefault("json_serializer", _json_text)
+    if url.startswith("sqlite"):
+        engine = create_engine(
+            url, connect_args={"check_same_thread": False, "timeout": SQLITE_BUSY_SECONDS}, **kwargs
+        )
+        _configure_sqlite(engine)
+        return engine
+    return create_engine(url, pool_pre_ping=True, pool_size=8, max_overflow=8, **kwargs)
+
+
+def _configure_sqlite(engine: Engine) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection: Any, _record: Any) -> None:
+        # The driver's own transaction handling is switched off; "begin" below issues BEGIN.
+        dbapi_connection.isolation_level = None
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute("PRAGMA foreign_keys=ON")
+        # In WAL mode NORMAL keeps the database consistent after a crash; only the last
+        # transactions before a power cut can be lost, never half of one.
+        cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_SECONDS * 1000}")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(connection: Any) -> None:
+        immediate = connection.get_execution_options().get("heedful_write", False)
+        connection.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+
+
+def writer(engine: Engine) -> Engine:
+    """The same engine, marked so SQLite takes the write lock when the transaction begins."""
+    return engine.execution_options(heedful_write=True)
+
+
+# Migrations -----------------------------------------------------------------------------------
+
+
+def _alembic_config(url: str) -> Any:
+    from alembic.config import Config
+
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    config.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    return config
+
+
+def upgrade(engine: Engine) -> None:
+    """Bring the schema to the newest migration (creating it on an empty database)."""
+    from alembic import command
+
+    config = _alembic_config(engine.url.render_as_string(hide_password=False))
+    with writer(engine).begin() as connection:
+        config.attributes["connection"] = connection
+        command.upgrade(config, "head")
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.migration import MigrationContext
+
+    with engine.connect() as connection:
+        return MigrationContext.configure(connection).get_current_revision()
+
+
+def head_revision() -> str | None:
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory.from_config(_alembic_config("sqlite://")).get_current_head()

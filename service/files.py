@@ -1,0 +1,104 @@
+"""Reading response tables and writing screening results, for the CLI and the jobs."""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from detectors import ResponseDataError, ResponseProblem, Screening, State
+
+__all__ = ["read_table", "write_atomic", "screening_records", "write_screening", "OUTPUT_FORMATS"]
+
+OUTPUT_FORMATS = ("csv", "json", "parquet")
+_READERS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
+
+
+def read_table(path: str | Path, id_column: str = "respondent_id") -> pd.DataFrame:
+    """Read a responses table (CSV or Parquet, chosen by the file's extension).
+
+    The id column is read as text, so ids such as ``007`` keep their leading zeros; empty
+    cells become missing values.
+    """
+    path = Path(path)
+    kind = _READERS.get(path.suffix.lower())
+    if kind is None:
+        raise ResponseDataError(
+            [ResponseProblem(None, None, None, f"cannot read {path.name}: use a .csv or .parquet file")]
+        )
+    if not path.exists():
+        raise ResponseDataError([ResponseProblem(None, None, None, f"no such file: {path}")])
+    try:
+        if kind == "parquet":
+            frame = pd.read_parquet(path)
+            if id_column in frame.columns:
+                frame[id_column] = frame[id_column].astype("string")
+            return frame
+        return pd.read_csv(path, dtype={id_column: "string"}, skipinitialspace=True)
+    except (ValueError, OSError, pd.errors.ParserError) as error:
+        raise ResponseDataError(
+            [ResponseProblem(None, None, None, f"cannot read {path.name}: {error}")]
+        ) from None
+
+
+def write_atomic(path: str | Path, write: Any) -> None:
+    """Write through a temporary file in the same folder, then rename: never half a file."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")
+    os.close(handle)
+    try:
+        write(temporary)
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def screening_records(screening: Screening) -> list[dict[str, Any]]:
+    """Every respondent with every detector's score, flag, state, reason, evidence and sentence."""
+    records = []
+    count = screening.flag_count
+    for i, respondent in enumerate(screening.respondent_ids.tolist()):
+        results = {}
+        for name, result in screening.results.items():
+            state = State(int(result.states[i]))
+            assessed = state is State.ASSESSED
+            results[name] = {
+                "state": state.label,
+                "score": float(result.scores[i]) if assessed else None,
+                "flag": bool(result.flags[i]) if assessed else None,
+                "reason": None if assessed else result.reasons[i],
+                "evidence": result.evidence_for(i) if assessed else {},
+                "sentence": result.sentence_for(i),
+            }
+        records.append(
+            {"respondent_id": respondent, "flag_count": int(count[i]), "detectors": results}
+        )
+    return records
+
+
+def write_screening(screening: Screening, out: str | Path, fmt: str) -> None:
+    """Write the screening table as CSV or Parquet, or every detail as JSON."""
+    if fmt == "json":
+        document = {"survey": screening.instrument.survey, "respondents": screening_records(screening)}
+        write_atomic(out, lambda p: Path(p).write_text(json.dumps(document, indent=1), "utf-8"))
+        return
+    frame = screening.to_frame()
+    if fmt == "csv":
+        write_atomic(out, lambda p: frame.to_csv(p, index=False, float_format="%.6g"))
+    elif fmt == "parquet":
+        write_atomic(out, lambda p: frame.to_parquet(p, index=False))
+    else:
+        raise ValueError(f"unknown output format {fmt!r}; use one of {', '.join(OUTPUT_FORMATS)}")
+
+
+def format_from_path(path: str | Path | None, default: str = "csv") -> str:
+    if path is None:
+        return default
+    suffix = Path(path).suffix.lower().lstrip(".")
+    return {"pq": "parquet"}.get(suffix, suffix) if suffix in ("csv", "json", "parquet", "pq") else default

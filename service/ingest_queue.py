@@ -1,0 +1,162 @@
+"""Group commit for posted responses.
+
+Posts that arrive while a transaction is being written wait in a queue; one writer thread then
+takes all of them (up to a bound), screens their respondents together and writes them in one
+transaction (``jobs.ingest_many``). Each post is answered only after that commit. Under load
+this spreads the fixed cost of a screening call and of a commit over many posts; a lone post is
+written at once. A post refused for its own reasons (bad rows, conflict, signature) does not
+affect the others of its group.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import logging
+import queue
+import threading
+import time
+from concurrent.futures import Future
+from dataclasses import dataclass
+
+from sqlalchemy.exc import DBAPIError, IntegrityError
+
+from . import jobs, store
+from .database import Database
+from .settings import Settings
+
+__all__ = ["IngestQueue"]
+
+log = logging.getLogger("heedful.service")
+
+#: Bounds of one group: posts, and respondents over all its posts.
+MAX_POSTS, MAX_ROWS = 256, 20_000
+#: Rounds per group for submissions deferred behind an earlier one touching the same respondent.
+MAX_ROUNDS = MAX_POSTS
+#: How often accepted webhook ids older than twice the timestamp tolerance are forgotten
+#: (a replay that old is refused by its timestamp anyway).
+PRUNE_EVERY_SECONDS = 60.0
+
+
+@dataclass
+class _Job:
+    submission: jobs.Submission
+    future: Future
+
+
+class IngestQueue:
+    """A writer thread fed by :meth:`submit`; start it lazily, :meth:`close` it at shutdown."""
+
+    def __init__(self, database: Database, settings: Settings):
+        self.database = database
+        self.settings = settings
+        self._queue: queue.Queue[_Job | None] = queue.Queue()
+        self._thread: threading.Thread | None = None
+        self._lock = threading.Lock()
+        self._pruned_at = time.monotonic()
+
+    def submit(self, submission: jobs.Submission) -> Future:
+        future: Future = Future()
+        self._ensure_started()
+        self._queue.put(_Job(submission, future))
+        return future
+
+    def close(self, timeout: float = 30.0) -> None:
+        with self._lock:
+            thread, self._thread = self._thread, None
+        if thread is not None:
+            self._queue.put(None)
+            thread.join(timeout)
+
+    def _ensure_started(self) -> None:
+        if self._thread is not None:
+            return
+        with self._lock:
+            if self._thread is None:
+                self._thread = threading.Thread(
+                    target=self._run, name="heedful-ingest", daemon=True
+                )
+                self._thread.start()
+
+    def _run(self) -> None:
+        while True:
+            first = self._queue.get()
+            if first is None:
+                return
+            group, rows = [first], len(first.submission.rows)
+            stop = False
+            while len(group) < MAX_POSTS and rows < MAX_ROWS:
+                try:
+                    job = self._queue.get_nowait()
+                except queue.Empty:
+                    break
+                if job is None:
+                    stop = True
+                    break
+                group.append(job)
+                rows += len(job.submission.rows)
+            self._process(group)
+            self._maybe_prune()
+            if stop:
+                return
+
+    def _maybe_prune(self) -> None:
+        if time.monotonic() - self._pruned_at < PRUNE_EVERY_SECONDS:
+            return
+        self._pruned_at = time.monotonic()
+        keep = dt.timedelta(seconds=2 * self.settings.webhook_tolerance_seconds)
+        try:
+            with self.database.write() as session:
+                store.prune_deliveries(session, dt.datetime.now(dt.UTC) - keep)
+        except DBAPIError as error:  # pruning is housekeeping: try again next time
+            log.warning("pruning webhook ids failed: %s", type(error).__name__)
+
+    def _process(self, group: list[_Job]) -> None:
+        pending = group
+        for _ in range(MAX_ROUNDS):
+            try:
+                results = self._write([job.submission for job in pending])
+            except (IntegrityError, DBAPIError):
+                # Another process stored one of these respondents (or ids) first: write the
+                # posts one at a time, so each sees what is committed.
+                for job in pending:
+                    self._one_at_a_time(job)
+                return
+            except Exception as error:  # a bug: every waiting post gets the error
+                log.error("ingestion failed: %s", type(error).__name__)
+                for job in pending:
+                    job.future.set_exception(error)
+                return
+            waiting = []
+            for job, result in zip(pending, results, strict=True):
+                if result is jobs.DEFERRED:
+                    waiting.append(job)
+                elif isinstance(result, BaseException):
+                    job.future.set_exception(result)
+                else:
+                    job.future.set_result(result)
+            if not waiting:
+                return
+            pending = waiting
+        for job in pending:
+            self._one_at_a_time(job)
+
+    def _write(self, submissions: list[jobs.Submission]) -> list:
+        with self.database.write() as session:
+            return jobs.ingest_many(session, submissions, self.settings)
+
+    def _one_at_a_time(self, job: _Job) -> None:
+        for attempt in range(2):
+            try:
+                [result] = self._write([job.submission])
+            except IntegrityError as error:
+                if attempt == 1:
+                    job.future.set_exception(error)
+                continue
+            except Exception as error:
+                job.future.set_exception(error)
+                return
+            if isinstance(result, BaseException):
+                job.future.set_exception(result)
+            else:
+                job.future.set_result(result)
+            return

@@ -1,0 +1,1 @@
+"""Alembic migrations of the service's schema (run by `heedful db upgrade` and at start)."""

@@ -1,0 +1,255 @@
+"""The stored tables, as typed SQLAlchemy models.
+
+A survey has numbered versions (its instrument documents); every respondent keeps the version it
+was screened with. One row per respondent and detector holds the result. Answers are stored as
+received, so any later re-screen can use them; earlier answers replaced with ``?replace=true``
+move to ``response_history``. Reviews are append-only.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import enum
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    Boolean,
+    Enum,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    SmallInteger,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import Mapped, mapped_column
+
+from .db import Base, UTCDateTime, utcnow
+
+__all__ = [
+    "Role",
+    "Decision",
+    "ApiKey",
+    "Survey",
+    "SurveyVersion",
+    "ReferenceSample",
+    "Respondent",
+    "ResponseHistory",
+    "DetectorOutcome",
+    "Review",
+    "WebhookDelivery",
+    "Erasure",
+]
+
+
+class Role(enum.StrEnum):
+    """What a key may do: ``ingest`` posts responses, ``analyst`` reads and reviews,
+    ``admin`` does everything."""
+
+    INGEST = "ingest"
+    ANALYST = "analyst"
+    ADMIN = "admin"
+
+
+class Decision(enum.StrEnum):
+    """A reviewer's decision about a respondent."""
+
+    KEEP = "keep"
+    EXCLUDE = "exclude"
+    UNDECIDED = "undecided"
+
+
+def _enum(kind: type[enum.Enum], name: str) -> Enum:
+    return Enum(
+        kind,
+        name=name,
+        native_enum=False,
+        length=16,
+        values_callable=lambda members: [m.value for m in members],
+    )
+
+
+class ApiKey(Base):
+    __tablename__ = "api_keys"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), unique=True)
+    role: Mapped[Role] = mapped_column(_enum(Role, "role"))
+    #: Public part of the token, to find the row without comparing secrets in the database.
+    lookup: Mapped[str] = mapped_column(String(16), unique=True)
+    #: sha256 of the whole token (hex); the token itself is never stored.
+    token_hash: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+    revoked_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+
+
+class Survey(Base):
+    __tablename__ = "surveys"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey: Mapped[str] = mapped_column(String(64), unique=True)
+    title: Mapped[str] = mapped_column(Text, default="")
+    current_version_id: Mapped[int | None] = mapped_column(
+        ForeignKey("survey_versions.id", use_alter=True, name="fk_surveys_current_version"),
+        default=None,
+    )
+    #: The reference sample of the current version used on arrival (None until a re-screen).
+    current_reference_id: Mapped[int | None] = mapped_column(
+        ForeignKey("reference_samples.id", use_alter=True, name="fk_surveys_current_reference"),
+        default=None,
+    )
+    webhook_secret: Mapped[str] = mapped_column(String(100))
+    previous_webhook_secret: Mapped[str | None] = mapped_column(String(100), default=None)
+    previous_secret_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    #: Random key of the digests in the erasure audit lines.
+    erasure_salt: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+
+class SurveyVersion(Base):
+    __tablename__ = "survey_versions"
+    __table_args__ = (UniqueConstraint("survey_id", "number"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
+    number: Mapped[int] = mapped_column(Integer)
+    document: Mapped[dict[str, Any]] = mapped_column(JSON)
+    #: sha256 of the canonical JSON of the document: an unchanged document is not a new version.
+    digest: Mapped[str] = mapped_column(String(64))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+
+class ReferenceSample(Base):
+    """What sample-dependent detectors measure against, estimated from stored respondents."""
+
+    __tablename__ = "reference_samples"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey_version_id: Mapped[int] = mapped_column(
+        ForeignKey("survey_versions.id", ondelete="CASCADE"), index=True
+    )
+    respondents: Mapped[int] = mapped_column(Integer)
+    #: Detector name to its reference (e.g. mean and covariance), as the engine returns it.
+    data: Mapped[dict[str, Any]] = mapped_column(JSON)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+
+class Respondent(Base):
+    """One respondent's current answers and the summary of their screening."""
+
+    __tablename__ = "respondents"
+    __table_args__ = (
+        UniqueConstraint("survey_id", "respondent_id"),
+        Index("ix_respondents_received", "survey_id", "received_at", "id"),
+        Index("ix_respondents_flag_count", "survey_id", "flag_count", "id"),
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
+    respondent_id: Mapped[str] = mapped_column(String(200))
+    survey_version_id: Mapped[int] = mapped_column(ForeignKey("survey_versions.id"))
+    answers: Mapped[dict[str, Any]] = mapped_column(JSON)
+    #: sha256 of the answered items and their answers: equal digests are duplicates.
+    answers_digest: Mapped[str] = mapped_column(String(64))
+    started_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    submitted_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    duration_seconds: Mapped[float | None] = mapped_column(Float, default=None)
+    meta: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
+    received_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    screened_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    reference_id: Mapped[int | None] = mapped_column(
+        ForeignKey("reference_samples.id", ondelete="SET NULL"), default=None
+    )
+    flag_count: Mapped[int] = mapped_column(SmallInteger, default=0)
+    #: Names of the raised flags, comma-separated in registry order ("" when none).
+    flags: Mapped[str] = mapped_column(String(500), default="")
+    review_decision: Mapped[Decision | None] = mapped_column(
+        _enum(Decision, "decision"), default=None
+    )
+
+
+class ResponseHistory(Base):
+    """Earlier answers of a respondent, kept when they were replaced."""
+
+    __tablename__ = "response_history"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    respondent_pk: Mapped[int] = mapped_column(
+        ForeignKey("respondents.id", ondelete="CASCADE"), index=True
+    )
+    survey_version_id: Mapped[int] = mapped_column(ForeignKey("survey_versions.id"))
+    answers: Mapped[dict[str, Any]] = mapped_column(JSON)
+    answers_digest: Mapped[str] = mapped_column(String(64))
+    started_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    submitted_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    duration_seconds: Mapped[float | None] = mapped_column(Float, default=None)
+    meta: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
+    received_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    replaced_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    flags: Mapped[str] = mapped_column(String(500), default="")
+
+
+class DetectorOutcome(Base):
+    """One detector's result for one respondent."""
+
+    __tablename__ = "detector_outcomes"
+
+    respondent_pk: Mapped[int] = mapped_column(
+        ForeignKey("respondents.id", ondelete="CASCADE"), primary_key=True
+    )
+    detector: Mapped[str] = mapped_column(String(64), primary_key=True)
+    detector_version: Mapped[str] = mapped_column(String(32))
+    #: 0 assessed, 1 not assessed, 2 not applicable (the engine's State codes).
+    state: Mapped[int] = mapped_column(SmallInteger)
+    score: Mapped[float | None] = mapped_column(Float, default=None)
+    cutoff: Mapped[float | None] = mapped_column(Float, default=None)
+    flagged: Mapped[bool] = mapped_column(Boolean, default=False)
+    reason: Mapped[str | None] = mapped_column(Text, default=None)
+    evidence: Mapped[dict[str, Any]] = mapped_column(JSON)
+    sentence: Mapped[str] = mapped_column(Text, default="")
+    reference_id: Mapped[int | None] = mapped_column(
+        ForeignKey("reference_samples.id", ondelete="SET NULL"), default=None
+    )
+
+
+class Review(Base):
+    """A reviewer's decision; never updated or deleted except by an erasure."""
+
+    __tablename__ = "reviews"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    respondent_pk: Mapped[int] = mapped_column(
+        ForeignKey("respondents.id", ondelete="CASCADE"), index=True
+    )
+    decision: Mapped[Decision] = mapped_column(_enum(Decision, "decision"))
+    note: Mapped[str] = mapped_column(Text, default="")
+    reviewer: Mapped[str] = mapped_column(String(100))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+
+class WebhookDelivery(Base):
+    """Webhook ids already accepted, so a replayed delivery is answered as a duplicate."""
+
+    __tablename__ = "webhook_deliveries"
+    __table_args__ = (UniqueConstraint("survey_id", "webhook_id"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
+    webhook_id: Mapped[str] = mapped_column(String(200))
+    received_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), index=True)
+
+
+class Erasure(Base):
+    """The audit line left by an erasure: who, when, and a keyed digest of the respondent id
+    (which proves a given id was erased without keeping it)."""
+
+    __tablename__ = "erasures"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
+    respondent_digest: Mapped[str] = mapped_column(String(64))
+    erased_by: Mapped[str] = mapped_column(String(100))
+    erased_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)

@@ -1,0 +1,200 @@
+"""Every error as an RFC 9457 problem-details document (``application/problem+json``).
+
+Routes raise :class:`Problem` (or let a library error through); the handlers installed by
+:func:`install` turn each into::
+
+    {"type": "/problems/invalid-responses", "title": "...", "status": 422, "detail": "...",
+     "instance": "/v1/surveys/s1/responses", "errors": [{"pointer": "#/responses/3/answers/q07",
+     "detail": "...", "row": 4, "respondent_id": "r4", "item": "q07"}]}
+
+``errors`` is the field list of validation problems (RFC 9457 section 3's example member).
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+from detectors import HeedfulError, InstrumentError, ResponseDataError, SettingError
+
+__all__ = ["Problem", "install", "PROBLEM_JSON", "problem_schema", "field_error"]
+
+PROBLEM_JSON = "application/problem+json"
+log = logging.getLogger("heedful.service")
+
+_TITLES = {
+    400: "Bad request",
+    401: "Not authenticated",
+    403: "Not allowed",
+    404: "Not found",
+    405: "Method not allowed",
+    406: "Not acceptable",
+    409: "Conflict",
+    413: "Request body too large",
+    415: "Unsupported media type",
+    422: "Invalid input",
+    500: "Internal error",
+    503: "Service unavailable",
+}
+
+
+class Problem(Exception):
+    """An error answered with a problem-details document."""
+
+    def __init__(
+        self,
+        status: int,
+        detail: str,
+        *,
+        kind: str | None = None,
+        title: str | None = None,
+        errors: list[dict[str, Any]] | None = None,
+        headers: dict[str, str] | None = None,
+        **extensions: Any,
+    ):
+        self.status = status
+        self.detail = detail
+        self.kind = kind
+        self.title = title or _TITLES.get(status, "Error")
+        self.errors = errors
+        self.headers = headers
+        self.extensions = extensions
+        super().__init__(detail)
+
+    def document(self, instance: str) -> dict[str, Any]:
+        body: dict[str, Any] = {
+            "type": f"/problems/{self.kind}" if self.kind else "about:blank",
+            "title": self.title,
+            "status": self.status,
+            "detail": self.detail,
+            "instance": instance,
+        }
+        if self.errors is not None:
+            body["errors"] = self.errors
+        body.update(self.extensions)
+        return body
+
+
+def field_error(pointer: str, detail: str, **context: Any) -> dict[str, Any]:
+    """One entry of a problem's ``errors`` list; ``pointer`` is a JSON pointer into the body."""
+    return {"pointer": pointer, "detail": detail, **{k: v for k, v in context.items()}}
+
+
+def _dotted_to_pointer(location: str) -> str:
+    """'items[3].keyed' -> '#/items/3/keyed'."""
+    if not location:
+        return "#"
+    parts = location.replace("[", ".").replace("]", "").split(".")
+    return "#/" + "/".join(p.replace("~", "~0").replace("/", "~1") for p in parts if p)
+
+
+def from_library(error: HeedfulError) -> Problem:
+    """The one place where library errors become problems."""
+    if isinstance(error, InstrumentError):
+        return Problem(
+            422,
+            f"The instrument is invalid ({len(error.problems)} problem(s)).",
+            kind="invalid-instrument",
+            errors=[
+                field_error(_dotted_to_pointer(p.location), p.message, location=p.location)
+                for p in error.problems
+            ],
+        )
+    if isinstance(error, ResponseDataError):
+        errors = []
+        for p in error.problems:
+            entry = field_error(
+                f"#/responses/{p.row - 1}" + (f"/answers/{p.column}" if p.column else "")
+                if p.row is not None
+                else "#",
+                p.reason,
+                row=p.row,
+                respondent_id=p.respondent_id,
+                item=p.column,
+            )
+            errors.append(entry)
+        return Problem(
+            422,
+            f"{len(error.problems)} problem(s) in the responses; nothing was stored.",
+            kind="invalid-responses",
+            errors=errors,
+        )
+    if isinstance(error, SettingError):
+        return Problem(
+            422,
+            str(error),
+            kind="invalid-setting",
+            errors=[field_error(f"#/screening/{error.detector}/{error.setting}", str(error))],
+        )
+    return Problem(422, str(error), kind="invalid-input")
+
+
+def _respond(request: Request, problem: Problem) -> JSONResponse:
+    return JSONResponse(
+        problem.document(request.url.path),
+        status_code=problem.status,
+        media_type=PROBLEM_JSON,
+        headers=problem.headers,
+    )
+
+
+def _validation_pointer(loc: tuple[Any, ...] | list[Any]) -> str:
+    parts = [str(p) for p in loc]
+    if parts and parts[0] in ("body", "query", "path", "header"):
+        source, parts = parts[0], parts[1:]
+        if source != "body":
+            return f"{source}:" + ".".join(parts)
+    return "#/" + "/".join(parts) if parts else "#"
+
+
+def install(app: FastAPI) -> None:
+    """Register the handlers that answer every error with a problem document."""
+
+    @app.exception_handler(Problem)
+    async def _problem(request: Request, error: Problem) -> JSONResponse:
+        return _respond(request, error)
+
+    @app.exception_handler(HeedfulError)
+    async def _library(request: Request, error: HeedfulError) -> JSONResponse:
+        return _respond(request, from_library(error))
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(request: Request, error: RequestValidationError) -> JSONResponse:
+        errors = [
+            field_error(_validation_pointer(e["loc"]), e["msg"]) for e in error.errors()
+        ]
+        return _respond(
+            request,
+            Problem(422, f"{len(errors)} invalid field(s).", kind="invalid-request", errors=errors),
+        )
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http(request: Request, error: StarletteHTTPException) -> JSONResponse:
+        detail = error.detail if isinstance(error.detail, str) else _TITLES.get(error.status_code)
+        return _respond(
+            request,
+            Problem(error.status_code, detail or "Error", headers=getattr(error, "headers", None)),
+        )
+
+    @app.exception_handler(Exception)
+    async def _unexpected(request: Request, error: Exception) -> JSONResponse:
+        # Only the type is logged: request bodies (answers, meta) never reach the log.
+        log.error("unexpected %s on %s %s", type(error).__name__, request.method, request.url.path)
+        return _respond(request, Problem(500, "The server failed; nothing was stored."))
+
+
+def problem_schema() -> dict[str, Any]:
+    """OpenAPI description of a problem document, for the responses tables of the routes."""
+    return {
+        "description": "Problem details (RFC 9457)",
+        "content": {
+            PROBLEM_JSON: {
+                "schema": {"$ref": "#/components/schemas/Problem"},
+            }
+        },
+    }

@@ -1,0 +1,595 @@
+"""What goes over the wire: input and public schemas per resource (table rows never do)."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Annotated, Any, Literal
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StrictInt, StringConstraints
+
+from .models import Decision
+
+__all__ = [
+    "ResponseIn",
+    "BatchIn",
+    "IngestReply",
+    "RespondentOutcome",
+    "RejectedRow",
+    "RowProblem",
+    "LintWarning",
+    "SurveyRegistered",
+    "SurveySummaryRow",
+    "SurveyList",
+    "SurveyDetail",
+    "VersionInfo",
+    "ReferenceInfo",
+    "SecretRotated",
+    "RescreenReply",
+    "RespondentRow",
+    "RespondentPage",
+    "OutcomeOut",
+    "ReviewIn",
+    "ReviewOut",
+    "HistoryEntry",
+    "RespondentDetail",
+    "DetectorTally",
+    "DayTally",
+    "SurveyReport",
+    "DetectorInfo",
+    "DetectorList",
+    "Health",
+    "ProblemOut",
+    "FieldErrorOut",
+]
+
+RespondentId = Annotated[
+    str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)
+]
+
+
+# Ingestion ---------------------------------------------------------------------------------------
+
+
+class ResponseIn(BaseModel):
+    """One completed response, as the survey platform sends it."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [
+                {
+                    "respondent_id": "v0001",
+                    "answers": {"be01": 4, "be02": 2, "be03": None},
+                    "submitted_at": "2027-05-04T09:30:00Z",
+                    "duration_seconds": 412,
+                    "meta": {"channel": "email"},
+                }
+            ]
+        },
+    )
+
+    respondent_id: RespondentId
+    answers: dict[str, StrictInt | None] = Field(
+        description="Item id to the answer code; null or an absent item is unanswered."
+    )
+    started_at: AwareDatetime | None = None
+    submitted_at: AwareDatetime | None = None
+    duration_seconds: float | None = Field(default=None, ge=0)
+    meta: dict[str, Any] | None = Field(
+        default=None, description="Small free-form object, stored but never logged or screened."
+    )
+
+
+class BatchIn(BaseModel):
+    """Several responses in one post."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    responses: list[ResponseIn] = Field(min_length=1)
+
+
+class RowProblem(BaseModel):
+    item: str | None = Field(description="The item or field at fault; null for the whole row.")
+    reason: str
+
+
+class RejectedRow(BaseModel):
+    row: int = Field(description="1-based position of the respondent in the post.")
+    respondent_id: str | None
+    problems: list[RowProblem]
+
+
+class RespondentOutcome(BaseModel):
+    respondent_id: str
+    status: Literal["stored", "replaced", "duplicate"]
+    flag_count: int
+    flags: list[str] = Field(description="Detectors that raised a flag.")
+    not_assessed: list[str] = Field(description="Detectors that could not judge this respondent.")
+
+
+class IngestReply(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "orchard-volunteers-2027",
+                    "version": 1,
+                    "received": 1,
+                    "stored": 1,
+                    "replaced": 0,
+                    "duplicates": 0,
+                    "replayed_delivery": False,
+                    "rejected": [],
+                    "results": [
+                        {
+                            "respondent_id": "v0001",
+                            "status": "stored",
+                            "flag_count": 1,
+                            "flags": ["long_string"],
+                            "not_assessed": ["mahalanobis"],
+                        }
+                    ],
+                }
+            ]
+        }
+    )
+
+    survey: str
+    version: int = Field(description="The survey version the respondents were screened with.")
+    received: int
+    stored: int
+    replaced: int
+    duplicates: int
+    replayed_delivery: bool = Field(
+        description="True when this webhook-id was already accepted: nothing was processed again."
+    )
+    rejected: list[RejectedRow]
+    results: list[RespondentOutcome]
+
+
+# Surveys -----------------------------------------------------------------------------------------
+
+
+class LintWarning(BaseModel):
+    code: str
+    location: str
+    message: str
+
+
+class SurveyRegistered(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "orchard-volunteers-2027",
+                    "title": "Volunteer survey 2027",
+                    "version": 1,
+                    "new_version": True,
+                    "lint": [
+                        {
+                            "code": "short_scale",
+                            "location": "scale 'belonging'",
+                            "message": "has 2 item(s); a summed scale needs at least 4",
+                        }
+                    ],
+                    "webhook_secret": "whsec_MfKQ9r8GKYqrTwjUPD8ILPZIo2LaLaSw",
+                }
+            ]
+        }
+    )
+
+    survey: str
+    title: str
+    version: int
+    new_version: bool = Field(description="False when the same document was already registered.")
+    lint: list[LintWarning]
+    webhook_secret: str
+
+
+class VersionInfo(BaseModel):
+    number: int
+    created_at: dt.datetime
+
+
+class ReferenceInfo(BaseModel):
+    id: int
+    version: int
+    respondents: int
+    detectors: list[str]
+    created_at: dt.datetime
+
+
+class SurveySummaryRow(BaseModel):
+    survey: str
+    title: str
+    version: int
+    respondents: int
+    created_at: dt.datetime
+
+
+class SurveyList(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "data": [
+                        {
+                            "survey": "orchard-volunteers-2027",
+                            "title": "Volunteer survey 2027",
+                            "version": 1,
+                            "respondents": 600,
+                            "created_at": "2027-05-04T09:30:00Z",
+                        }
+                    ]
+                }
+            ]
+        }
+    )
+
+    data: list[SurveySummaryRow]
+
+
+class SurveyDetail(SurveySummaryRow):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "pulse",
+                    "title": "Pulse",
+                    "version": 1,
+                    "respondents": 0,
+                    "created_at": "2027-05-04T09:30:00Z",
+                    "versions": [{"number": 1, "created_at": "2027-05-04T09:30:00Z"}],
+                    "reference": None,
+                    "instrument": {
+                        "survey": "pulse",
+                        "response_format": {"points": 5},
+                        "items": [{"id": "q01"}],
+                    },
+                    "webhook_secret": None,
+                }
+            ]
+        }
+    )
+
+    versions: list[VersionInfo]
+    reference: ReferenceInfo | None
+    instrument: dict[str, Any]
+    webhook_secret: str | None = Field(default=None, description="Only shown to admin keys.")
+
+
+class SecretRotated(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "orchard-volunteers-2027",
+                    "webhook_secret": "whsec_MfKQ9r8GKYqrTwjUPD8ILPZIo2LaLaSw",
+                    "previous_secret_valid_until": "2027-05-04T09:30:00Z",
+                }
+            ]
+        }
+    )
+
+    survey: str
+    webhook_secret: str
+    previous_secret_valid_until: dt.datetime
+
+
+class RescreenReply(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "orchard-volunteers-2027",
+                    "respondents": 600,
+                    "references": [
+                        {
+                            "id": 1,
+                            "version": 1,
+                            "respondents": 600,
+                            "detectors": ["mahalanobis"],
+                            "created_at": "2027-05-04T09:30:00Z",
+                        }
+                    ],
+                    "without_reference": {},
+                }
+            ]
+        }
+    )
+
+    survey: str
+    respondents: int
+    references: list[ReferenceInfo]
+    without_reference: dict[str, str] = Field(
+        description="Survey version number to why no reference sample could be estimated."
+    )
+
+
+# Respondents -------------------------------------------------------------------------------------
+
+
+class RespondentRow(BaseModel):
+    respondent_id: str
+    flag_count: int
+    flags: list[str]
+    review_decision: Decision | None
+    received_at: dt.datetime
+    version: int
+
+
+class RespondentPage(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "data": [
+                        {
+                            "respondent_id": "v0042",
+                            "flag_count": 2,
+                            "flags": ["straightlining", "long_string"],
+                            "review_decision": None,
+                            "received_at": "2027-05-04T09:30:00Z",
+                            "version": 1,
+                        }
+                    ],
+                    "next_cursor": "WyItZmxhZ19jb3VudCIsMiw0Ml0",
+                }
+            ]
+        }
+    )
+
+    data: list[RespondentRow]
+    next_cursor: str | None = Field(
+        description="Pass as `cursor` for the next page; null on the last page."
+    )
+
+
+class OutcomeOut(BaseModel):
+    detector: str
+    detector_version: str
+    state: Literal["assessed", "not_assessed", "not_applicable"]
+    reason: str | None
+    score: float | None
+    cutoff: float | None
+    flagged: bool
+    evidence: dict[str, Any]
+    sentence: str
+    reference_id: int | None
+
+
+class ReviewIn(BaseModel):
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [{"decision": "exclude", "note": "Same answer on every page."}]
+        },
+    )
+
+    decision: Decision
+    note: str = Field(default="", max_length=5000)
+
+
+class ReviewOut(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "decision": "exclude",
+                    "note": "Same answer on every page.",
+                    "reviewer": "analyst-ana",
+                    "created_at": "2027-05-04T09:30:00Z",
+                }
+            ]
+        }
+    )
+
+    decision: Decision
+    note: str
+    reviewer: str
+    created_at: dt.datetime
+
+
+class HistoryEntry(BaseModel):
+    answers: dict[str, Any]
+    version: int
+    received_at: dt.datetime
+    replaced_at: dt.datetime
+    flags: list[str]
+
+
+class RespondentDetail(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "respondent_id": "v0042",
+                    "version": 1,
+                    "received_at": "2027-05-04T09:30:00Z",
+                    "started_at": None,
+                    "submitted_at": "2027-05-04T09:30:00Z",
+                    "duration_seconds": 95.0,
+                    "meta": None,
+                    "answers": {"be01": 3, "be02": 3},
+                    "flag_count": 1,
+                    "flags": ["long_string"],
+                    "review_decision": None,
+                    "results": [
+                        {
+                            "detector": "long_string",
+                            "detector_version": "1",
+                            "state": "assessed",
+                            "reason": None,
+                            "score": 32.0,
+                            "cutoff": 14.0,
+                            "flagged": True,
+                            "evidence": {"run_length": 32, "answer": 3},
+                            "sentence": "same answer, 3, on 32 items in a row, be01 to sa08",
+                            "reference_id": None,
+                        }
+                    ],
+                    "reviews": [],
+                    "history": [],
+                }
+            ]
+        }
+    )
+
+    respondent_id: str
+    version: int
+    received_at: dt.datetime
+    started_at: dt.datetime | None
+    submitted_at: dt.datetime | None
+    duration_seconds: float | None
+    meta: dict[str, Any] | None
+    answers: dict[str, Any]
+    flag_count: int
+    flags: list[str]
+    review_decision: Decision | None
+    results: list[OutcomeOut]
+    reviews: list[ReviewOut]
+    history: list[HistoryEntry]
+
+
+class DetectorTally(BaseModel):
+    assessed: int
+    flagged: int
+    not_assessed: int
+    not_applicable: int
+    flag_rate: float | None = Field(description="flagged / assessed; null when none assessed.")
+
+
+class DayTally(BaseModel):
+    day: dt.date
+    respondents: int
+    flagged_any: int
+    flagged: dict[str, int]
+
+
+class SurveyReport(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "survey": "orchard-volunteers-2027",
+                    "respondents": 600,
+                    "flagged_any": 71,
+                    "reviewed": {"none": 598, "exclude": 2},
+                    "detectors": {
+                        "long_string": {
+                            "assessed": 600,
+                            "flagged": 18,
+                            "not_assessed": 0,
+                            "not_applicable": 0,
+                            "flag_rate": 0.03,
+                        }
+                    },
+                    "days": [
+                        {
+                            "day": "2027-05-04",
+                            "respondents": 600,
+                            "flagged_any": 71,
+                            "flagged": {"long_string": 18},
+                        }
+                    ],
+                }
+            ]
+        }
+    )
+
+    survey: str
+    respondents: int
+    flagged_any: int
+    reviewed: dict[str, int]
+    detectors: dict[str, DetectorTally]
+    days: list[DayTally]
+
+
+# Detectors, health, problems ---------------------------------------------------------------------
+
+
+class DetectorInfo(BaseModel):
+    name: str
+    version: str
+    family: str
+    summary: str
+    reference: str
+    needs_sample: bool
+    defaults: dict[str, Any]
+
+
+class DetectorList(BaseModel):
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "data": [
+                        {
+                            "name": "long_string",
+                            "version": "1",
+                            "family": "invariance",
+                            "summary": "Longest run of identical consecutive answers.",
+                            "reference": "Johnson, J. A. (2005). ...",
+                            "needs_sample": False,
+                            "defaults": {
+                                "run_cutoff": None,
+                                "repeat_probability": 0.5,
+                                "alpha": 0.001,
+                            },
+                        }
+                    ]
+                }
+            ]
+        }
+    )
+
+    data: list[DetectorInfo]
+
+
+class Health(BaseModel):
+    model_config = ConfigDict(json_schema_extra={"examples": [{"status": "ok"}]})
+
+    status: Literal["ok"]
+
+
+class FieldErrorOut(BaseModel):
+    model_config = ConfigDict(extra="allow")
+
+    pointer: str = Field(description="JSON pointer into the body (or query:NAME, path:NAME).")
+    detail: str
+
+
+class ProblemOut(BaseModel):
+    """RFC 9457 problem details."""
+
+    model_config = ConfigDict(
+        extra="allow",
+        title="Problem",
+        json_schema_extra={
+            "examples": [
+                {
+                    "type": "/problems/invalid-responses",
+                    "title": "Invalid input",
+                    "status": 422,
+                    "detail": "1 problem(s) in the responses; nothing was stored.",
+                    "instance": "/v1/surveys/orchard-volunteers-2027/responses",
+                    "errors": [
+                        {
+                            "pointer": "#/responses/0/answers/be01",
+                            "detail": "7 is outside the answer range 1..5",
+                            "row": 1,
+                            "respondent_id": "v0001",
+                            "item": "be01",
+                        }
+                    ],
+                }
+            ]
+        },
+    )
+
+    type: str
+    title: str
+    status: int
+    detail: str
+    instance: str
+    errors: list[FieldErrorOut] | None = None

@@ -1,0 +1,77 @@
+"""The service's settings: one object, read from ``HEEDFUL_*`` environment variables once.
+
+Bad values fail when the settings are built (at start-up), never at the first request.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+__all__ = ["Settings", "get_settings", "DEFAULT_DATABASE_URL", "SUPPORTED_DRIVERS"]
+
+DEFAULT_DATABASE_URL = "sqlite:///./heedful.db"
+#: The database URLs Heedful is tested on.
+SUPPORTED_DRIVERS = ("sqlite", "sqlite+pysqlite", "postgresql+psycopg")
+
+
+class Settings(BaseSettings):
+    """Everything an operator can set. Each field is read from ``HEEDFUL_<NAME>``."""
+
+    model_config = SettingsConfigDict(env_prefix="HEEDFUL_", extra="ignore", frozen=True)
+
+    database_url: str = Field(
+        default=DEFAULT_DATABASE_URL,
+        description="SQLAlchemy URL: sqlite:///path.db or postgresql+psycopg://user@host/db.",
+    )
+    host: str = Field(default="127.0.0.1", description="Address `heedful serve` listens on.")
+    port: int = Field(default=8000, ge=1, le=65535, description="Port `heedful serve` listens on.")
+    max_body_bytes: int = Field(
+        default=32 * 1024 * 1024, ge=1024, description="Largest accepted request body (413 above)."
+    )
+    max_batch_respondents: int = Field(
+        default=50_000, ge=1, description="Most respondents accepted in one post."
+    )
+    max_meta_bytes: int = Field(
+        default=2048, ge=0, description="Largest `meta` object per respondent, as compact JSON."
+    )
+    webhook_tolerance_seconds: int = Field(
+        default=300, ge=1, description="Signed webhooks older or newer than this are refused."
+    )
+    secret_grace_seconds: int = Field(
+        default=3600, ge=0, description="How long a rotated-out webhook secret still verifies."
+    )
+    reference_min_respondents: int = Field(
+        default=100,
+        ge=2,
+        description="Fewest stored respondents from which a reference sample is estimated.",
+    )
+    page_limit_max: int = Field(default=1000, ge=1, description="Largest `limit` of a page.")
+    log_level: str = Field(default="info", description="Log level of `heedful serve`.")
+
+    @field_validator("database_url")
+    @classmethod
+    def _supported_database(cls, value: str) -> str:
+        driver = value.split("://", 1)[0] if "://" in value else ""
+        if driver not in SUPPORTED_DRIVERS:
+            raise ValueError(
+                f"unsupported database URL {driver or value!r}; use sqlite:///FILE or "
+                "postgresql+psycopg://USER@HOST/DB"
+            )
+        return value
+
+    @field_validator("log_level")
+    @classmethod
+    def _known_level(cls, value: str) -> str:
+        levels = ("critical", "error", "warning", "info", "debug")
+        if value.lower() not in levels:
+            raise ValueError(f"log_level must be one of {', '.join(levels)}")
+        return value.lower()
+
+
+@lru_cache(maxsize=1)
+def get_settings() -> Settings:
+    """The settings of this process, read from the environment on first use."""
+    return Settings()

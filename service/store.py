@@ -1,0 +1,654 @@
+"""Data functions: keys, surveys, respondents, detector outcomes, reviews, erasures.
+
+Every function takes a session and leaves the transaction to its caller. Bulk writes go through
+SQLAlchemy Core (``executemany``), never one ORM object per row.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import datetime as dt
+import hashlib
+import hmac
+import json
+import secrets
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import orjson
+from sqlalchemy import (
+    Row,
+    and_,
+    bindparam,
+    case,
+    delete,
+    exists,
+    func,
+    insert,
+    literal,
+    or_,
+    select,
+    update,
+)
+from sqlalchemy.orm import Session
+
+from .db import utcnow
+from .models import (
+    ApiKey,
+    Decision,
+    DetectorOutcome,
+    Erasure,
+    ReferenceSample,
+    Respondent,
+    ResponseHistory,
+    Review,
+    Role,
+    Survey,
+    SurveyVersion,
+    WebhookDelivery,
+)
+from .security import new_token, new_webhook_secret
+
+__all__ = [
+    "canonical_digest",
+    "create_key",
+    "list_keys",
+    "revoke_key",
+    "find_key",
+    "get_survey",
+    "list_surveys",
+    "register_version",
+    "rotate_secret",
+    "versions_of",
+    "version_numbers",
+    "reference_of",
+    "count_respondents",
+    "existing_respondents",
+    "insert_respondents",
+    "replace_respondents",
+    "insert_outcomes",
+    "record_deliveries",
+    "deliveries_seen",
+    "prune_deliveries",
+    "ListQuery",
+    "Cursor",
+    "list_respondents",
+    "get_respondent",
+    "outcomes_of",
+    "reviews_of",
+    "history_of",
+    "add_review",
+    "erase_respondent",
+    "report",
+    "BadCursor",
+]
+
+#: Rows per IN (...) list: well under SQLite's bound-parameter limit.
+IN_CHUNK = 500
+
+
+def canonical_digest(value: Any) -> str:
+    """sha256 of the canonical JSON of ``value`` (sorted keys, no spaces)."""
+    text = json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _chunks(values: Sequence[Any], size: int = IN_CHUNK) -> Iterable[Sequence[Any]]:
+    for start in range(0, len(values), size):
+        yield values[start : start + size]
+
+
+# Keys -------------------------------------------------------------------------------------------
+
+
+def create_key(session: Session, name: str, role: Role) -> str:
+    """Store a new key and return its token (the only time it is visible)."""
+    token = new_token()
+    session.add(ApiKey(name=name, role=role, lookup=token.lookup, token_hash=token.token_hash))
+    session.flush()
+    return token.token
+
+
+def list_keys(session: Session) -> list[ApiKey]:
+    return list(session.scalars(select(ApiKey).order_by(ApiKey.name)))
+
+
+def revoke_key(session: Session, name: str) -> bool:
+    key = session.scalar(select(ApiKey).where(ApiKey.name == name))
+    if key is None:
+        return False
+    if key.revoked_at is None:
+        key.revoked_at = utcnow()
+    return True
+
+
+def find_key(session: Session, lookup: str) -> Row[Any] | None:
+    """(name, role, token_hash) of the active key with this lookup part."""
+    return session.execute(
+        select(ApiKey.name, ApiKey.role, ApiKey.token_hash).where(
+            ApiKey.lookup == lookup, ApiKey.revoked_at.is_(None)
+        )
+    ).first()
+
+
+# Surveys ----------------------------------------------------------------------------------------
+
+
+def get_survey(session: Session, survey: str) -> Survey | None:
+    return session.scalar(select(Survey).where(Survey.survey == survey))
+
+
+def list_surveys(session: Session) -> list[tuple[Survey, int, int]]:
+    """(survey, current version number, respondent count) for every survey."""
+    counts = (
+        select(Respondent.survey_id, func.count().label("n"))
+        .group_by(Respondent.survey_id)
+        .subquery()
+    )
+    rows = session.execute(
+        select(Survey, SurveyVersion.number, func.coalesce(counts.c.n, 0))
+        .join(SurveyVersion, SurveyVersion.id == Survey.current_version_id)
+        .outerjoin(counts, counts.c.survey_id == Survey.id)
+        .order_by(Survey.survey)
+    )
+    return [(s, int(n), int(c)) for s, n, c in rows]
+
+
+@dataclass(frozen=True)
+class Registered:
+    survey: Survey
+    version: SurveyVersion
+    new_version: bool
+
+
+def register_version(session: Session, document: dict[str, Any], title: str) -> Registered:
+    """Register an instrument document: a new survey, a new version of a changed one, or
+    nothing new when the same document is already the current version."""
+    survey_id = document["survey"]
+    digest = canonical_digest(document)
+    survey = session.scalar(select(Survey).where(Survey.survey == survey_id).with_for_update())
+    if survey is None:
+        survey = Survey(
+            survey=survey_id,
+            title=title,
+            webhook_secret=new_webhook_secret(),
+            erasure_salt=secrets.token_hex(32),
+        )
+        session.add(survey)
+        session.flush()
+    else:
+        current = session.get(SurveyVersion, survey.current_version_id)
+        if current is not None and current.digest == digest:
+            return Registered(survey, current, new_version=False)
+    number = (
+        session.scalar(
+            select(func.max(SurveyVersion.number)).where(SurveyVersion.survey_id == survey.id)
+        )
+        or 0
+    ) + 1
+    version = SurveyVersion(survey_id=survey.id, number=number, document=document, digest=digest)
+    session.add(version)
+    session.flush()
+    survey.current_version_id = version.id
+    # A reference sample belongs to one version; the new one has none until a re-screen.
+    survey.current_reference_id = None
+    survey.title = title
+    return Registered(survey, version, new_version=True)
+
+
+def rotate_secret(session: Session, survey: Survey, grace: dt.timedelta) -> dt.datetime:
+    until = utcnow() + grace
+    survey.previous_webhook_secret = survey.webhook_secret
+    survey.previous_secret_until = until
+    survey.webhook_secret = new_webhook_secret()
+    return until
+
+
+def versions_of(session: Session, survey_id: int) -> list[SurveyVersion]:
+    return list(
+        session.scalars(
+            select(SurveyVersion)
+            .where(SurveyVersion.survey_id == survey_id)
+            .order_by(SurveyVersion.number)
+        )
+    )
+
+
+def version_numbers(session: Session, survey_id: int) -> dict[int, int]:
+    """Version id to version number."""
+    rows = session.execute(
+        select(SurveyVersion.id, SurveyVersion.number).where(SurveyVersion.survey_id == survey_id)
+    )
+    return {vid: number for vid, number in rows}
+
+
+def reference_of(session: Session, reference_id: int | None) -> ReferenceSample | None:
+    return None if reference_id is None else session.get(ReferenceSample, reference_id)
+
+
+def count_respondents(session: Session, survey_id: int) -> int:
+    return int(
+        session.scalar(select(func.count()).where(Respondent.survey_id == survey_id)) or 0
+    )
+
+
+# Respondents: writes ----------------------------------------------------------------------------
+
+
+def existing_respondents(
+    session: Session, survey_id: int, respondent_ids: Sequence[str]
+) -> dict[str, Row[Any]]:
+    """respondent id -> (id, respondent_id, answers_digest, flags, flag_count) of stored ones."""
+    out: dict[str, Row[Any]] = {}
+    for chunk in _chunks(list(respondent_ids)):
+        rows = session.execute(
+            select(
+                Respondent.id,
+                Respondent.respondent_id,
+                Respondent.answers_digest,
+                Respondent.flags,
+                Respondent.flag_count,
+            ).where(Respondent.survey_id == survey_id, Respondent.respondent_id.in_(chunk))
+        )
+        for row in rows:
+            out[row.respondent_id] = row
+    return out
+
+
+def not_assessed_of(session: Session, pks: Sequence[int]) -> dict[int, list[str]]:
+    """Respondent pk -> detectors that could not judge it."""
+    out: dict[int, list[str]] = {}
+    for chunk in _chunks(list(pks)):
+        rows = session.execute(
+            select(DetectorOutcome.respondent_pk, DetectorOutcome.detector).where(
+                DetectorOutcome.respondent_pk.in_(chunk), DetectorOutcome.state != 0
+            )
+        )
+        for pk, name in rows:
+            out.setdefault(pk, []).append(name)
+    return out
+
+
+def insert_respondents(session: Session, rows: list[dict[str, Any]]) -> list[int]:
+    """Insert respondents (dicts of column values); return their ids in the same order."""
+    if not rows:
+        return []
+    table = Respondent.__table__
+    result = session.connection().execute(
+        insert(table).returning(table.c.id, sort_by_parameter_order=True), rows
+    )
+    return [r[0] for r in result]
+
+
+def replace_respondents(session: Session, rows: list[dict[str, Any]], now: dt.datetime) -> None:
+    """Move the stored answers of ``rows`` (each with ``pk``) to history, then overwrite them
+    and drop their old outcomes."""
+    if not rows:
+        return
+    pks = [r["pk"] for r in rows]
+    history_columns = [
+        "respondent_pk",
+        "survey_version_id",
+        "answers",
+        "answers_digest",
+        "started_at",
+        "submitted_at",
+        "duration_seconds",
+        "meta",
+        "received_at",
+        "flags",
+        "replaced_at",
+    ]
+    connection = session.connection()
+    for chunk in _chunks(pks):
+        source = select(
+            Respondent.id,
+            Respondent.survey_version_id,
+            Respondent.answers,
+            Respondent.answers_digest,
+            Respondent.started_at,
+            Respondent.submitted_at,
+            Respondent.duration_seconds,
+            Respondent.meta,
+            Respondent.received_at,
+            Respondent.flags,
+            literal(now, type_=ResponseHistory.replaced_at.type),
+        ).where(Respondent.id.in_(chunk))
+        connection.execute(
+            insert(ResponseHistory.__table__).from_select(history_columns, source)
+        )
+        connection.execute(
+            delete(DetectorOutcome.__table__).where(
+                DetectorOutcome.__table__.c.respondent_pk.in_(chunk)
+            )
+        )
+    table = Respondent.__table__
+    values = {k: bindparam(k) for k in rows[0] if k != "pk"}
+    connection.execute(update(table).where(table.c.id == bindparam("pk")).values(values), rows)
+
+
+def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
+    """Set flag_count, flags, reference_id and screened_at of respondents (each with ``pk``)."""
+    if not rows:
+        return
+    table = Respondent.__table__
+    values = {k: bindparam(k) for k in rows[0] if k != "pk"}
+    session.connection().execute(
+        update(table).where(table.c.id == bindparam("pk")).values(values), rows
+    )
+
+
+def delete_outcomes(session: Session, pks: Sequence[int]) -> None:
+    for chunk in _chunks(list(pks)):
+        session.connection().execute(
+            delete(DetectorOutcome.__table__).where(
+                DetectorOutcome.__table__.c.respondent_pk.in_(chunk)
+            )
+        )
+
+
+#: Column order of the tuples given to :func:`insert_outcomes`.
+OUTCOME_COLUMNS = (
+    "respondent_pk", "detector", "detector_version", "state", "score", "cutoff", "flagged",
+    "reason", "evidence", "sentence", "reference_id",
+)
+
+
+def json_text(value: Any) -> str:
+    """Compact JSON text (NaN becomes null), as stored in JSON columns."""
+    return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+
+
+def insert_outcomes(session: Session, rows: list[tuple]) -> None:
+    """Bulk-insert outcome tuples (``OUTCOME_COLUMNS`` order, evidence as JSON text).
+
+    This is the widest write (respondents x detectors), so it goes to the driver's
+    ``executemany`` directly, without per-row parameter processing.
+    """
+    if not rows:
+        return
+    connection = session.connection()
+    style = connection.dialect.paramstyle
+    marks = {"qmark": "?", "format": "%s", "pyformat": "%s"}[style]
+    sql = (
+        f"INSERT INTO {DetectorOutcome.__tablename__} ({', '.join(OUTCOME_COLUMNS)}) "
+        f"VALUES ({', '.join([marks] * len(OUTCOME_COLUMNS))})"
+    )
+    connection.exec_driver_sql(sql, rows)
+
+
+def deliveries_seen(session: Session, survey_id: int, webhook_ids: Sequence[str]) -> set[str]:
+    """Which of these webhook ids were already accepted for the survey."""
+    seen: set[str] = set()
+    for chunk in _chunks(list(webhook_ids)):
+        seen.update(
+            session.scalars(
+                select(WebhookDelivery.webhook_id).where(
+                    WebhookDelivery.survey_id == survey_id, WebhookDelivery.webhook_id.in_(chunk)
+                )
+            )
+        )
+    return seen
+
+
+def record_deliveries(session: Session, rows: list[dict[str, Any]]) -> None:
+    if rows:
+        session.connection().execute(insert(WebhookDelivery.__table__), rows)
+
+
+def prune_deliveries(session: Session, before: dt.datetime) -> int:
+    """Forget webhook ids older than ``before`` (their timestamps are refused anyway)."""
+    result = session.execute(delete(WebhookDelivery).where(WebhookDelivery.received_at < before))
+    return int(getattr(result, "rowcount", 0) or 0)
+
+
+# Respondents: reads -----------------------------------------------------------------------------
+
+SORTS = {
+    "received_at": Respondent.received_at,
+    "flag_count": Respondent.flag_count,
+    "respondent_id": Respondent.respondent_id,
+}
+
+
+class BadCursor(ValueError):
+    """A cursor that this service did not issue for this query."""
+
+
+@dataclass(frozen=True)
+class Cursor:
+    sort: str
+    value: Any
+    pk: int
+
+    def encode(self) -> str:
+        value = self.value.isoformat() if isinstance(self.value, dt.datetime) else self.value
+        raw = json.dumps([self.sort, value, self.pk], separators=(",", ":")).encode()
+        return base64.urlsafe_b64encode(raw).decode().rstrip("=")
+
+    @classmethod
+    def decode(cls, text: str, sort: str) -> Cursor:
+        try:
+            raw = base64.urlsafe_b64decode(text + "=" * (-len(text) % 4))
+            sort_of, value, pk = json.loads(raw)
+        except (binascii.Error, ValueError, TypeError) as error:
+            raise BadCursor("the cursor is not one this service issued") from error
+        if sort_of != sort:
+            raise BadCursor(f"the cursor belongs to sort={sort_of!r}, not sort={sort!r}")
+        field = sort.lstrip("-")
+        try:
+            if field == "received_at":
+                value = dt.datetime.fromisoformat(value)
+            elif field == "flag_count":
+                value = int(value)
+            else:
+                value = str(value)
+            pk = int(pk)
+        except (TypeError, ValueError) as error:
+            raise BadCursor("the cursor is not one this service issued") from error
+        return cls(sort, value, pk)
+
+
+@dataclass(frozen=True)
+class ListQuery:
+    flagged: bool | None = None
+    detector: str | None = None
+    review: str | None = None  # a Decision value, or "none" for not reviewed
+    received_after: dt.datetime | None = None
+    received_before: dt.datetime | None = None
+    min_flags: int | None = None
+    sort: str = "-flag_count"
+    limit: int = 100
+    cursor: str | None = None
+
+
+def list_respondents(
+    session: Session, survey_id: int, query: ListQuery
+) -> tuple[list[Row[Any]], str | None]:
+    """One page of respondents and the cursor of the next page (None on the last)."""
+    descending = query.sort.startswith("-")
+    column = SORTS[query.sort.lstrip("-")]
+    statement = select(
+        Respondent.id,
+        Respondent.respondent_id,
+        Respondent.flag_count,
+        Respondent.flags,
+        Respondent.review_decision,
+        Respondent.received_at,
+        Respondent.survey_version_id,
+    ).where(Respondent.survey_id == survey_id)
+    # Sorted by another column, the flag count is only a filter: "+ 0" keeps the planner from
+    # reading the flag-count index and sorting every flagged row, instead of walking the sort
+    # column's index and stopping after one page.
+    count = Respondent.flag_count if column is Respondent.flag_count else Respondent.flag_count + 0
+    if query.flagged is True:
+        statement = statement.where(count > 0)
+    elif query.flagged is False:
+        statement = statement.where(count == 0)
+    if query.min_flags is not None:
+        statement = statement.where(count >= query.min_flags)
+    if query.detector is not None:
+        statement = statement.where(
+            exists().where(
+                DetectorOutcome.respondent_pk == Respondent.id,
+                DetectorOutcome.detector == query.detector,
+                DetectorOutcome.flagged.is_(True),
+            )
+        )
+    if query.review == "none":
+        statement = statement.where(Respondent.review_decision.is_(None))
+    elif query.review is not None:
+        statement = statement.where(Respondent.review_decision == Decision(query.review))
+    if query.received_after is not None:
+        statement = statement.where(Respondent.received_at >= query.received_after)
+    if query.received_before is not None:
+        statement = statement.where(Respondent.received_at < query.received_before)
+    if query.cursor is not None:
+        cursor = Cursor.decode(query.cursor, query.sort)
+        same = column == cursor.value
+        if descending:
+            after = or_(column < cursor.value, and_(same, Respondent.id < cursor.pk))
+        else:
+            after = or_(column > cursor.value, and_(same, Respondent.id > cursor.pk))
+        statement = statement.where(after)
+    order = (column.desc(), Respondent.id.desc()) if descending else (column, Respondent.id)
+    rows = list(session.execute(statement.order_by(*order).limit(query.limit + 1)))
+    next_cursor = None
+    if len(rows) > query.limit:
+        rows = rows[: query.limit]
+        last = rows[-1]
+        next_cursor = Cursor(query.sort, getattr(last, column.key), last.id).encode()
+    return rows, next_cursor
+
+
+def get_respondent(session: Session, survey_id: int, respondent_id: str) -> Respondent | None:
+    return session.scalar(
+        select(Respondent).where(
+            Respondent.survey_id == survey_id, Respondent.respondent_id == respondent_id
+        )
+    )
+
+
+def outcomes_of(session: Session, pk: int) -> list[DetectorOutcome]:
+    return list(
+        session.scalars(select(DetectorOutcome).where(DetectorOutcome.respondent_pk == pk))
+    )
+
+
+def reviews_of(session: Session, pk: int) -> list[Review]:
+    return list(
+        session.scalars(
+            select(Review).where(Review.respondent_pk == pk).order_by(Review.created_at, Review.id)
+        )
+    )
+
+
+def history_of(session: Session, pk: int) -> list[ResponseHistory]:
+    return list(
+        session.scalars(
+            select(ResponseHistory)
+            .where(ResponseHistory.respondent_pk == pk)
+            .order_by(ResponseHistory.replaced_at, ResponseHistory.id)
+        )
+    )
+
+
+def add_review(
+    session: Session, respondent: Respondent, decision: Decision, note: str, reviewer: str
+) -> Review:
+    review = Review(
+        respondent_pk=respondent.id, decision=decision, note=note, reviewer=reviewer,
+        created_at=utcnow(),
+    )
+    session.add(review)
+    respondent.review_decision = decision
+    session.flush()
+    return review
+
+
+def erase_respondent(session: Session, survey: Survey, respondent: Respondent, by: str) -> None:
+    """Delete a respondent's answers, history, outcomes and reviews; keep one audit line."""
+    digest = erasure_digest(survey, respondent.respondent_id)
+    session.delete(respondent)
+    session.add(Erasure(survey_id=survey.id, respondent_digest=digest, erased_by=by))
+    session.flush()
+
+
+def erasure_digest(survey: Survey, respondent_id: str) -> str:
+    """Keyed digest of a respondent id: proves an id was erased without keeping the id."""
+    return hmac.new(
+        bytes.fromhex(survey.erasure_salt), respondent_id.encode("utf-8"), hashlib.sha256
+    ).hexdigest()
+
+
+# Summary ----------------------------------------------------------------------------------------
+
+
+def _day(session: Session) -> Any:
+    if session.get_bind().dialect.name == "sqlite":
+        return func.date(Respondent.received_at)
+    return func.date(func.timezone("UTC", Respondent.received_at))
+
+
+def report(session: Session, survey_id: int) -> dict[str, Any]:
+    """Counts of respondents and flags, per detector and per day of arrival."""
+    mine = Respondent.survey_id == survey_id
+    flagged_any = case((Respondent.flag_count > 0, 1), else_=0)
+    total, any_flag = session.execute(
+        select(func.count(), func.coalesce(func.sum(flagged_any), 0)).where(mine)
+    ).one()
+    reviewed = {
+        (decision.value if decision is not None else "none"): int(n)
+        for decision, n in session.execute(
+            select(Respondent.review_decision, func.count()).where(mine).group_by(
+                Respondent.review_decision
+            )
+        )
+    }
+    detectors: dict[str, dict[str, int]] = {}
+    rows = session.execute(
+        select(
+            DetectorOutcome.detector, DetectorOutcome.state, DetectorOutcome.flagged, func.count()
+        )
+        .join(Respondent, Respondent.id == DetectorOutcome.respondent_pk)
+        .where(mine)
+        .group_by(DetectorOutcome.detector, DetectorOutcome.state, DetectorOutcome.flagged)
+    )
+    for name, state, flagged, n in rows:
+        tally = detectors.setdefault(
+            name, {"assessed": 0, "flagged": 0, "not_assessed": 0, "not_applicable": 0}
+        )
+        key = {0: "assessed", 1: "not_assessed", 2: "not_applicable"}[int(state)]
+        tally[key] += int(n)
+        if flagged:
+            tally["flagged"] += int(n)
+    day = _day(session).label("day")
+    days: dict[str, dict[str, Any]] = {}
+    for when, n, n_flagged in session.execute(
+        select(day, func.count(), func.coalesce(func.sum(flagged_any), 0))
+        .where(mine)
+        .group_by(day)
+        .order_by(day)
+    ):
+        days[str(when)] = {
+            "day": dt.date.fromisoformat(str(when)),
+            "respondents": int(n),
+            "flagged_any": int(n_flagged),
+            "flagged": {},
+        }
+    for when, name, n in session.execute(
+        select(day, DetectorOutcome.detector, func.count())
+        .join(Respondent, Respondent.id == DetectorOutcome.respondent_pk)
+        .where(mine, DetectorOutcome.flagged.is_(True))
+        .group_by(day, DetectorOutcome.detector)
+    ):
+        days[str(when)]["flagged"][name] = int(n)
+    return {
+        "respondents": int(total),
+        "flagged_any": int(any_flag),
+        "reviewed": reviewed,
+        "detectors": detectors,
+        "days": list(days.values()),
+    }

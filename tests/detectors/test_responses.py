@@ -1,0 +1,90 @@
+"""Building the response matrix from a table: conversion and every bad-input path."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from detectors import MISSING, ResponseDataError, matrix_from_frame
+from tests.conftest import make_instrument
+
+
+@pytest.fixture()
+def inst():
+    return make_instrument(n_items=3)
+
+
+def frame(rows, columns=("respondent_id", "q01", "q02", "q03")):
+    return pd.DataFrame(rows, columns=list(columns))
+
+
+def test_valid_table_with_missing_cells(inst):
+    checked = matrix_from_frame(inst, frame([["a", 1, 2, None], ["b", 5, "", 3]]).astype(object))
+    m = checked.matrix
+    assert m.respondent_ids.tolist() == ["a", "b"]
+    assert m.answers.tolist() == [[1, 2, MISSING], [5, MISSING, 3]]
+    assert m.answered.tolist() == [[True, True, False], [True, False, True]]
+    assert np.isnan(m.as_float()[0, 2])
+    assert checked.problems == [] and checked.rejected.empty
+
+
+def test_every_cell_problem_is_listed_with_row_and_column(inst):
+    table = frame(
+        [["a", 1, 2, 3], ["b", 2.5, 9, "x"], ["a", 1, 1, 1], ["", 1, 1, 1]]
+    ).astype(object)
+    with pytest.raises(ResponseDataError) as caught:
+        matrix_from_frame(inst, table)
+    text = [str(p) for p in caught.value.problems]
+    assert "row 2, respondent 'b', column 'q01': not a whole number: 2.5" in text
+    assert "row 2, respondent 'b', column 'q02': 9 is outside the answer range 1..5" in text
+    assert "row 2, respondent 'b', column 'q03': not a number: 'x'" in text
+    assert any(t.startswith("row 3, respondent 'a'") and "appears more than once" in t for t in text)
+    assert any(t.startswith("row 1, respondent 'a'") and "appears more than once" in t for t in text)
+    assert "row 4, column 'respondent_id': respondent id is empty" in text
+    assert "(first at row 1)" in str(caught.value)
+
+
+def test_message_shows_first_twenty_and_the_count(inst):
+    rows = [[f"r{i}", 9, 1, 1] for i in range(30)]
+    with pytest.raises(ResponseDataError) as caught:
+        matrix_from_frame(inst, frame(rows))
+    message = str(caught.value)
+    assert "30 problem(s)" in message and "... and 10 more" in message
+    assert message.count("\n  - ") == 20
+
+
+def test_table_problems_always_raise(inst):
+    table = frame([["a", 1, 2, 3]], columns=("id", "q01", "q02", "extra"))
+    with pytest.raises(ResponseDataError) as caught:
+        matrix_from_frame(inst, table, skip_invalid=True)
+    text = [str(p) for p in caught.value.problems]
+    assert "column 'respondent_id': respondent id column is missing" in text
+    assert "column 'q03': item column is missing" in text
+    assert "column 'id': unknown column: not an item of the instrument" in text
+
+
+def test_skip_invalid_keeps_valid_rows_and_reports_rejected(inst):
+    table = frame([["a", 1, 2, 3], ["b", 7, 2, 3], ["c", 3, 3, 3]])
+    checked = matrix_from_frame(inst, table, skip_invalid=True)
+    assert checked.matrix.respondent_ids.tolist() == ["a", "c"]
+    assert checked.rejected["respondent_id"].tolist() == ["b"]
+    assert checked.rejected["row"].tolist() == [2]
+    assert checked.rejected["reason"].iloc[0] == "q01: 7 is outside the answer range 1..5"
+
+
+def test_durations_are_read_and_checked(inst):
+    table = frame([["a", 1, 2, 3, 120.0], ["b", 1, 2, 3, None]],
+                  columns=("respondent_id", "q01", "q02", "q03", "duration_seconds"))
+    checked = matrix_from_frame(inst, table)
+    assert checked.matrix.durations[0] == 120.0 and np.isnan(checked.matrix.durations[1])
+    table.loc[1, "duration_seconds"] = -5
+    with pytest.raises(ResponseDataError, match="duration must be a number of seconds"):
+        matrix_from_frame(inst, table)
+
+
+def test_from_arrays_rejects_bad_shape(inst):
+    from detectors import ResponseMatrix
+
+    with pytest.raises(ValueError, match=r"shape \(n, 3\)"):
+        ResponseMatrix.from_arrays(inst, np.ones((2, 4)))
