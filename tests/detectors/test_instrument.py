@@ -90,13 +90,17 @@ def test_rejections_name_the_field(change, expected):
 def test_duplicate_ids_and_bad_keying_and_instructed_range():
     d = doc()
     d["items"][1]["id"] = "a1"
-    d["items"][2]["keyed"] = 2
     d["items"][4]["instructed_answer"] = 9
     messages = problems_of(d)
     joined = "\n".join(messages)
     assert "items[1].id: duplicate item id 'a1'" in joined
-    assert "items[2].keyed" in joined
     assert "items[4].instructed_answer: 9 is outside the item's answer range 1..5" in joined
+
+
+def test_field_errors_name_the_item():
+    d = doc()
+    d["items"][2]["keyed"] = 2
+    assert any(m.startswith("items[2].keyed:") for m in problems_of(d))
 
 
 def test_unknown_field_rejected():
