@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run test lint bench openapi clean
+.PHONY: run screen-demo test lint bench openapi clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -13,6 +13,9 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 run: $(STAMP)
+	$(BIN)/python -m service.demo_server
+
+screen-demo: $(STAMP)
 	$(BIN)/heedful demo-data --out demo
 	$(BIN)/heedful lint demo/instrument.json
 	$(BIN)/heedful screen demo/responses.csv --instrument demo/instrument.json --out demo/screened.csv
@@ -24,6 +27,7 @@ test: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_detectors.py
 	$(BIN)/python tests/benchmarks/bench_screen_cli.py
+	$(BIN)/python tests/benchmarks/bench_service.py
 
 openapi: $(STAMP)
 	$(BIN)/heedful openapi --out openapi/openapi.json

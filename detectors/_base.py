@@ -14,6 +14,7 @@ import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from enum import IntEnum
+from functools import cache
 from typing import Any, ClassVar
 
 import numpy as np
@@ -202,17 +203,11 @@ class Detector:
 
     @classmethod
     def setting_names(cls) -> list[str]:
-        signature = inspect.signature(cls.__init__)
-        return [p.name for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY]
+        return list(_keyword_defaults(cls))
 
     @classmethod
     def defaults(cls) -> dict[str, Any]:
-        signature = inspect.signature(cls.__init__)
-        return {
-            p.name: p.default
-            for p in signature.parameters.values()
-            if p.kind is p.KEYWORD_ONLY
-        }
+        return dict(_keyword_defaults(cls))
 
     def get_params(self) -> dict[str, Any]:
         return {name: getattr(self, name) for name in self.setting_names()}
@@ -320,6 +315,13 @@ class Detector:
             item_ids=instrument.item_ids,
             describe=self._sentence,
         )
+
+
+@cache
+def _keyword_defaults(cls: type) -> dict[str, Any]:
+    """Keyword-only settings of a detector class with their defaults (read once per class)."""
+    signature = inspect.signature(cls.__init__)
+    return {p.name: p.default for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY}
 
 
 def new_states(n: int) -> tuple[np.ndarray, np.ndarray]:

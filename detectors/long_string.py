@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -36,6 +37,7 @@ def chance_of_run(n_items: int, length: int, repeat_probability: float) -> float
     return float(1.0 - alive.sum())
 
 
+@lru_cache(maxsize=256)
 def default_run_cutoff(n_items: int, repeat_probability: float, alpha: float) -> int:
     """The shortest run length whose chance (see :func:`chance_of_run`) is at most ``alpha``;
     ``n_items`` when even a run over every item is more likely than that."""
