@@ -32,7 +32,7 @@ def test_signature_matches_the_specifications_worked_example():
 
 @pytest.mark.skipif(shutil.which("openssl") is None, reason="openssl not installed")
 def test_signature_equals_openssl_hmac(tmp_path):
-    # OpenSSL's HMAC-SHA256 (an independent implementation), as docs/service.md computes it.
+    # OpenSSL's HMAC-SHA256 (an independent implementation), as the README computes it.
     secret = new_webhook_secret()
     body = b'{"respondent_id": "v1", "answers": {"q01": 3}}'
     content = tmp_path / "content"
