@@ -8,6 +8,7 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
 from detectors import ResponseDataError, ResponseProblem, Screening, State
@@ -90,11 +91,25 @@ def write_screening(screening: Screening, out: str | Path, fmt: str) -> None:
         return
     frame = screening.to_frame()
     if fmt == "csv":
-        write_atomic(out, lambda p: frame.to_csv(p, index=False, float_format="%.6g"))
+        write_atomic(out, lambda p: write_csv(frame, p))
     elif fmt == "parquet":
         write_atomic(out, lambda p: frame.to_parquet(p, index=False))
     else:
         raise ValueError(f"unknown output format {fmt!r}; use one of {', '.join(OUTPUT_FORMATS)}")
+
+
+def write_csv(frame: pd.DataFrame, path: str | Path) -> None:
+    """CSV through Arrow's writer (several times faster than pandas' on wide tables); scores
+    rounded to 6 decimals, missing values as empty cells, text quoted only where needed."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    rounded = frame.copy(deep=False)
+    for column in rounded.columns:
+        if rounded[column].dtype == np.float64:
+            rounded[column] = rounded[column].round(6)
+    table = pa.Table.from_pandas(rounded, preserve_index=False)
+    pacsv.write_csv(table, str(path), pacsv.WriteOptions(quoting_style="needed"))
 
 
 def format_from_path(path: str | Path | None, default: str = "csv") -> str:
