@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import inspect
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from enum import IntEnum
 from functools import cache
@@ -322,6 +322,12 @@ def _keyword_defaults(cls: type) -> dict[str, Any]:
     """Keyword-only settings of a detector class with their defaults (read once per class)."""
     signature = inspect.signature(cls.__init__)
     return {p.name: p.default for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY}
+
+
+def row_slices(n: int, rows_per_slice: int = 1 << 12) -> Iterator[slice]:
+    """Consecutive slices of n respondents, small enough for temporaries to stay in the cache."""
+    for start in range(0, n, rows_per_slice):
+        yield slice(start, min(start + rows_per_slice, n))
 
 
 def new_states(n: int) -> tuple[np.ndarray, np.ndarray]:

@@ -2,26 +2,19 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
 __all__ = ["Acquiescence"]
 
-#: Respondents per slice of the matrix: small enough for the temporaries to stay in the cache.
-_ROWS_PER_SLICE = 1 << 13
-
-
-def _row_slices(n: int) -> Iterator[slice]:
-    for start in range(0, n, _ROWS_PER_SLICE):
-        yield slice(start, min(start + _ROWS_PER_SLICE, n))
 
 
 class Acquiescence(Detector):
@@ -228,7 +221,7 @@ def _pair_counts(
     agreed = np.zeros(n, dtype=np.int64)
     disagreed = np.zeros(n, dtype=np.int64)
     deviation_sum = np.zeros(n)
-    for rows in _row_slices(n):
+    for rows in row_slices(n, 1 << 13):
         by_item = matrix.answers[rows][:, order].T  # (items, respondents), C-contiguous
         values = np.empty((4, *by_item.shape), dtype=np.float32)
         present = by_item != MISSING

@@ -2,26 +2,20 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
 __all__ = ["ExtremeStyle"]
 
-#: Respondents per slice of the matrix: small enough for the temporaries to stay in the cache.
-_ROWS_PER_SLICE = 1 << 12
 #: On an item of two points every answer is an end point, so such items say nothing here.
 _MIN_POINTS = 3
 
-
-def _row_slices(n: int) -> Iterator[slice]:
-    for start in range(0, n, _ROWS_PER_SLICE):
-        yield slice(start, min(start + _ROWS_PER_SLICE, n))
 
 
 class ExtremeStyle(Detector):
@@ -119,7 +113,7 @@ class ExtremeStyle(Detector):
             not_applicable = None
             lowest = instrument.lowest[columns][:, None]
             highest = instrument.highest[columns][:, None]
-            for rows in _row_slices(n):
+            for rows in row_slices(n):
                 by_item = matrix.answers[rows][:, columns].T  # (items, respondents)
                 answered[rows] = (by_item != MISSING).sum(axis=0, dtype=np.int32)
                 # MISSING lies below every valid code, so it never equals an end point.

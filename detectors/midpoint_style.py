@@ -2,24 +2,17 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
 __all__ = ["MidpointStyle"]
 
-#: Respondents per slice of the matrix: small enough for the temporaries to stay in the cache.
-_ROWS_PER_SLICE = 1 << 12
-
-
-def _row_slices(n: int) -> Iterator[slice]:
-    for start in range(0, n, _ROWS_PER_SLICE):
-        yield slice(start, min(start + _ROWS_PER_SLICE, n))
 
 
 class MidpointStyle(Detector):
@@ -117,7 +110,7 @@ class MidpointStyle(Detector):
         else:
             not_applicable = None
             midpoint = instrument.midpoint[columns].astype(np.int8)[:, None]  # odd points: whole
-            for rows in _row_slices(n):
+            for rows in row_slices(n):
                 by_item = matrix.answers[rows][:, columns].T  # (items, respondents)
                 answered[rows] = (by_item != MISSING).sum(axis=0, dtype=np.int32)
                 at_midpoint[rows] = (by_item == midpoint).sum(axis=0, dtype=np.int32)

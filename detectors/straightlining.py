@@ -2,27 +2,20 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
 __all__ = ["Straightlining"]
 
-#: Respondents per slice of the matrix: small enough for the temporaries to stay in the cache.
-_ROWS_PER_SLICE = 1 << 12
 #: The name instrument.blocks gives the single block of an instrument without blocks.
 _WHOLE_QUESTIONNAIRE = "(whole questionnaire)"
 
-
-
-def _row_slices(n: int) -> Iterator[slice]:
-    for start in range(0, n, _ROWS_PER_SLICE):
-        yield slice(start, min(start + _ROWS_PER_SLICE, n))
 
 
 class Straightlining(Detector):
@@ -120,7 +113,7 @@ block mixes positively and reverse-keyed items"
             ends = np.cumsum([len(columns) for columns in blocks.values()])
             bounds = list(zip([0, *ends[:-1].tolist()], ends.tolist(), strict=True))
             positive = instrument.keyed[order] == 1
-            for rows in _row_slices(n):
+            for rows in row_slices(n):
                 by_item = matrix.answers[rows][:, order].T  # (items, respondents)
                 for b, (first, stop) in enumerate(bounds):
                     block = by_item[first:stop]
