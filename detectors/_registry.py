@@ -8,10 +8,13 @@ from __future__ import annotations
 
 from .acquiescence import Acquiescence
 from .errors import FieldProblem, InstrumentError, SettingError
+from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
+from .missing_answers import MissingAnswers
+from .response_variability import ResponseVariability
 from .straightlining import Straightlining
 
 __all__ = ["REGISTRY", "get_detector", "check_screening_section"]
@@ -23,6 +26,9 @@ _DETECTORS = (
     Straightlining,
     LongString,
     Mahalanobis,
+    ResponseVariability,
+    EvenOdd,
+    MissingAnswers,
 )
 
 #: Detector name to class, in the order results are reported.
