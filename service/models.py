@@ -62,6 +62,14 @@ class Decision(enum.StrEnum):
     UNDECIDED = "undecided"
 
 
+class Verdict(enum.StrEnum):
+    """The screening verdict on a respondent (evidence for a reviewer, not a decision)."""
+
+    OK = "ok"
+    REVIEW = "review"
+    LIKELY_CARELESS = "likely_careless"
+
+
 def _enum(kind: type[enum.Enum], name: str) -> Enum:
     return Enum(
         kind,
@@ -145,6 +153,7 @@ class Respondent(Base):
         UniqueConstraint("survey_id", "respondent_id"),
         Index("ix_respondents_received", "survey_id", "received_at", "id"),
         Index("ix_respondents_flag_count", "survey_id", "flag_count", "id"),
+        Index("ix_respondents_careless_score", "survey_id", "careless_score", "id"),
     )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
@@ -166,6 +175,12 @@ class Respondent(Base):
     flag_count: Mapped[int] = mapped_column(SmallInteger, default=0)
     #: Names of the raised flags, comma-separated in registry order ("" when none).
     flags: Mapped[str] = mapped_column(String(500), default="")
+    #: ok / review / likely_careless under the instrument's verdict policy.
+    verdict: Mapped[Verdict] = mapped_column(
+        _enum(Verdict, "verdict"), default=Verdict.OK, server_default=Verdict.OK.value
+    )
+    #: Rank-based combination of the carelessness indices in [0, 1]; None before screening.
+    careless_score: Mapped[float | None] = mapped_column(Float, default=None)
     review_decision: Mapped[Decision | None] = mapped_column(
         _enum(Decision, "decision"), default=None
     )
