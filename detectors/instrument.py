@@ -34,7 +34,14 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 
 from .errors import FieldProblem, InstrumentError
 
-__all__ = ["Instrument", "Item", "ResponseFormat", "load_instrument", "parse_instrument"]
+__all__ = [
+    "Instrument",
+    "Item",
+    "ResponseFormat",
+    "VerdictPolicy",
+    "load_instrument",
+    "parse_instrument",
+]
 
 #: Likert items have 2 to 10 points (common practice, no source).
 MIN_POINTS, MAX_POINTS = 2, 10
@@ -92,6 +99,56 @@ class Item(BaseModel):
     response_format: ResponseFormat | None = None
 
 
+#: Families of evidence that count towards carelessness by default (``style`` does not: a response
+#: style distorts scale scores but does not make a record invalid).
+CARELESS_FAMILIES = ("invariance", "inconsistency", "outlier", "effort")
+
+
+class VerdictPolicy(BaseModel):
+    """How flags become a respondent's verdict, and how the careless score is combined.
+
+    The defaults follow the advice to act only where independent kinds of evidence agree
+    (Curran 2016; Meade & Craig 2012): one family flagging asks for a look, two make careless
+    answering likely. A failed instructed item is direct evidence, so together with any other
+    flag it is enough.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    families: tuple[Literal["invariance", "inconsistency", "outlier", "effort", "style"], ...] = Field(
+        default=CARELESS_FAMILIES,
+        min_length=1,
+        description="Families whose flags count towards the verdict and the careless score.",
+    )
+    review_from: int = Field(
+        default=1, ge=1, description="Flagging families from which the verdict is 'review'."
+    )
+    likely_careless_from: int = Field(
+        default=2, ge=1,
+        description="Flagging families from which the verdict is 'likely_careless'.",
+    )
+    failed_check_escalates: bool = Field(
+        default=True,
+        description="A failed attention check together with any other counted flag (of any "
+        "family, its own included) makes the verdict 'likely_careless'.",
+    )
+    score_families: int = Field(
+        default=2, ge=1,
+        description="The careless score is the mean of this many highest family percentiles.",
+    )
+
+    @model_validator(mode="after")
+    def _ordered(self) -> VerdictPolicy:
+        if self.likely_careless_from < self.review_from:
+            raise ValueError(
+                f"likely_careless_from ({self.likely_careless_from}) must be at least "
+                f"review_from ({self.review_from})"
+            )
+        if len(set(self.families)) != len(self.families):
+            raise ValueError("families lists a family twice")
+        return self
+
+
 class Instrument(BaseModel):
     """A questionnaire as Heedful screens it."""
 
@@ -108,6 +165,10 @@ class Instrument(BaseModel):
     )
     screening: dict[str, dict[str, Any]] = Field(
         default_factory=dict, description="Per-detector settings overriding the defaults."
+    )
+    verdict: VerdictPolicy = Field(
+        default_factory=VerdictPolicy,
+        description="How flags of several detectors combine into a verdict.",
     )
 
     @model_validator(mode="after")

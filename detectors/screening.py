@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -13,6 +14,8 @@ from ._base import DetectorResult, State
 from ._registry import REGISTRY, get_detector
 from .instrument import Instrument
 from .responses import ResponseMatrix
+from .scales import scale_scores
+from .verdict import RANKS_KEY, Verdicts, assess, rank_tables
 
 __all__ = ["Screening", "screen", "build_detectors", "fit_references"]
 
@@ -40,11 +43,19 @@ def fit_references(
     matrix: ResponseMatrix,
     overrides: Mapping[str, Mapping[str, Any]] | None = None,
 ) -> dict[str, dict[str, Any]]:
-    """The reference of every detector that needs a sample, estimated from ``matrix``."""
-    out = {}
-    for name, detector in build_detectors(instrument, overrides).items():
+    """The reference estimated from a sample ``matrix``: the entry of every detector that needs
+    a sample, and under ``RANKS_KEY`` the percentile tables of the careless score (from
+    screening the sample itself against those entries)."""
+    out: dict[str, Any] = {}
+    detectors = build_detectors(instrument, overrides)
+    for name, detector in detectors.items():
         if detector.needs_sample:
             out[name] = detector.fit(instrument, matrix)
+    results = {
+        name: detector.screen(instrument, matrix, out.get(name))
+        for name, detector in detectors.items()
+    }
+    out[RANKS_KEY] = rank_tables(instrument.verdict, results)
     return out
 
 
@@ -55,6 +66,10 @@ class Screening:
     instrument: Instrument
     respondent_ids: np.ndarray
     results: dict[str, DetectorResult]
+    #: Percentile tables of the careless score (from the reference, or this matrix's own).
+    ranks: Mapping[str, list[float]] | None = None
+    #: Scale scores, plain and acquiescence-adjusted (``detectors.scales.scale_scores``).
+    scales: pd.DataFrame | None = None
 
     @property
     def n_respondents(self) -> int:
@@ -66,13 +81,20 @@ class Screening:
             return np.zeros(self.n_respondents, dtype=np.int64)
         return np.sum([r.flags for r in self.results.values()], axis=0, dtype=np.int64)
 
+    @cached_property
+    def verdicts(self) -> Verdicts:
+        """Verdict and careless score of every respondent under the instrument's policy."""
+        return assess(self.instrument.verdict, self.results, self.ranks, self.n_respondents)
+
     def flagged_sentences(self, i: int) -> list[str]:
         """The readable evidence of every flag raised for respondent ``i``."""
         return [r.sentence_for(i) for r in self.results.values() if r.flags[i]]
 
     def to_frame(self) -> pd.DataFrame:
         """One row per respondent: id, ``<name>_score`` and ``<name>_flag`` per detector,
-        ``flag_count`` and ``evidence`` (sentences of the flags raised, joined by " | ").
+        ``flag_count``, ``verdict``, ``careless_score``, the scale scores (``scale_<name>`` and
+        ``scale_<name>_adjusted``) and ``evidence`` (sentences of the flags raised, joined by
+        " | ").
 
         A flag is 1 or 0 where the respondent was assessed and empty (<NA>) otherwise.
         """
@@ -84,6 +106,12 @@ class Screening:
             columns[f"{name}_flag"] = flag
         count = self.flag_count
         columns["flag_count"] = count
+        verdicts = self.verdicts
+        columns["verdict"] = verdicts.verdict
+        columns["careless_score"] = verdicts.careless_score
+        if self.scales is not None:
+            for name in self.scales.columns:
+                columns[name] = self.scales[name].to_numpy()
         evidence = np.full(self.n_respondents, "", dtype=object)
         for i in np.flatnonzero(count).tolist():
             evidence[i] = " | ".join(self.flagged_sentences(i))
@@ -103,9 +131,11 @@ class Screening:
                 "reasons": {str(k): int(v) for k, v in reasons.value_counts().items()},
             }
         count = self.flag_count
+        verdicts = pd.Series(self.verdicts.verdict).value_counts()
         return {
             "respondents": self.n_respondents,
             "flagged_any": int((count > 0).sum()),
+            "verdicts": {v: int(verdicts.get(v, 0)) for v in ("ok", "review", "likely_careless")},
             "detectors": detectors,
         }
 
@@ -127,8 +157,9 @@ def screen(
     overrides : mapping, optional
         Per-detector settings that take precedence over the instrument's ``screening`` section.
     references : mapping, optional
-        Per-detector references from :func:`fit_references`; a sample-based detector without one
-        estimates it from ``matrix``.
+        The reference from :func:`fit_references`; a sample-based detector without an entry
+        estimates it from ``matrix``, and without percentile tables the careless score ranks
+        respondents within ``matrix`` itself.
     names : iterable of str, optional
         Only these detectors, in this order.
     progress : callable, optional
@@ -141,4 +172,13 @@ def screen(
         if progress is not None:
             progress(name, index, len(detectors))
         results[name] = detector.screen(instrument, matrix, references.get(name))
-    return Screening(instrument=instrument, respondent_ids=matrix.respondent_ids, results=results)
+    ranks = references.get(RANKS_KEY)
+    if ranks is None:
+        ranks = rank_tables(instrument.verdict, results)
+    return Screening(
+        instrument=instrument,
+        respondent_ids=matrix.respondent_ids,
+        results=results,
+        ranks=ranks,
+        scales=scale_scores(instrument, matrix),
+    )

@@ -72,6 +72,11 @@ def _summary_lines(summary: dict[str, Any], n_rejected: int) -> list[str]:
         f"Screened {summary['respondents']} respondent(s); "
         f"{summary['flagged_any']} flagged by at least one detector."
     ]
+    verdicts = summary["verdicts"]
+    lines.append(
+        f"Verdicts: {verdicts['ok']} ok, {verdicts['review']} to review, "
+        f"{verdicts['likely_careless']} likely careless (flags from two or more kinds of index)."
+    )
     if n_rejected:
         lines.append(f"{n_rejected} invalid row(s) were set aside and not screened.")
     width = max(len(name) for name in summary["detectors"]) if summary["detectors"] else 8

@@ -61,9 +61,16 @@ def write_atomic(path: str | Path, write: Any) -> None:
 
 
 def screening_records(screening: Screening) -> list[dict[str, Any]]:
-    """Every respondent with every detector's score, flag, state, reason, evidence and sentence."""
+    """Every respondent with verdict, careless score, scale scores and every detector's score,
+    flag, state, reason, evidence and sentence."""
     records = []
     count = screening.flag_count
+    verdicts = screening.verdicts
+    careless = [None if v != v else v for v in verdicts.careless_score.tolist()]
+    scales = (
+        screening.scales.astype(object).where(screening.scales.notna(), None).to_dict("records")
+        if screening.scales is not None else None
+    )
     for i, respondent in enumerate(screening.respondent_ids.tolist()):
         results = {}
         for name, result in screening.results.items():
@@ -77,9 +84,17 @@ def screening_records(screening: Screening) -> list[dict[str, Any]]:
                 "evidence": result.evidence_for(i) if assessed else {},
                 "sentence": result.sentence_for(i),
             }
-        records.append(
-            {"respondent_id": respondent, "flag_count": int(count[i]), "detectors": results}
-        )
+        record = {
+            "respondent_id": respondent,
+            "flag_count": int(count[i]),
+            "verdict": verdicts.verdict[i],
+            "careless_score": careless[i],
+            "flagging_families": verdicts.flagging_families(i),
+        }
+        if scales is not None:
+            record["scales"] = scales[i]
+        record["detectors"] = results
+        records.append(record)
     return records
 
 

@@ -33,6 +33,7 @@ from detectors import (
     fit_references,
     parse_instrument,
 )
+from detectors.verdict import RANKS_KEY, Verdicts, assess, reference_ranks
 
 from . import store
 from .db import utcnow
@@ -249,10 +250,7 @@ def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int)
     values[~present | outside] = MISSING
     bad = {p.row - 1 for p in problems if p.row is not None}
     keep = np.array([p not in bad for p in positions], dtype=bool)
-    durations = np.array(
-        [np.nan if row.duration_seconds is None else row.duration_seconds for row in rows],
-        dtype=np.float64,
-    )
+    durations = np.array([_seconds_taken(row) for row in rows], dtype=np.float64)
     matrix = ResponseMatrix(
         respondent_ids=np.array([row.respondent_id for row in rows], dtype=object)[keep],
         answers=values.astype(np.int8)[keep],
@@ -266,6 +264,17 @@ def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int)
         problems=problems,
         bad_positions=bad,
     )
+
+
+def _seconds_taken(row: Any) -> float:
+    """The response's duration: ``duration_seconds`` when given, else ``submitted_at -
+    started_at`` when both are known (NaN when neither, or when the difference is negative)."""
+    if row.duration_seconds is not None:
+        return row.duration_seconds
+    if row.started_at is None or row.submitted_at is None:
+        return np.nan
+    seconds = (row.submitted_at - row.started_at).total_seconds()
+    return seconds if seconds >= 0 else np.nan
 
 
 def answers_digest(answers: Mapping[str, int | None]) -> str:
@@ -286,6 +295,7 @@ class Screened:
     flags: np.ndarray  # bool (detectors, respondents)
     states: np.ndarray  # int8 (detectors, respondents)
     sample_names: set[str]  # detectors whose result depends on the reference sample
+    verdicts: Verdicts  # verdict and careless score under the instrument's policy
 
     def flag_names(self, i: int) -> list[str]:
         return [self.names[d] for d in np.flatnonzero(self.flags[:, i])]
@@ -313,7 +323,10 @@ def screen_matrix(
         flags[d] = result.flags
         states[d] = result.states
     versions = [type(d).version for d in screener.detectors.values()]
-    return Screened(names, versions, results, flags, states, set(screener.sample_detectors))
+    verdicts = assess(screener.instrument.verdict, results, reference_ranks(reference), n)
+    return Screened(
+        names, versions, results, flags, states, set(screener.sample_detectors), verdicts
+    )
 
 
 def _finite(values: np.ndarray) -> list[float | None]:
@@ -385,9 +398,16 @@ def outcome_rows(screened: Screened, pks: Sequence[int], reference_id: int | Non
     return rows
 
 
-def _summary_columns(screened: Screened, i: int) -> tuple[int, str]:
+def _summary_columns(screened: Screened, i: int) -> dict[str, Any]:
+    """The respondent row's screening summary: flag count, flag names, verdict, careless score."""
     names = screened.flag_names(i)
-    return len(names), ",".join(names)
+    careless = float(screened.verdicts.careless_score[i])
+    return {
+        "flag_count": len(names),
+        "flags": ",".join(names),
+        "verdict": screened.verdicts.verdict[i],
+        "careless_score": None if careless != careless else careless,
+    }
 
 
 # Ingestion -------------------------------------------------------------------------------------
@@ -596,8 +616,13 @@ def ingest_many(
         for i in plan.duplicates:
             stored = stored_rows.get(plan.ids[i])
             flags = [] if stored is None or not stored.flags else stored.flags.split(",")
+            summary = {
+                "flag_count": len(flags),
+                "verdict": None if stored is None else str(stored.verdict),
+                "careless_score": None if stored is None else stored.careless_score,
+            }
             plan.outcome[i] = (
-                "duplicate", len(flags), flags, [] if stored is None else waiting.get(stored.id, [])
+                "duplicate", summary, flags, [] if stored is None else waiting.get(stored.id, [])
             )
         if plan.options.webhook_id is not None and not plan.replayed:
             deliveries.append(
@@ -636,7 +661,7 @@ def _store_group(
         replaced = set(plan.replaced)
         for i in rows:
             row = plan.checked.rows[i]
-            count, names = _summary_columns(screened, k)
+            summary = _summary_columns(screened, k)
             values = {
                 "survey_version_id": screener.version_id,
                 "answers": row.answers,
@@ -648,8 +673,7 @@ def _store_group(
                 "received_at": now,
                 "screened_at": now,
                 "reference_id": used_reference,
-                "flag_count": count,
-                "flags": names,
+                **summary,
             }
             if i in replaced:
                 pk = stored_rows[plan.ids[i]].id
@@ -663,7 +687,7 @@ def _store_group(
                 pks_in_order.append(None)
             plan.outcome[i] = (
                 "replaced" if i in replaced else "stored",
-                count,
+                summary,
                 screened.flag_names(k),
                 screened.not_assessed(k),
             )
@@ -679,11 +703,13 @@ def _store_group(
 def _reply(plan: _Plan, received: int) -> dict[str, Any]:
     results = []
     for i in sorted(plan.outcome):
-        status, count, flags, waiting = plan.outcome[i]
+        status, summary, flags, waiting = plan.outcome[i]
         results.append(
             {
-                "respondent_id": plan.ids[i], "status": status, "flag_count": count,
-                "flags": flags, "not_assessed": waiting,
+                "respondent_id": plan.ids[i], "status": status,
+                "flag_count": summary["flag_count"], "flags": flags,
+                "verdict": summary["verdict"], "careless_score": summary["careless_score"],
+                "not_assessed": waiting,
             }
         )
     return {
@@ -719,10 +745,7 @@ def _stored_matrix(screener: Screener, rows: Sequence[Any]) -> ResponseMatrix:
         [[row.answers.get(item) for item in items] for row in rows], dtype=np.float64
     ).reshape(len(rows), len(items))
     values[np.isnan(values)] = MISSING
-    durations = np.array(
-        [np.nan if row.duration_seconds is None else row.duration_seconds for row in rows],
-        dtype=np.float64,
-    )
+    durations = np.array([_seconds_taken(row) for row in rows], dtype=np.float64)
     return ResponseMatrix(
         respondent_ids=np.array([row.respondent_id for row in rows], dtype=object),
         answers=values.astype(np.int8),
@@ -749,7 +772,7 @@ def rescreen(session: Session, survey: Survey, settings: Settings) -> dict[str, 
         stored = session.execute(
             select(
                 Respondent.id, Respondent.respondent_id, Respondent.answers,
-                Respondent.duration_seconds,
+                Respondent.duration_seconds, Respondent.started_at, Respondent.submitted_at,
             )
             .where(Respondent.survey_id == survey.id, Respondent.survey_version_id == version_id)
             .order_by(Respondent.id)
@@ -772,7 +795,7 @@ def rescreen(session: Session, survey: Survey, settings: Settings) -> dict[str, 
                 references.append(
                     {
                         "id": sample.id, "version": screener.number, "respondents": n,
-                        "detectors": sorted(data), "created_at": now,
+                        "detectors": sorted(k for k in data if k != RANKS_KEY), "created_at": now,
                     }
                 )
             else:
@@ -797,10 +820,9 @@ def rescreen(session: Session, survey: Survey, settings: Settings) -> dict[str, 
             store.insert_outcomes(session, outcome_rows(screened, chunk_pks, reference_id))
             updates = []
             for k, pk in enumerate(chunk_pks):
-                count, names = _summary_columns(screened, k)
                 updates.append(
                     {
-                        "pk": pk, "flag_count": count, "flags": names,
+                        "pk": pk, **_summary_columns(screened, k),
                         "reference_id": reference_id, "screened_at": now,
                     }
                 )

@@ -7,7 +7,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StrictInt, StringConstraints
 
-from .models import Decision
+from .models import Decision, Verdict
 
 __all__ = [
     "ResponseIn",
@@ -104,6 +104,14 @@ class RespondentOutcome(BaseModel):
     status: Literal["stored", "replaced", "duplicate"]
     flag_count: int
     flags: list[str] = Field(description="Detectors that raised a flag.")
+    verdict: Verdict | None = Field(
+        description="ok, review (one family of indices flags) or likely_careless (two or more, "
+        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
+    )
+    careless_score: float | None = Field(
+        description="Share of the reference sample this respondent is more suspect than, in "
+        "[0, 1], combining the carelessness indices; null before a reference sample exists."
+    )
     not_assessed: list[str] = Field(description="Detectors that could not judge this respondent.")
 
 
@@ -126,6 +134,8 @@ class IngestReply(BaseModel):
                             "status": "stored",
                             "flag_count": 1,
                             "flags": ["long_string"],
+                            "verdict": "review",
+                            "careless_score": None,
                             "not_assessed": ["mahalanobis"],
                         }
                     ],
@@ -313,6 +323,14 @@ class RespondentRow(BaseModel):
     respondent_id: str
     flag_count: int
     flags: list[str]
+    verdict: Verdict | None = Field(
+        description="ok, review (one family of indices flags) or likely_careless (two or more, "
+        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
+    )
+    careless_score: float | None = Field(
+        description="Share of the reference sample this respondent is more suspect than, in "
+        "[0, 1], combining the carelessness indices; null before a reference sample exists."
+    )
     review_decision: Decision | None
     received_at: dt.datetime
     version: int
@@ -328,6 +346,8 @@ class RespondentPage(BaseModel):
                             "respondent_id": "v0042",
                             "flag_count": 2,
                             "flags": ["straightlining", "long_string"],
+                            "verdict": "likely_careless",
+                            "careless_score": 0.994,
                             "review_decision": None,
                             "received_at": "2027-05-04T09:30:00Z",
                             "version": 1,
@@ -413,6 +433,8 @@ class RespondentDetail(BaseModel):
                     "answers": {"be01": 3, "be02": 3},
                     "flag_count": 1,
                     "flags": ["long_string"],
+                    "verdict": "review",
+                    "careless_score": 0.91,
                     "review_decision": None,
                     "results": [
                         {
@@ -445,6 +467,14 @@ class RespondentDetail(BaseModel):
     answers: dict[str, Any]
     flag_count: int
     flags: list[str]
+    verdict: Verdict | None = Field(
+        description="ok, review (one family of indices flags) or likely_careless (two or more, "
+        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
+    )
+    careless_score: float | None = Field(
+        description="Share of the reference sample this respondent is more suspect than, in "
+        "[0, 1], combining the carelessness indices; null before a reference sample exists."
+    )
     review_decision: Decision | None
     results: list[OutcomeOut]
     reviews: list[ReviewOut]

@@ -47,6 +47,7 @@ from .models import (
     Role,
     Survey,
     SurveyVersion,
+    Verdict,
     WebhookDelivery,
 )
 from .security import new_token, new_webhook_secret
@@ -240,7 +241,8 @@ def count_respondents(session: Session, survey_id: int) -> int:
 def existing_respondents(
     session: Session, survey_id: int, respondent_ids: Sequence[str]
 ) -> dict[str, Row[Any]]:
-    """respondent id -> (id, respondent_id, answers_digest, flags, flag_count) of stored ones."""
+    """respondent id -> (id, respondent_id, answers_digest, flags, flag_count, verdict,
+    careless_score) of stored ones."""
     out: dict[str, Row[Any]] = {}
     for chunk in _chunks(list(respondent_ids)):
         rows = session.execute(
@@ -250,6 +252,8 @@ def existing_respondents(
                 Respondent.answers_digest,
                 Respondent.flags,
                 Respondent.flag_count,
+                Respondent.verdict,
+                Respondent.careless_score,
             ).where(Respondent.survey_id == survey_id, Respondent.respondent_id.in_(chunk))
         )
         for row in rows:
@@ -330,7 +334,8 @@ def replace_respondents(session: Session, rows: list[dict[str, Any]], now: dt.da
 
 
 def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Set flag_count, flags, reference_id and screened_at of respondents (each with ``pk``)."""
+    """Set the screening summary (flag_count, flags, verdict, careless_score), reference_id and
+    screened_at of respondents (each with ``pk``)."""
     if not rows:
         return
     table = Respondent.__table__
@@ -410,6 +415,7 @@ SORTS = {
     "received_at": Respondent.received_at,
     "flag_count": Respondent.flag_count,
     "respondent_id": Respondent.respondent_id,
+    "careless_score": Respondent.careless_score,
 }
 
 
@@ -443,6 +449,8 @@ class Cursor:
                 value = dt.datetime.fromisoformat(value)
             elif field == "flag_count":
                 value = int(value)
+            elif field == "careless_score":
+                value = float(value)
             else:
                 value = str(value)
             pk = int(pk)
@@ -459,6 +467,7 @@ class ListQuery:
     received_after: dt.datetime | None = None
     received_before: dt.datetime | None = None
     min_flags: int | None = None
+    verdict: str | None = None
     sort: str = "-flag_count"
     limit: int = 100
     cursor: str | None = None
@@ -475,10 +484,16 @@ def list_respondents(
         Respondent.respondent_id,
         Respondent.flag_count,
         Respondent.flags,
+        Respondent.verdict,
+        Respondent.careless_score,
         Respondent.review_decision,
         Respondent.received_at,
         Respondent.survey_version_id,
     ).where(Respondent.survey_id == survey_id)
+    if column is Respondent.careless_score:
+        # NULLs sort differently on SQLite and PostgreSQL and cannot take part in a keyset:
+        # a careless-score listing holds the respondents that have one.
+        statement = statement.where(Respondent.careless_score.is_not(None))
     # Sorted by another column, the flag count is only a filter: "+ 0" keeps the planner from
     # reading the flag-count index and sorting every flagged row, instead of walking the sort
     # column's index and stopping after one page.
@@ -497,6 +512,8 @@ def list_respondents(
                 DetectorOutcome.flagged.is_(True),
             )
         )
+    if query.verdict is not None:
+        statement = statement.where(Respondent.verdict == Verdict(query.verdict))
     if query.review == "none":
         statement = statement.where(Respondent.review_decision.is_(None))
     elif query.review is not None:

@@ -30,9 +30,13 @@ from .surveys import survey_or_404
 
 router = APIRouter(tags=["respondents"])
 
-CSV_COLUMNS = ["respondent_id", "flag_count", "flags", "review_decision", "received_at", "version"]
+CSV_COLUMNS = [
+    "respondent_id", "flag_count", "flags", "verdict", "careless_score", "review_decision",
+    "received_at", "version",
+]
 Sort = Literal[
-    "received_at", "-received_at", "flag_count", "-flag_count", "respondent_id", "-respondent_id"
+    "received_at", "-received_at", "flag_count", "-flag_count", "respondent_id", "-respondent_id",
+    "careless_score", "-careless_score",
 ]
 
 
@@ -87,9 +91,17 @@ def list_respondents(
         AwareDatetime | None, Query(description="Received before this time.")
     ] = None,
     min_flags: Annotated[int | None, Query(ge=0, description="At least this many flags.")] = None,
-    sort: Annotated[Sort, Query(description="Sort key; a leading '-' sorts descending.")] = (
-        "-flag_count"
-    ),
+    verdict: Annotated[
+        Literal["ok", "review", "likely_careless"] | None,
+        Query(description="Only respondents with this verdict."),
+    ] = None,
+    sort: Annotated[
+        Sort,
+        Query(
+            description="Sort key; a leading '-' sorts descending. Sorting by careless_score "
+            "lists only respondents that have one (screened against a reference sample)."
+        ),
+    ] = "-flag_count",
     limit: Annotated[int, Query(ge=1, description="Rows per page.")] = 100,
     cursor: Annotated[
         str | None, Query(description="`next_cursor` of the previous page.")
@@ -109,8 +121,8 @@ def list_respondents(
         )
     query = store.ListQuery(
         flagged=flagged, detector=detector, review=review, received_after=received_after,
-        received_before=received_before, min_flags=min_flags, sort=sort, limit=limit,
-        cursor=cursor,
+        received_before=received_before, min_flags=min_flags, verdict=verdict, sort=sort,
+        limit=limit, cursor=cursor,
     )
     with database.read() as session:
         found = survey_or_404(session, survey)
@@ -125,6 +137,7 @@ def list_respondents(
     data = [
         RespondentRow(
             respondent_id=r.respondent_id, flag_count=r.flag_count, flags=_split(r.flags),
+            verdict=r.verdict, careless_score=r.careless_score,
             review_decision=r.review_decision, received_at=r.received_at,
             version=numbers[r.survey_version_id],
         )
@@ -139,6 +152,8 @@ def list_respondents(
         writer.writerow(
             [
                 row.respondent_id, row.flag_count, ";".join(row.flags),
+                row.verdict.value if row.verdict else "",
+                "" if row.careless_score is None else f"{row.careless_score:.6g}",
                 row.review_decision.value if row.review_decision else "",
                 row.received_at.isoformat(), row.version,
             ]
@@ -190,6 +205,8 @@ def get_respondent(
             answers=found.answers,
             flag_count=found.flag_count,
             flags=_split(found.flags),
+            verdict=found.verdict,
+            careless_score=found.careless_score,
             review_decision=found.review_decision,
             results=[
                 OutcomeOut(

@@ -12,7 +12,9 @@ from detectors import FAMILIES, REGISTRY, SettingError, State, parse_instrument
 from detectors.responses import ResponseMatrix
 
 #: Modules of the package that are infrastructure, not detectors.
-INFRASTRUCTURE = {"errors", "instrument", "responses", "screening", "lint"}
+INFRASTRUCTURE = {
+    "errors", "instrument", "responses", "screening", "lint", "scales", "verdict", "reliability",
+}
 
 
 def test_every_detector_module_is_registered():

@@ -61,7 +61,15 @@ def test_screen_writes_the_table_and_summary(demo, tmp_path, capsys):
     expected = ["respondent_id"]
     for name in REGISTRY:
         expected += [f"{name}_score", f"{name}_flag"]
-    assert list(table.columns) == expected + ["flag_count", "evidence"]
+    scales = ["scale_" + s for s in dict.fromkeys(i["scale"] for i in json.loads(
+        (demo / "instrument.json").read_text())["items"] if i.get("scale"))]
+    adjusted = [c for c in table.columns if c.endswith("_adjusted")]
+    assert adjusted and all(c.removesuffix("_adjusted") in scales for c in adjusted)
+    assert list(table.columns) == expected + ["flag_count", "verdict", "careless_score"] + [
+        c for s in scales for c in (s, s + "_adjusted") if c in table.columns
+    ] + ["evidence"]
+    assert set(table["verdict"]) <= {"ok", "review", "likely_careless"}
+    assert table["careless_score"].between(0, 1).all()
     assert len(table) == 600
     flags = table[[f"{n}_flag" for n in REGISTRY]]
     assert set(np.unique(flags.dropna().to_numpy())) <= {0, 1}
@@ -138,3 +146,30 @@ def test_lint_and_screen_the_bfi_files(bfi_instrument, bfi_frame, tmp_path, caps
     assert len(table) == 2800
     assert table["midpoint_style_flag"].isna().all()  # not applicable on six points
     assert "Screened 2800 respondent(s)" in capsys.readouterr().out
+
+
+def test_the_duration_column_reaches_the_speeding_index(tmp_path):
+    # A table whose durations sit in a column of another name, given with --duration-column.
+    instrument = tmp_path / "timed.json"
+    instrument.write_text(json.dumps({
+        "survey": "timed", "response_format": {"points": 5},
+        "items": [{"id": f"q{i}"} for i in range(1, 11)],
+    }))
+    frame = pd.DataFrame(
+        [[1, 2, 3, 4, 5, 4, 3, 2, 1, 2]] * 3, columns=[f"q{i}" for i in range(1, 11)]
+    )
+    frame.insert(0, "respondent_id", ["a", "b", "c"])
+    frame["seconds_taken"] = [12.0, 95.0, None]
+    responses = tmp_path / "timed.csv"
+    frame.to_csv(responses, index=False)
+    out = tmp_path / "timed-screened.json"
+    assert main(["screen", str(responses), "--instrument", str(instrument), "--out", str(out),
+                 "--only", "speeding", "--duration-column", "seconds_taken"]) == 0
+    rows = json.loads(out.read_text())["respondents"]
+    speeding = [row["detectors"]["speeding"] for row in rows]
+    # hand-computed: 12 s / 10 items = 1.2 s per item (flagged), 95 s / 10 = 9.5 s per item.
+    assert [s["state"] for s in speeding] == ["assessed", "assessed", "not_assessed"]
+    assert speeding[0]["evidence"]["seconds_per_item"] == pytest.approx(1.2)
+    assert speeding[0]["evidence"]["duration_seconds"] == 12.0
+    assert [s["flag"] for s in speeding[:2]] == [True, False]
+    assert speeding[2]["reason"] == "no duration recorded"

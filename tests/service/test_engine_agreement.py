@@ -82,6 +82,27 @@ def test_flags_equal_the_engines_on_bfi(service, bfi_instrument, bfi_frame):
     # as the engine estimates it from the matrix it screens).
     assert service.client.post("/v1/surveys/bfi/rescreen", headers=admin).status_code == 200
     _assert_same(_stored(service), screen(bfi_instrument, matrix), list(REGISTRY))
+    engine = screen(bfi_instrument, matrix)
+    with service.database.read() as session:
+        summary = {
+            r.respondent_id: (str(r.verdict), r.careless_score)
+            for r in session.execute(
+                select(Respondent.respondent_id, Respondent.verdict, Respondent.careless_score)
+            )
+        }
+    ids = engine.respondent_ids.tolist()
+    assert [summary[rid][0] for rid in ids] == engine.verdicts.verdict.tolist()
+    np.testing.assert_allclose(
+        [summary[rid][1] for rid in ids], engine.verdicts.careless_score, rtol=1e-12
+    )
+    page = service.client.get(
+        "/v1/surveys/bfi/respondents",
+        params={"sort": "-careless_score", "verdict": "likely_careless", "limit": 50},
+        headers=admin,
+    ).json()["data"]
+    assert page and all(r["verdict"] == "likely_careless" for r in page)
+    scores = [r["careless_score"] for r in page]
+    assert scores == sorted(scores, reverse=True)
     flagged_page = service.client.get(
         "/v1/surveys/bfi/respondents", params={"flagged": "true", "limit": 1000},
         headers=admin,

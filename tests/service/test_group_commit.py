@@ -89,6 +89,7 @@ def test_stored_evidence_and_sentences_are_the_engines():
         flags=np.array([r.flags for r in screening.results.values()]),
         states=np.array([r.states for r in screening.results.values()]),
         sample_names=set(),
+        verdicts=screening.verdicts,
     )
     rows = jobs.outcome_rows(stored, list(range(200)), None)
     by_key = {(row[1], row[0]): row for row in rows}

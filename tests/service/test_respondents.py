@@ -112,8 +112,10 @@ def test_csv_has_the_same_rows_and_a_next_link(service, filled):
     assert reply.headers["content-type"].startswith("text/csv")
     rows = list(csv.DictReader(io.StringIO(reply.text)))
     assert list(rows[0]) == [
-        "respondent_id", "flag_count", "flags", "review_decision", "received_at", "version"
+        "respondent_id", "flag_count", "flags", "verdict", "careless_score", "review_decision",
+        "received_at", "version",
     ]
+    assert [r["verdict"] for r in rows] == [r["verdict"] for r in as_json["data"]]
     assert [r["respondent_id"] for r in rows] == [r["respondent_id"] for r in as_json["data"]]
     assert [r["flags"].split(";") if r["flags"] else [] for r in rows] == [
         r["flags"] for r in as_json["data"]
@@ -196,3 +198,29 @@ def test_summary_counts_match_the_stored_flags(service, filled):
     assert day["day"] == dt.datetime.now(dt.UTC).date().isoformat()
     assert day["respondents"] == len(filled)
     assert report["reviewed"] == {"none": len(filled)}
+
+
+def test_verdict_and_careless_score_after_a_reference(service, filled):
+    reader = service.auth(service.analyst)
+    # Before a reference sample there is nothing to rank against: no careless score yet, and a
+    # careless-score listing is empty; verdicts come from the flags alone.
+    before = _all_pages(service)
+    assert {r["careless_score"] for r in before} == {None}
+    assert _all_pages(service, sort="-careless_score") == []
+    for r in before:
+        expected = "ok" if r["flag_count"] == 0 else r["verdict"]
+        assert r["verdict"] == expected and r["verdict"] in ("ok", "review", "likely_careless")
+    assert service.client.post(
+        f"{BASE}/rescreen", headers=service.auth(service.admin)
+    ).status_code == 200
+    rows = _all_pages(service, limit=7, sort="-careless_score")
+    assert sorted(r["respondent_id"] for r in rows) == sorted(filled)
+    scores = [r["careless_score"] for r in rows]
+    assert scores == sorted(scores, reverse=True) and 0 <= min(scores) <= max(scores) <= 1
+    for verdict in ("ok", "review", "likely_careless"):
+        chosen = {r["respondent_id"] for r in rows if r["verdict"] == verdict}
+        assert {r["respondent_id"] for r in _all_pages(service, verdict=verdict)} == chosen
+    top = rows[0]["respondent_id"]
+    detail = service.client.get(f"{BASE}/respondents/{top}", headers=reader).json()
+    assert detail["careless_score"] == rows[0]["careless_score"]
+    assert detail["verdict"] == rows[0]["verdict"]

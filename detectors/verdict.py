@@ -1,0 +1,212 @@
+"""From many detectors' flags to one verdict and one ranking score per respondent.
+
+Multiple hurdles
+    Every detector belongs to a family of evidence (invariance, inconsistency, outlier, effort,
+    style). A respondent's verdict counts the families, among those the policy counts (all but
+    ``style`` by default), in which at least one detector raised a flag:
+
+    - ``likely_careless``: at least ``likely_careless_from`` families (default 2), or a failed
+      attention check together with any other counted flag (``failed_check_escalates``);
+    - ``review``: at least ``review_from`` families (default 1);
+    - ``ok``: otherwise.
+
+    Acting only where independent kinds of evidence agree is the "multiple hurdles" advice of
+    Curran (2016) and Meade & Craig (2012). The verdict orders a reviewer's work; it is evidence
+    for a human decision, not a decision about a person.
+
+Careless score
+    A continuous score in [0, 1] that ranks respondents for review. Each detector's score is
+    put on a common scale by its mid-rank percentile within a reference sample,
+    ``p(s) = (#{reference < s} + #{reference <= s}) / (2 N)``; a family's percentile is the
+    highest of its detectors'; the careless score is the mean of the ``score_families`` highest
+    family percentiles (default 2) over the counted families where the respondent was assessed;
+    and that combined value is finally expressed as its own percentile in the reference, so a
+    careless score of .97 means "more suspect than 97% of the reference sample".
+    Taking two families rather than one rewards agreement between kinds of evidence (one
+    extreme index alone, common among attentive respondents when many indices are computed,
+    does not put a respondent on top), while rank-based scaling makes indices with different
+    units and directions comparable. Percentiles are read from ``RANK_POINTS`` quantiles of the
+    reference's scores, stored with the reference sample.
+
+References
+----------
+Curran, P. G. (2016). Methods for the detection of carelessly invalid responses in survey data.
+Journal of Experimental Social Psychology, 66, 4-19.
+
+Meade, A. W., & Craig, S. B. (2012). Identifying careless responses in survey data.
+Psychological Methods, 17(3), 437-455.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ._base import DetectorResult, State
+from .instrument import VerdictPolicy
+
+__all__ = [
+    "VERDICTS",
+    "RANKS_KEY",
+    "RANK_POINTS",
+    "Verdicts",
+    "rank_tables",
+    "assess",
+]
+
+#: Verdict codes, from least to most suspect.
+VERDICTS = ("ok", "review", "likely_careless")
+#: Key of the percentile tables inside a stored reference (beside the detectors' own entries).
+RANKS_KEY = "careless_score"
+#: Quantiles kept per detector: percentiles are resolved to 1/1000 (Heedful's choice).
+RANK_POINTS = 1001
+#: Key of the combined value's table among the percentile tables.
+COMBINED = "(combined)"
+#: The attention-check detector whose failure escalates the verdict.
+ATTENTION = "attention_checks"
+
+
+def _quantiles(values: np.ndarray) -> list[float] | None:
+    values = values[np.isfinite(values)]
+    if len(values) == 0:
+        return None
+    probabilities = np.linspace(0.0, 1.0, RANK_POINTS)
+    return [float(v) for v in np.quantile(values, probabilities, method="inverted_cdf")]
+
+
+def rank_tables(
+    policy: VerdictPolicy, results: Mapping[str, DetectorResult | None]
+) -> dict[str, list[float]]:
+    """Quantiles (JSON-ready) of each counted detector's assessed scores in a reference
+    sample, and under ``COMBINED`` those of the combined family percentiles, so that the
+    careless score itself is a percentile of the reference. Detectors that assessed nobody
+    get no table."""
+    tables: dict[str, list[float]] = {}
+    for name, result in results.items():
+        if result is None or result.family not in policy.families:
+            continue
+        table = _quantiles(result.scores[result.states == State.ASSESSED])
+        if table is not None:
+            tables[name] = table
+    n = next((len(r) for r in results.values() if r is not None), 0)
+    combined = _combine(policy, results, tables, n)
+    table = _quantiles(combined)
+    if table is not None:
+        tables[COMBINED] = table
+    return tables
+
+
+def _percentiles(scores: np.ndarray, table: list[float]) -> np.ndarray:
+    grid = np.asarray(table, dtype=np.float64)
+    below = np.searchsorted(grid, scores, side="left")
+    at_or_below = np.searchsorted(grid, scores, side="right")
+    out = (below + at_or_below) / (2.0 * len(grid))
+    out[~np.isfinite(scores)] = np.nan
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class Verdicts:
+    """The verdict, careless score and flagging families of every respondent."""
+
+    #: Verdict codes (``VERDICTS``) as an object array of str.
+    verdict: np.ndarray
+    #: In [0, 1]; NaN where no counted detector assessed the respondent or no ranks exist.
+    careless_score: np.ndarray
+    #: Counted families, in policy order.
+    families: tuple[str, ...]
+    #: bool (respondents, families): which counted families flagged the respondent.
+    family_flags: np.ndarray
+
+    def flagging_families(self, i: int) -> list[str]:
+        return [self.families[f] for f in np.flatnonzero(self.family_flags[i])]
+
+
+def assess(
+    policy: VerdictPolicy,
+    results: Mapping[str, DetectorResult | None],
+    ranks: Mapping[str, list[float]] | None,
+    n: int,
+) -> Verdicts:
+    """Verdicts and careless scores of ``n`` respondents from their detector results.
+
+    Parameters
+    ----------
+    policy : VerdictPolicy
+        The instrument's verdict policy.
+    results : mapping of detector name to DetectorResult (or None for a detector that could
+        not run, e.g. a sample-based one without a reference)
+    ranks : mapping, optional
+        Percentile tables from :func:`rank_tables`; without them the careless score is NaN.
+    n : int
+        Number of respondents.
+    """
+    families = tuple(policy.families)
+    family_flags = np.zeros((n, len(families)), dtype=bool)
+    attention = np.zeros(n, dtype=bool)
+    counted_flags = np.zeros(n, dtype=np.int64)
+    for name, result in results.items():
+        if result is None or result.family not in families:
+            continue
+        family_flags[:, families.index(result.family)] |= result.flags
+        counted_flags += result.flags
+        if name == ATTENTION:
+            attention |= result.flags
+    flagged_families = family_flags.sum(axis=1)
+    likely = flagged_families >= policy.likely_careless_from
+    if policy.failed_check_escalates:
+        likely |= attention & (counted_flags >= 2)
+    review = flagged_families >= policy.review_from
+    codes = np.where(likely, 2, np.where(review, 1, 0))
+    verdict = np.asarray(VERDICTS, dtype=object)[codes]
+    if ranks and COMBINED in ranks:
+        careless = _percentiles(_combine(policy, results, ranks, n), ranks[COMBINED])
+    else:
+        careless = np.full(n, np.nan)
+    return Verdicts(verdict, careless, families, family_flags)
+
+
+def _combine(
+    policy: VerdictPolicy,
+    results: Mapping[str, DetectorResult | None],
+    ranks: Mapping[str, list[float]],
+    n: int,
+) -> np.ndarray:
+    """Mean of the ``score_families`` highest family percentiles (a family's percentile is
+    the highest of its detectors')."""
+    families = tuple(policy.families)
+    family_rank = np.full((n, len(families)), np.nan)
+    for name, result in results.items():
+        if result is None or result.family not in families or name not in ranks:
+            continue
+        f = families.index(result.family)
+        family_rank[:, f] = np.fmax(family_rank[:, f], _percentiles(result.scores, ranks[name]))
+    return _top_mean(family_rank, policy.score_families)
+
+
+def _top_mean(values: np.ndarray, top: int) -> np.ndarray:
+    """Row means of the ``top`` largest non-NaN values (fewer when fewer exist; NaN if none)."""
+    ordered = np.sort(np.where(np.isnan(values), -np.inf, values), axis=1)[:, ::-1][:, :top]
+    present = np.isfinite(ordered)
+    count = present.sum(axis=1)
+    total = np.where(present, ordered, 0.0).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / count, np.nan)
+
+
+def describe(verdicts: Verdicts, i: int) -> str:
+    """One line for a reviewer: the verdict and which families flagged."""
+    named = verdicts.flagging_families(i)
+    if not named:
+        return "ok: no counted family of indices raised a flag"
+    return f"{verdicts.verdict[i]}: flags from {len(named)} famil{'y' if len(named) == 1 else 'ies'} ({', '.join(named)})"
+
+
+def reference_ranks(reference: Mapping[str, Any] | None) -> Mapping[str, list[float]] | None:
+    """The percentile tables stored in a reference, if any."""
+    if not reference:
+        return None
+    return reference.get(RANKS_KEY)
