@@ -7,6 +7,9 @@ write its module, add it to ``_DETECTORS`` below, write its tests.
 from __future__ import annotations
 
 from .acquiescence import Acquiescence
+from .antonym_consistency import AntonymConsistency
+from .attention_checks import AttentionChecks
+from .duplicate_answers import DuplicateAnswers
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
@@ -14,8 +17,12 @@ from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
 from .missing_answers import MissingAnswers
+from .person_fit import PersonFit
 from .response_variability import ResponseVariability
+from .sequence_pattern import SequencePattern
+from .speeding import Speeding
 from .straightlining import Straightlining
+from .synonym_consistency import SynonymConsistency
 
 __all__ = ["REGISTRY", "get_detector", "check_screening_section"]
 
@@ -29,6 +36,13 @@ _DETECTORS = (
     ResponseVariability,
     EvenOdd,
     MissingAnswers,
+    AttentionChecks,
+    Speeding,
+    DuplicateAnswers,
+    SequencePattern,
+    SynonymConsistency,
+    AntonymConsistency,
+    PersonFit,
 )
 
 #: Detector name to class, in the order results are reported.

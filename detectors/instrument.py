@@ -134,7 +134,7 @@ class VerdictPolicy(BaseModel):
     )
     score_families: int = Field(
         default=2, ge=1,
-        description="The careless score is the mean of this many highest family percentiles.",
+        description="The careless score combines this many most surprising families.",
     )
 
     @model_validator(mode="after")

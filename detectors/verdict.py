@@ -18,15 +18,19 @@ Careless score
     A continuous score in [0, 1] that ranks respondents for review. Each detector's score is
     put on a common scale by its mid-rank percentile within a reference sample,
     ``p(s) = (#{reference < s} + #{reference <= s}) / (2 N)``; a family's percentile is the
-    highest of its detectors'; the careless score is the mean of the ``score_families`` highest
-    family percentiles (default 2) over the counted families where the respondent was assessed;
-    and that combined value is finally expressed as its own percentile in the reference, so a
-    careless score of .97 means "more suspect than 97% of the reference sample".
-    Taking two families rather than one rewards agreement between kinds of evidence (one
-    extreme index alone, common among attentive respondents when many indices are computed,
-    does not put a respondent on top), while rank-based scaling makes indices with different
-    units and directions comparable. Percentiles are read from ``RANK_POINTS`` quantiles of the
-    reference's scores, stored with the reference sample.
+    highest of its detectors'. A percentile becomes a surprise, ``u = max(0, -ln(2 (1 - p)))``:
+    zero up to the median, then the log of how much rarer than an ordinary value it is (p = .99
+    gives 3.9). The combined value is the sum of the ``score_families`` largest family
+    surprises (default 2), and the careless score is that sum's own percentile in the
+    reference, so .97 means "more suspect than 97% of the reference sample".
+
+    Why this shape: unremarkable indices add nothing (a plain average would let them dilute a
+    strong signal); one very strong family still ranks a respondent high; agreement of two
+    families ranks higher still, as the multiple-hurdles advice wants; and rank-based scaling
+    makes indices with different units comparable. On the bfi data with planted careless
+    respondents this ranked every planted kind better than the mean or the maximum of the
+    family percentiles (README, "Checked against real data"). Percentiles are read from
+    ``RANK_POINTS`` quantiles of the reference's scores, stored with the reference sample.
 
 References
 ----------
@@ -175,8 +179,8 @@ def _combine(
     ranks: Mapping[str, list[float]],
     n: int,
 ) -> np.ndarray:
-    """Mean of the ``score_families`` highest family percentiles (a family's percentile is
-    the highest of its detectors')."""
+    """Sum of the ``score_families`` largest family surprises (a family's percentile is the
+    highest of its detectors')."""
     families = tuple(policy.families)
     family_rank = np.full((n, len(families)), np.nan)
     for name, result in results.items():
@@ -184,17 +188,23 @@ def _combine(
             continue
         f = families.index(result.family)
         family_rank[:, f] = np.fmax(family_rank[:, f], _percentiles(result.scores, ranks[name]))
-    return _top_mean(family_rank, policy.score_families)
+    return _top_sum(surprise(family_rank), policy.score_families)
 
 
-def _top_mean(values: np.ndarray, top: int) -> np.ndarray:
-    """Row means of the ``top`` largest non-NaN values (fewer when fewer exist; NaN if none)."""
-    ordered = np.sort(np.where(np.isnan(values), -np.inf, values), axis=1)[:, ::-1][:, :top]
-    present = np.isfinite(ordered)
-    count = present.sum(axis=1)
-    total = np.where(present, ordered, 0.0).sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(count > 0, total / count, np.nan)
+def surprise(percentiles: np.ndarray) -> np.ndarray:
+    """``max(0, -ln(2 (1 - p)))``: 0 up to the median, growing as p nears 1 (capped where the
+    percentile tables stop resolving); NaN stays NaN."""
+    capped = np.minimum(percentiles, 1.0 - 1.0 / (2 * RANK_POINTS))
+    with np.errstate(invalid="ignore"):
+        return np.maximum(0.0, -np.log(2.0 * (1.0 - capped)))
+
+
+def _top_sum(values: np.ndarray, top: int) -> np.ndarray:
+    """Row sums of the ``top`` largest non-NaN values; NaN where a row has none."""
+    present = ~np.isnan(values)
+    ordered = np.sort(np.where(present, values, -np.inf), axis=1)[:, ::-1][:, :top]
+    total = np.where(np.isfinite(ordered), ordered, 0.0).sum(axis=1)
+    return np.where(present.any(axis=1), total, np.nan)
 
 
 def describe(verdicts: Verdicts, i: int) -> str:
