@@ -248,12 +248,3 @@ def test_properties_bounds_reversal_and_permutation(rows):
     permuted = screen(inst, values[order])
     np.testing.assert_array_equal(permuted.scores, result.scores[order])
     np.testing.assert_array_equal(permuted.states, result.states[order])
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.acquiescence as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

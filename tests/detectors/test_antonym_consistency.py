@@ -100,12 +100,3 @@ def test_the_bfi_data_and_planted_random_respondents(bfi_instrument, bfi_frame):
         AntonymConsistency(pair_threshold=-0.3), bfi_instrument, bfi_frame
     )
     assert original < 0.12 and planted > 0.4 and auc > 0.8
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.antonym_consistency as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

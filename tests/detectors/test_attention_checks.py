@@ -148,12 +148,3 @@ def test_planted_failures_on_the_bfi_data_against_pandas(bfi_instrument, bfi_fra
     assert result.flags.sum() == (expected > 0).sum()
     untouched = np.setdiff1d(np.arange(n), np.r_[planted, skipped])
     assert not result.flags[untouched].any()
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.attention_checks as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

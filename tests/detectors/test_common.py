@@ -121,3 +121,19 @@ def test_a_single_respondent_is_handled(name, data):
     inst, m = data
     result = REGISTRY[name]().screen(inst, m.take(np.array([30])))
     assert len(result.scores) == 1
+
+
+#: Modules whose docstrings carry runnable examples (every detector, plus these).
+EXAMPLE_MODULES = sorted(
+    {cls.__module__ for cls in REGISTRY.values()}
+    | {"detectors.scales", "detectors.reliability"}
+)
+
+
+@pytest.mark.parametrize("module_name", EXAMPLE_MODULES)
+def test_docstring_examples_run(module_name):
+    import doctest
+    import importlib
+
+    results = doctest.testmod(importlib.import_module(module_name))
+    assert results.attempted > 0 and results.failed == 0

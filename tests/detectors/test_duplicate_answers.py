@@ -200,10 +200,3 @@ def test_planted_copies_in_the_bfi_data(bfi_instrument, bfi_frame):
     for k, source in enumerate(sources.tolist()):
         assert result.evidence_for(source)["same_answers_as"][0] == planted_ids[k]
         assert result.evidence_for(len(values) + k)["same_answers_as"][0] == ids[source]
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

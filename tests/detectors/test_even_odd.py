@@ -176,12 +176,3 @@ def test_contract(common):
     with pytest.raises(SettingError, match="even_odd has no setting 'nope'"):
         cls.from_settings({"nope": 1})
     assert len(cls().screen(inst, m.take(np.array([30]))).scores) == 1
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.even_odd as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

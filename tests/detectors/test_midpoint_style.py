@@ -164,12 +164,3 @@ def test_properties_bounds_reversal_and_permutation(rows, min_items):
     permuted = screen(inst, values[order], min_items=min_items)
     np.testing.assert_array_equal(permuted.scores, result.scores[order])
     np.testing.assert_array_equal(permuted.flags, result.flags[order])
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.midpoint_style as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

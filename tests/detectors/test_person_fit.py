@@ -586,10 +586,3 @@ def test_planted_random_answerers_on_the_bfi_data(bfi_instrument, bfi_frame, cap
     assert outfit_auc > 0.8 and guttman_auc > 0.8
     assert random_rate > original_rate + 0.15
     assert np.median(result.evidence["outfit"][is_random & assessed]) > 1.4
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

@@ -154,12 +154,3 @@ def test_bad_settings_name_the_setting():
     m = matrix(instrument, [[1, 2, 3, 4]])
     with pytest.raises(ValueError, match="keep must be a boolean array of length 1"):
         scale_statistics(instrument, m, keep=np.ones(3, dtype=bool))
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.reliability as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

@@ -319,12 +319,3 @@ def test_planted_patterns_in_the_bfi_data(bfi_instrument, bfi_frame):
     # With the blocks respected, no run of 8 fits in a five-item scale: not applicable.
     blocked = SequencePattern().screen(bfi_instrument, matrix)
     assert set(blocked.states.tolist()) == {State.NOT_APPLICABLE}
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.sequence_pattern as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

@@ -121,12 +121,3 @@ def test_planted_speeders_and_the_relative_speed_against_numpy():
         result.evidence["relative_speed"], np.median(durations) / durations, rtol=1e-12
     )
     assert (result.evidence["relative_speed"][speeders] > 2).all()
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.speeding as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

@@ -204,12 +204,3 @@ def test_properties_bounds_reversal_and_permutation(rows, min_items):
     np.testing.assert_array_equal(
         permuted.evidence["straightlined_blocks"], result.evidence["straightlined_blocks"][order]
     )
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.straightlining as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0

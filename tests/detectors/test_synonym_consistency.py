@@ -264,12 +264,3 @@ def test_pandas_agrees_on_a_planted_respondent_frame():
     above = np.nonzero(np.triu(corr, 1) > 0.6)
     chosen = [[inst.item_ids[i], inst.item_ids[j]] for i, j in zip(*above, strict=True)]
     assert reference["pairs"] == chosen
-
-
-def test_docstring_examples_run():
-    import doctest
-
-    import detectors.synonym_consistency as module
-
-    results = doctest.testmod(module)
-    assert results.attempted > 0 and results.failed == 0
