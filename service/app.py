@@ -13,7 +13,7 @@ from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 
 from . import problems
-from .api import detectors, health, respondents, responses, surveys
+from .api import detectors, exports, health, reports, respondents, responses, surveys
 from .database import Database
 from .db import make_engine, upgrade
 from .ingest_queue import IngestQueue
@@ -67,6 +67,8 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
             {"name": "surveys", "description": "Register instruments; secrets; re-screening."},
             {"name": "responses", "description": "Post completed responses (webhook)."},
             {"name": "respondents", "description": "Find, read, review and erase respondents."},
+            {"name": "reports", "description": "Screening reports for analysts (HTML)."},
+            {"name": "exports", "description": "The survey as one file: CSV, Parquet, SPSS, Stata."},
             {"name": "detectors", "description": "What each detector measures."},
             {"name": "health", "description": "Liveness and readiness, without a key."},
         ],
@@ -75,7 +77,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.database = database
     app.state.ingest_queue = ingest_queue
     problems.install(app)
-    for module in (health, surveys, responses, respondents, detectors):
+    for module in (health, surveys, responses, respondents, reports, exports, detectors):
         app.include_router(module.router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app

@@ -160,7 +160,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("instrument", help="instrument definition (JSON)")
     p.set_defaults(func=cmd_lint)
 
-    p = commands.add_parser("screen", help="screen a responses file (CSV or Parquet)")
+    p = commands.add_parser(
+        "screen", help="screen a responses file (CSV, Parquet, SPSS .sav or Stata .dta)"
+    )
     p.add_argument("responses", help="responses file: one row per respondent, one column per item")
     p.add_argument("--instrument", required=True, help="instrument definition (JSON)")
     p.add_argument("--out", help="output file (default: CSV on standard output)")

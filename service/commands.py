@@ -1,4 +1,5 @@
-"""The service's subcommands of ``heedful``: serve, db, keys, survey, rescreen, openapi.
+"""The service's subcommands of ``heedful``: serve, db, keys, survey, rescreen, nightly, report,
+openapi.
 
 Only argument parsing and printing live here; the work is done by ``store`` and ``jobs``.
 """
@@ -18,6 +19,8 @@ from .settings import Settings
 __all__ = ["register", "settings_from"]
 
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
+#: Exit code after Ctrl-C (128 + SIGINT, as shells report it).
+EXIT_INTERRUPTED = 130
 DEFAULT_OPENAPI = Path("openapi") / "openapi.json"
 
 
@@ -242,6 +245,57 @@ def cmd_rescreen(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_nightly(args: argparse.Namespace) -> int:
+    from .nightly import DEFAULT_WITHOUT, Progress, run_nightly
+
+    settings = settings_from(args)
+    database = _database(args)
+    without = DEFAULT_WITHOUT if args.without is None else tuple(
+        w for w in args.without if w != "none"
+    )
+
+    def report(run: Any) -> None:
+        print(run.line(), file=sys.stderr if run.failed else sys.stdout, flush=True)
+
+    try:
+        runs = run_nightly(
+            database, settings, args.out, surveys=args.survey, fmt=args.format, without=without,
+            progress=Progress(sys.stderr), report=report,
+        )
+    except KeyboardInterrupt:
+        print("\ninterrupted: the chunks already re-screened are kept; the next run finishes "
+              "the rest", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        database.dispose()
+    failed = [run for run in runs if run.failed]
+    if not runs:
+        print("no survey is registered; nothing to do")
+    if failed:
+        print(f"error: {len(failed)} of {len(runs)} survey(s) failed", file=sys.stderr)
+        return EXIT_FAILED
+    return EXIT_OK
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from . import store
+    from .files import write_atomic
+    from .reports import build_report
+
+    database = _database(args)
+    try:
+        with database.read() as session:
+            survey = store.get_survey(session, args.survey)
+            if survey is None:
+                return _error(f"no survey {args.survey!r} is registered")
+            text = build_report(session, survey)
+    finally:
+        database.dispose()
+    write_atomic(args.out, lambda p: Path(p).write_text(text, encoding="utf-8"))
+    print(f"wrote {args.out}")
+    return EXIT_OK
+
+
 def cmd_openapi(args: argparse.Namespace) -> int:
     from .app import openapi_document
 
@@ -320,6 +374,38 @@ def register(subparsers: Any) -> None:
     p.add_argument("--survey", required=True)
     _add_database(p)
     p.set_defaults(func=_guard(cmd_rescreen))
+
+    from .exports import EXPORT_FORMATS, WITHOUT_CHOICES
+
+    p = subparsers.add_parser(
+        "nightly",
+        help="refresh reference samples, re-screen stale results, write exports and reports",
+    )
+    p.add_argument(
+        "--survey", action="append", metavar="S",
+        help="only this survey (repeatable; default: every registered survey)",
+    )
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="folder for the files: DIR/<date>/<survey>/")
+    p.add_argument("--format", choices=EXPORT_FORMATS, default="sav",
+                   help="export format (default: %(default)s)")
+    p.add_argument(
+        "--without", action="append", choices=[*WITHOUT_CHOICES, "none"],
+        help="leave these respondents out of the export (repeatable; default: excluded, i.e. "
+        "reviewed as exclude; 'none' keeps everyone)",
+    )
+    _add_database(p)
+    p.set_defaults(func=_guard(cmd_nightly))
+
+    p = subparsers.add_parser("report", help="write a survey's screening report (HTML)")
+    p.add_argument("--survey", required=True)
+    p.add_argument("--out", required=True, metavar="FILE", help="the HTML file to write")
+    _add_database(p)
+    p.set_defaults(func=_guard(cmd_report))
+
+    from .file_commands import register_file_commands
+
+    register_file_commands(subparsers)  # export, import, instrument-from
 
     p = subparsers.add_parser("openapi", help="write the service's OpenAPI document")
     p.add_argument(

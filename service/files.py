@@ -16,23 +16,50 @@ from detectors import ResponseDataError, ResponseProblem, Screening, State
 __all__ = ["read_table", "write_atomic", "screening_records", "write_screening", "OUTPUT_FORMATS"]
 
 OUTPUT_FORMATS = ("csv", "json", "parquet")
-_READERS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
+_READERS = {
+    ".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet",
+    ".sav": "labelled", ".zsav": "labelled", ".dta": "labelled",
+}
+
+
+def _id_text(column: pd.Series) -> pd.Series:
+    """An id column as text; whole numbers (SPSS and Stata store numeric ids as doubles) lose
+    their ``.0``."""
+    if pd.api.types.is_float_dtype(column.dtype) or column.dtype == object:
+        numbers = pd.to_numeric(column, errors="coerce")
+        whole = numbers.notna() & (numbers == numbers.round())
+        if whole.any() and (whole | column.isna()).all():
+            return numbers.astype("Int64").astype("string")
+    return column.astype("string")
 
 
 def read_table(path: str | Path, id_column: str = "respondent_id") -> pd.DataFrame:
-    """Read a responses table (CSV or Parquet, chosen by the file's extension).
+    """Read a responses table: CSV, Parquet, SPSS (.sav, .zsav) or Stata (.dta), chosen by the
+    file's extension.
 
-    The id column is read as text, so ids such as ``007`` keep their leading zeros; empty
-    cells become missing values.
+    The id column is read as text, so ids such as ``007`` keep their leading zeros (numeric ids
+    of SPSS and Stata files are written without a decimal part); empty cells become missing
+    values. SPSS and Stata files give the stored codes, not their value labels, and codes the
+    file declares missing are missing.
     """
     path = Path(path)
     kind = _READERS.get(path.suffix.lower())
     if kind is None:
         raise ResponseDataError(
-            [ResponseProblem(None, None, None, f"cannot read {path.name}: use a .csv or .parquet file")]
+            [ResponseProblem(
+                None, None, None,
+                f"cannot read {path.name}: use a .csv, .parquet, .sav or .dta file",
+            )]
         )
     if not path.exists():
         raise ResponseDataError([ResponseProblem(None, None, None, f"no such file: {path}")])
+    if kind == "labelled":
+        from .stat_files import read_labelled
+
+        frame = read_labelled(path).frame
+        if id_column in frame.columns:
+            frame[id_column] = _id_text(frame[id_column])
+        return frame
     try:
         if kind == "parquet":
             frame = pd.read_parquet(path)

@@ -38,6 +38,7 @@ __all__ = [
     "ReferenceSample",
     "Respondent",
     "ResponseHistory",
+    "ScreeningHistory",
     "DetectorOutcome",
     "Review",
     "WebhookDelivery",
@@ -184,6 +185,9 @@ class Respondent(Base):
     review_decision: Mapped[Decision | None] = mapped_column(
         _enum(Decision, "decision"), default=None
     )
+    #: Fingerprint of the screener the result was produced with (the version's instrument and
+    #: every detector's name and version); None before fingerprints were kept (migration 0003).
+    screened_with: Mapped[str | None] = mapped_column(String(64), default=None)
 
 
 class ResponseHistory(Base):
@@ -205,6 +209,30 @@ class ResponseHistory(Base):
     received_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     replaced_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     flags: Mapped[str] = mapped_column(String(500), default="")
+
+
+class ScreeningHistory(Base):
+    """A respondent's earlier screening result, kept when a re-screen changed it."""
+
+    __tablename__ = "screening_history"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    respondent_pk: Mapped[int] = mapped_column(
+        ForeignKey("respondents.id", ondelete="CASCADE"), index=True
+    )
+    survey_version_id: Mapped[int] = mapped_column(ForeignKey("survey_versions.id"))
+    reference_id: Mapped[int | None] = mapped_column(
+        ForeignKey("reference_samples.id", ondelete="SET NULL"), default=None
+    )
+    #: When the earlier result was produced, and when the re-screen replaced it.
+    screened_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    replaced_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    flag_count: Mapped[int] = mapped_column(SmallInteger, default=0)
+    flags: Mapped[str] = mapped_column(String(500), default="")
+    verdict: Mapped[Verdict] = mapped_column(_enum(Verdict, "verdict"), default=Verdict.OK)
+    careless_score: Mapped[float | None] = mapped_column(Float, default=None)
+    #: Detector name to {"version", "state", "score", "flagged"} of the earlier result.
+    results: Mapped[dict[str, Any]] = mapped_column(JSON)
 
 
 class DetectorOutcome(Base):

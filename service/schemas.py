@@ -31,6 +31,8 @@ __all__ = [
     "ReviewIn",
     "ReviewOut",
     "HistoryEntry",
+    "EarlierResult",
+    "ScreeningHistoryEntry",
     "RespondentDetail",
     "DetectorTally",
     "DayTally",
@@ -418,6 +420,27 @@ class HistoryEntry(BaseModel):
     flags: list[str]
 
 
+class EarlierResult(BaseModel):
+    version: str | None = Field(description="The detector's version that produced it.")
+    state: Literal["assessed", "not_assessed", "not_applicable"]
+    score: float | None
+    flagged: bool
+
+
+class ScreeningHistoryEntry(BaseModel):
+    """An earlier screening result, kept because a re-screen changed it."""
+
+    screened_at: dt.datetime = Field(description="When this result was produced.")
+    replaced_at: dt.datetime = Field(description="When a re-screen replaced it.")
+    version: int = Field(description="The survey version it was screened with.")
+    reference_id: int | None = Field(description="The reference sample it was measured against.")
+    flag_count: int
+    flags: list[str]
+    verdict: Verdict | None
+    careless_score: float | None
+    results: dict[str, EarlierResult] = Field(description="Each detector's result then.")
+
+
 class RespondentDetail(BaseModel):
     model_config = ConfigDict(
         json_schema_extra={
@@ -452,6 +475,24 @@ class RespondentDetail(BaseModel):
                     ],
                     "reviews": [],
                     "history": [],
+                    "screening_history": [
+                        {
+                            "screened_at": "2027-05-04T09:30:00Z",
+                            "replaced_at": "2027-05-05T02:00:00Z",
+                            "version": 1,
+                            "reference_id": None,
+                            "flag_count": 0,
+                            "flags": [],
+                            "verdict": "ok",
+                            "careless_score": None,
+                            "results": {
+                                "long_string": {
+                                    "version": "1", "state": "assessed", "score": 9.0,
+                                    "flagged": False,
+                                }
+                            },
+                        }
+                    ],
                 }
             ]
         }
@@ -479,6 +520,9 @@ class RespondentDetail(BaseModel):
     results: list[OutcomeOut]
     reviews: list[ReviewOut]
     history: list[HistoryEntry]
+    screening_history: list[ScreeningHistoryEntry] = Field(
+        description="Earlier screening results that a re-screen changed, newest first."
+    )
 
 
 class DetectorTally(BaseModel):

@@ -20,9 +20,11 @@ from typing import Any
 import orjson
 from sqlalchemy import (
     Row,
+    Text,
     and_,
     bindparam,
     case,
+    cast,
     delete,
     exists,
     func,
@@ -45,6 +47,7 @@ from .models import (
     ResponseHistory,
     Review,
     Role,
+    ScreeningHistory,
     Survey,
     SurveyVersion,
     Verdict,
@@ -84,6 +87,22 @@ __all__ = [
     "erase_respondent",
     "report",
     "BadCursor",
+    "respondent_counts",
+    "latest_reference",
+    "stored_answer_rows",
+    "timed_rows",
+    "count_stale",
+    "screening_rows",
+    "outcome_values",
+    "outcome_values_of",
+    "delete_outcome_rows",
+    "insert_screening_history",
+    "screening_history_of",
+    "outcome_tallies",
+    "outcome_sample",
+    "arrivals_by_day",
+    "survey_flags",
+    "respondent_answers",
 ]
 
 #: Rows per IN (...) list: well under SQLite's bound-parameter limit.
@@ -598,6 +617,288 @@ def erasure_digest(survey: Survey, respondent_id: str) -> str:
     return hmac.new(
         bytes.fromhex(survey.erasure_salt), respondent_id.encode("utf-8"), hashlib.sha256
     ).hexdigest()
+
+
+# Re-screening -----------------------------------------------------------------------------------
+
+
+def respondent_counts(session: Session, survey_id: int) -> dict[int, tuple[int, dt.datetime]]:
+    """Survey version id -> (stored respondents, latest arrival) of the versions with any."""
+    rows = session.execute(
+        select(Respondent.survey_version_id, func.count(), func.max(Respondent.received_at))
+        .where(Respondent.survey_id == survey_id)
+        .group_by(Respondent.survey_version_id)
+    )
+    return {version: (int(n), latest) for version, n, latest in rows}
+
+
+def latest_reference(session: Session, version_id: int) -> ReferenceSample | None:
+    return session.scalar(
+        select(ReferenceSample)
+        .where(ReferenceSample.survey_version_id == version_id)
+        .order_by(ReferenceSample.id.desc())
+        .limit(1)
+    )
+
+
+def stored_answer_rows(
+    session: Session, survey_id: int, version_ids: Sequence[int], after_pk: int, limit: int
+) -> list[Row[Any]]:
+    """The next ``limit`` respondents (by id, after ``after_pk``) of these survey versions:
+    id, respondent_id, survey_version_id, answers as JSON text, answers_digest,
+    duration_seconds, reference_id, screened_with."""
+    return list(
+        session.execute(
+            select(
+                Respondent.id,
+                Respondent.respondent_id,
+                Respondent.survey_version_id,
+                cast(Respondent.answers, Text),
+                Respondent.answers_digest,
+                Respondent.duration_seconds,
+                Respondent.reference_id,
+                Respondent.screened_with,
+            )
+            .where(
+                # "+ 0": walk the primary key from after_pk and stop after one chunk, instead
+                # of reading every row of the survey through an index and sorting them.
+                Respondent.survey_id + 0 == survey_id,
+                Respondent.survey_version_id.in_(list(version_ids)),
+                Respondent.id > after_pk,
+            )
+            .order_by(Respondent.id)
+            .limit(limit)
+        )
+    )
+
+
+def timed_rows(session: Session, survey_id: int, low: int, high: int) -> list[Row[Any]]:
+    """(id, duration_seconds, started_at, submitted_at) of the respondents with ids in
+    [low, high] that have no duration but both timestamps."""
+    return list(
+        session.execute(
+            select(
+                Respondent.id,
+                Respondent.duration_seconds,
+                Respondent.started_at,
+                Respondent.submitted_at,
+            ).where(
+                Respondent.survey_id + 0 == survey_id,  # by primary key range, as above
+                Respondent.id.between(low, high),
+                Respondent.duration_seconds.is_(None),
+                Respondent.started_at.is_not(None),
+                Respondent.submitted_at.is_not(None),
+            )
+        )
+    )
+
+
+def count_stale(
+    session: Session,
+    survey_id: int,
+    version_ids: Sequence[int],
+    target_version_id: int,
+    reference_id: int | None,
+    fingerprint: str,
+) -> int:
+    """How many respondents of these versions were not screened with the target version, the
+    reference sample ``reference_id`` and the screener ``fingerprint`` (see ``jobs.Stored``)."""
+    return int(
+        session.scalar(
+            select(func.count()).where(
+                Respondent.survey_id == survey_id,
+                Respondent.survey_version_id.in_(list(version_ids)),
+                or_(
+                    Respondent.survey_version_id != target_version_id,
+                    Respondent.reference_id.is_distinct_from(reference_id),
+                    Respondent.screened_with.is_distinct_from(fingerprint),
+                ),
+            )
+        )
+        or 0
+    )
+
+
+def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
+    """pk -> the stored screening summary of each respondent that still exists."""
+    out: dict[int, Row[Any]] = {}
+    for chunk in _chunks(list(pks)):
+        rows = session.execute(
+            select(
+                Respondent.id,
+                Respondent.answers_digest,
+                Respondent.survey_version_id,
+                Respondent.reference_id,
+                Respondent.screened_at,
+                Respondent.flag_count,
+                Respondent.flags,
+                Respondent.verdict,
+                Respondent.careless_score,
+                Respondent.screened_with,
+            ).where(Respondent.id.in_(chunk))
+        )
+        for row in rows:
+            out[row.id] = row
+    return out
+
+
+def outcome_values(session: Session, detector: str, low: int, high: int) -> list[Row[Any]]:
+    """(respondent_pk, detector_version, state, flagged, score, cutoff) of one detector's
+    stored results for the respondents with ids in [low, high]."""
+    table = DetectorOutcome.__table__
+    return list(
+        session.connection().execute(
+            select(
+                table.c.respondent_pk,
+                table.c.detector_version,
+                table.c.state,
+                table.c.flagged,
+                table.c.score,
+                table.c.cutoff,
+            ).where(table.c.detector == detector, table.c.respondent_pk.between(low, high))
+        )
+    )
+
+
+def outcome_values_of(
+    session: Session, pks: Sequence[int], detectors: Sequence[str]
+) -> list[Row[Any]]:
+    """(respondent_pk, detector, detector_version, state, flagged, score, cutoff) of the named
+    detectors' stored results for a few respondents."""
+    table = DetectorOutcome.__table__
+    out: list[Row[Any]] = []
+    for chunk in _chunks(list(pks)):
+        out.extend(
+            session.connection().execute(
+                select(
+                    table.c.respondent_pk, table.c.detector, table.c.detector_version,
+                    table.c.state, table.c.flagged, table.c.score, table.c.cutoff,
+                ).where(table.c.respondent_pk.in_(chunk), table.c.detector.in_(list(detectors)))
+            )
+        )
+    return out
+
+
+def delete_outcome_rows(session: Session, rows: list[dict[str, Any]]) -> None:
+    """Delete single results, each given as ``{"pk": respondent pk, "detector": name}``."""
+    if rows:
+        table = DetectorOutcome.__table__
+        session.connection().execute(
+            delete(table).where(
+                table.c.respondent_pk == bindparam("pk"), table.c.detector == bindparam("name")
+            ),
+            [{"pk": r["pk"], "name": r["detector"]} for r in rows],
+        )
+
+
+def insert_screening_history(session: Session, rows: list[dict[str, Any]]) -> None:
+    if rows:
+        session.connection().execute(insert(ScreeningHistory.__table__), rows)
+
+
+def screening_history_of(session: Session, pk: int) -> list[ScreeningHistory]:
+    """A respondent's earlier screening results, newest first."""
+    return list(
+        session.scalars(
+            select(ScreeningHistory)
+            .where(ScreeningHistory.respondent_pk == pk)
+            .order_by(ScreeningHistory.replaced_at.desc(), ScreeningHistory.id.desc())
+        )
+    )
+
+
+# Report -----------------------------------------------------------------------------------------
+
+
+def _survey_rows(survey_id: int, low: int, high: int) -> Any:
+    return select(Respondent.id).where(
+        Respondent.survey_id + 0 == survey_id, Respondent.id.between(low, high)
+    )
+
+
+def outcome_tallies(
+    session: Session, survey_id: int | None, low: int, high: int
+) -> list[Row[Any]]:
+    """(detector, state, flagged, respondents) of a survey's results for the respondents with
+    ids in [low, high], read along the primary key (``survey_id`` None: every respondent in
+    the range is the survey's)."""
+    table = DetectorOutcome.__table__
+    statement = select(table.c.detector, table.c.state, table.c.flagged, func.count()).where(
+        table.c.respondent_pk.between(low, high)
+    )
+    if survey_id is not None:
+        statement = statement.where(
+            table.c.respondent_pk.in_(_survey_rows(survey_id, low, high))
+        )
+    return list(
+        session.connection().execute(
+            statement.group_by(table.c.detector, table.c.state, table.c.flagged)
+        )
+    )
+
+
+def outcome_sample(
+    session: Session, survey_id: int | None, low: int, high: int, step: int
+) -> list[Row[Any]]:
+    """(detector, flagged, score, cutoff) of the assessed results of every ``step``-th
+    respondent (by id) of a survey with ids in [low, high] (``survey_id`` as above)."""
+    table = DetectorOutcome.__table__
+    statement = select(table.c.detector, table.c.flagged, table.c.score, table.c.cutoff).where(
+        table.c.respondent_pk.between(low, high), table.c.state == 0
+    )
+    if survey_id is not None:
+        statement = statement.where(
+            table.c.respondent_pk.in_(_survey_rows(survey_id, low, high))
+        )
+    if step > 1:
+        statement = statement.where(table.c.respondent_pk % step == 0)
+    return list(session.connection().execute(statement))
+
+
+def arrivals_by_day(session: Session, survey_id: int) -> list[Row[Any]]:
+    """(day, respondents, flagged by at least one detector) per day of arrival (UTC)."""
+    day = _day(session).label("day")
+    flagged = func.coalesce(func.sum(case((Respondent.flag_count > 0, 1), else_=0)), 0)
+    return list(
+        session.execute(
+            select(day, func.count(), flagged)
+            .where(Respondent.survey_id == survey_id)
+            .group_by(day)
+            .order_by(day)
+        )
+    )
+
+
+def survey_flags(session: Session, survey_id: int) -> list[Row[Any]]:
+    """(id, survey_version_id, flag_count, verdict, careless_score, review_decision) of every
+    respondent of a survey, by id."""
+    return list(
+        session.execute(
+            select(
+                Respondent.id,
+                Respondent.survey_version_id,
+                Respondent.flag_count,
+                Respondent.verdict,
+                Respondent.careless_score,
+                Respondent.review_decision,
+            )
+            .where(Respondent.survey_id == survey_id)
+            .order_by(Respondent.id)
+        )
+    )
+
+
+def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
+    """pk -> (id, respondent_id, answers) of a few respondents."""
+    out: dict[int, Row[Any]] = {}
+    for chunk in _chunks(list(pks)):
+        for row in session.execute(
+            select(Respondent.id, Respondent.respondent_id, Respondent.answers).where(
+                Respondent.id.in_(chunk)
+            )
+        ):
+            out[row.id] = row
+    return out
 
 
 # Summary ----------------------------------------------------------------------------------------

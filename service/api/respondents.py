@@ -16,6 +16,7 @@ from .. import store
 from ..models import Decision
 from ..problems import Problem
 from ..schemas import (
+    EarlierResult,
     HistoryEntry,
     OutcomeOut,
     RespondentDetail,
@@ -23,6 +24,7 @@ from ..schemas import (
     RespondentRow,
     ReviewIn,
     ReviewOut,
+    ScreeningHistoryEntry,
 )
 from .common import errors
 from .deps import Admin, DatabaseDep, Reader, SettingsDep
@@ -229,6 +231,19 @@ def get_respondent(
                     received_at=h.received_at, replaced_at=h.replaced_at, flags=_split(h.flags),
                 )
                 for h in store.history_of(session, found.id)
+            ],
+            screening_history=[
+                ScreeningHistoryEntry(
+                    screened_at=h.screened_at, replaced_at=h.replaced_at,
+                    version=numbers[h.survey_version_id], reference_id=h.reference_id,
+                    flag_count=h.flag_count, flags=_split(h.flags), verdict=h.verdict,
+                    careless_score=h.careless_score,
+                    results={
+                        name: EarlierResult.model_validate(value)
+                        for name, value in h.results.items()
+                    },
+                )
+                for h in store.screening_history_of(session, found.id)
             ],
         )
 

@@ -1,0 +1,48 @@
+"""Screening reports: one self-contained HTML page per survey."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+from fastapi.responses import HTMLResponse
+
+from ..reports import build_report
+from .common import errors
+from .deps import DatabaseDep, Reader
+from .surveys import survey_or_404
+
+router = APIRouter(tags=["reports"])
+
+
+@router.get(
+    "/v1/surveys/{survey}/report",
+    operation_id="getSurveyReport",
+    summary="The survey's screening report as one self-contained HTML page",
+    response_class=HTMLResponse,
+    responses={
+        200: {
+            "description": "An HTML page with its pictures embedded (opens offline): instrument "
+            "notes, each detector's score distribution and cut-off, overlapping flags, flag "
+            "rate by day, answer patterns, and scale statistics with and without the flagged.",
+            "content": {
+                "text/html": {
+                    "schema": {"type": "string"},
+                    "example": (
+                        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+                        "<title>Screening report: orchard-volunteers-2027</title>...</head>"
+                        "<body><main><header><h1>Screening report: Volunteer survey 2027</h1>"
+                        "...</main></body></html>"
+                    ),
+                }
+            },
+        }
+    }
+    | errors(401, 403, 404),
+)
+def survey_report(survey: str, caller: Reader, database: DatabaseDep) -> HTMLResponse:
+    with database.read() as session:
+        found = survey_or_404(session, survey)
+        page = build_report(session, found)
+    return HTMLResponse(page)
+
+
+__all__ = ["router"]

@@ -1,0 +1,243 @@
+"""Benchmark: ``heedful nightly`` on a survey of 1,000,000 respondents x 50 items in SQLite.
+
+Phases, each in its own process so each peak memory figure (resident set) is its own:
+
+1. ``generate``: register a 50-item instrument and bulk-insert the respondents (50,000 rows per
+   insert, a bounded loop), as stored answers that were never screened (not timed as nightly).
+2. ``first``: the first nightly run: every result is stale (never screened), so every detector
+   runs on everyone and every result is written; then the export (.sav) and the report.
+3. 1% new respondents are posted through the ingest use case (screened on arrival, not
+   timed), then the nightly run: the reference sample is kept (it changes only when the
+   number of respondents changed by 5%), so nothing is stale; the export and report are
+   written.
+4. 5% more are posted, then the nightly run: a new reference sample is estimated, so every
+   respondent is stale against it; only the reference-based detectors' results are rewritten.
+5. A second run right after: nothing is stale.
+
+Prints seconds and peak memory per phase, and for each nightly run how long re-screening took
+apart from the files. Aim: each nightly run under 2 minutes and 3 GB.
+
+    python tests/benchmarks/bench_nightly.py [--respondents 1000000] [--folder DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import hashlib
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+
+ITEMS = 50
+CHUNK = 50_000
+
+
+def instrument_document() -> dict:
+    items = [
+        {"id": f"q{i + 1:02d}", "text": f"statement {i + 1}", "scale": f"s{i // 10}",
+         "keyed": 1 if i % 2 == 0 else -1, "block": f"page{i // 10}"}
+        for i in range(ITEMS)
+    ]
+    return {"survey": "bench", "title": "Benchmark survey", "response_format": {"points": 5},
+            "items": items}
+
+
+def answers_block(rng: np.random.Generator, n: int, keyed: np.ndarray) -> np.ndarray:
+    """Attentive respondents (a trait per scale plus noise) with 5% careless ones and 2% of
+    answers missing, as int8 with -128 for missing."""
+    trait = rng.normal(size=(n, ITEMS // 10)).repeat(10, axis=1)
+    codes = np.clip(np.rint(3 + keyed * trait + rng.normal(0, 0.8, (n, ITEMS))), 1, 5)
+    careless = rng.random(n) < 0.05
+    codes[careless] = rng.integers(1, 6, size=(int(careless.sum()), ITEMS))
+    straight = rng.random(n) < 0.02
+    codes[straight] = rng.integers(1, 6, size=(int(straight.sum()), 1))
+    codes = codes.astype(np.int8)
+    codes[rng.random((n, ITEMS)) < 0.02] = -128
+    return codes
+
+
+def generate(url: str, n: int) -> None:
+    import orjson
+    from sqlalchemy import insert
+
+    from service import store
+    from service.database import Database
+    from service.db import make_engine, upgrade
+    from service.models import Respondent
+
+    engine = make_engine(url)
+    upgrade(engine)
+    database = Database(engine)
+    document = instrument_document()
+    with database.write() as session:
+        registered = store.register_version(session, document, document["title"])
+        survey_id, version_id = registered.survey.id, registered.version.id
+    keyed = np.array([item["keyed"] for item in document["items"]])
+    items = [item["id"] for item in document["items"]]
+    rng = np.random.default_rng(2027)
+    # Arrivals spread over the last 30 days (in the past, as stored arrivals are).
+    start = dt.datetime.now(dt.UTC) - dt.timedelta(days=31)
+    table = Respondent.__table__
+    for first in range(0, n, CHUNK):  # bounded: n / CHUNK inserts
+        size = min(CHUNK, n - first)
+        codes = answers_block(rng, size, keyed)
+        seconds = rng.uniform(120, 900, size)
+        rows = []
+        for k, row in enumerate(codes.tolist()):
+            answers = {item: v for item, v in zip(items, row, strict=True) if v != -128}
+            text = orjson.dumps(answers, option=orjson.OPT_SORT_KEYS)
+            received = start + dt.timedelta(days=30 * (first + k) / n)
+            rows.append(
+                {
+                    "survey_id": survey_id, "respondent_id": f"b{first + k:07d}",
+                    "survey_version_id": version_id, "answers": answers,
+                    "answers_digest": hashlib.sha256(text).hexdigest(),
+                    "duration_seconds": float(seconds[k]), "received_at": received,
+                    "screened_at": received, "flag_count": 0, "flags": "",
+                }
+            )
+        with database.write() as session:
+            session.connection().execute(insert(table), rows)
+    database.dispose()
+
+
+def arrivals(url: str, n: int) -> None:
+    from service import jobs, store
+    from service.database import Database
+    from service.db import make_engine
+    from service.settings import Settings
+
+    document = instrument_document()
+    keyed = np.array([item["keyed"] for item in document["items"]])
+    items = [item["id"] for item in document["items"]]
+    codes = answers_block(np.random.default_rng(n), n, keyed)
+    rows = [
+        {"respondent_id": f"new{n}-{k:07d}",  # a fresh id series per posting
+         "answers": {item: (None if v == -128 else v) for item, v in zip(items, row, strict=True)},
+         "duration_seconds": 300.0}
+        for k, row in enumerate(codes.tolist())
+    ]
+    settings = Settings(database_url=url)
+    database = Database(make_engine(url))
+    for first in range(0, n, 10_000):
+        with database.write() as session:
+            jobs.ingest(session, store.get_survey(session, "bench"), rows[first : first + 10_000],
+                        jobs.IngestOptions(), settings)
+    database.dispose()
+
+
+def nightly(url: str, out: str) -> dict:
+    from service import nightly as job
+    from service.database import Database
+    from service.db import make_engine
+    from service.settings import Settings
+
+    settings = Settings(database_url=url)
+    database = Database(make_engine(url))
+    timings: dict[str, float] = {}
+    original = job.exports.write_export
+
+    def timed_export(*args, **kwargs):
+        t0 = time.perf_counter()
+        try:
+            return original(*args, **kwargs)
+        finally:
+            timings["export"] = time.perf_counter() - t0
+
+    report = job.reports.build_report
+
+    def timed_report(*args, **kwargs):
+        t0 = time.perf_counter()
+        try:
+            return report(*args, **kwargs)
+        finally:
+            timings["report"] = time.perf_counter() - t0
+
+    job.exports.write_export = timed_export
+    job.reports.build_report = timed_report
+    [run] = job.run_nightly(database, settings, out)
+    database.dispose()
+    if run.failed:
+        raise SystemExit(f"nightly failed: {run.error}")
+    return {"line": run.line(), "stale": run.stale, "written": run.counts.results_written,
+            "changed": run.counts.changed, **timings}
+
+
+def child(args: argparse.Namespace) -> None:
+    t0 = time.perf_counter()
+    extra: dict = {}
+    if args.phase == "generate":
+        generate(args.url, args.respondents)
+    elif args.phase == "arrivals":
+        arrivals(args.url, args.respondents)
+    else:
+        extra = nightly(args.url, args.out)
+    seconds = time.perf_counter() - t0
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(json.dumps({"seconds": seconds, "peak_mb": peak, **extra}))
+
+
+def run_phase(phase: str, url: str, respondents: int, out: str) -> dict:
+    result = subprocess.run(
+        [sys.executable, __file__, "--child", phase, "--url", url, "--respondents",
+         str(respondents), "--out", out],
+        check=True, capture_output=True, text=True,
+    )
+    return json.loads(result.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--respondents", type=int, default=1_000_000)
+    parser.add_argument("--folder", help="where the database goes (default: a temporary one)")
+    parser.add_argument("--keep", metavar="DB",
+                        help="use this database file: generate it when missing, keep it after")
+    parser.add_argument("--child", dest="phase")
+    parser.add_argument("--url")
+    parser.add_argument("--out")
+    args = parser.parse_args()
+    if args.phase:
+        child(args)
+        return
+    n = args.respondents
+    with tempfile.TemporaryDirectory(dir=args.folder) as folder:
+        path = Path(args.keep) if args.keep else Path(folder) / "bench.db"
+        url = f"sqlite:///{path}"
+        out = str(Path(folder) / "nightly")
+        if not path.exists():
+            generated = run_phase("generate", url, n, out)
+            print(f"generated {n:,} respondents x {ITEMS} items: {generated['seconds']:.1f} s "
+                  f"(peak {generated['peak_mb']:,.0f} MB)", flush=True)
+        phases = [("first run (nothing screened yet)", None),
+                  ("after 1% new respondents (reference kept)", n // 100),
+                  ("after 5% more (new reference: everyone stale)", n // 20),
+                  ("second run in a row", None)]
+        for label, posted in phases:
+            if posted:
+                run_phase("arrivals", url, posted, out)
+            result = run_phase("nightly", url, n, out)
+            files = result.get("export", 0.0) + result.get("report", 0.0)
+            print(
+                f"nightly, {label}: {result['seconds']:.1f} s, peak {result['peak_mb']:,.0f} MB "
+                f"(re-screening {result['seconds'] - files:.1f} s, export "
+                f"{result.get('export', 0):.1f} s, report {result.get('report', 0):.1f} s; "
+                f"{result['stale']:,} stale, {result['written']:,} results written, "
+                f"{result['changed']:,} changed)", flush=True
+            )
+        size = os.path.getsize(path) / 1e9
+        print(f"database: {size:.1f} GB")
+
+
+if __name__ == "__main__":
+    main()

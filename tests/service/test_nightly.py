@@ -1,0 +1,379 @@
+"""The nightly job: stale results, chunked and interruptible re-screening, files, failures."""
+
+from __future__ import annotations
+
+import datetime as dt
+import io
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sqlalchemy import text
+
+from detectors import REGISTRY
+from service import jobs, nightly, store
+from service.cli import main
+from service.database import Database
+from service.db import make_engine, upgrade
+from service.settings import Settings
+from service.stat_files import read_labelled
+
+from .conftest import make_document, random_rows, respondent
+
+DAY = dt.date(2027, 5, 4)
+#: Columns that hold the time of a run: equal states are compared without them.
+TIMES = {"screened_at", "replaced_at", "created_at", "received_at"}
+
+
+def _database(url: str) -> Database:
+    engine = make_engine(url)
+    upgrade(engine)
+    return Database(engine)
+
+
+def _register(database: Database, document: dict) -> None:
+    with database.write() as session:
+        store.register_version(session, document, document.get("title", ""))
+
+
+def _ingest(database: Database, settings: Settings, survey: str, rows: list[dict]) -> None:
+    with database.write() as session:
+        jobs.ingest(session, store.get_survey(session, survey), rows, jobs.IngestOptions(),
+                    settings)
+
+
+def _state(database: Database, times: bool = True) -> dict[str, list[tuple]]:
+    """Every row of the screening tables, ordered by key (time columns left out if asked)."""
+    tables = {
+        "respondents": "id",
+        "detector_outcomes": "respondent_pk, detector",
+        "screening_history": "id",
+        "reference_samples": "id",
+        "surveys": "id",
+    }
+    out = {}
+    with database.engine.connect() as connection:
+        for table, order in tables.items():
+            result = connection.execute(text(f"SELECT * FROM {table} ORDER BY {order}"))
+            keep = [i for i, c in enumerate(result.keys()) if times or c not in TIMES]
+            out[table] = [tuple(row[i] for i in keep) for row in result]
+    return out
+
+
+@pytest.fixture
+def two_surveys(database_url):
+    """A database with two surveys: 'pulse' (8 items, 150 respondents) and 'other' (10
+    items, 90 respondents), screened on arrival without a reference sample."""
+    jobs.clear_caches()
+    settings = Settings(database_url=database_url, reference_min_respondents=50)
+    database = _database(database_url)
+    _register(database, make_document(survey="pulse"))
+    _register(database, make_document(n_items=10, survey="other"))
+    _ingest(database, settings, "pulse", random_rows(150, seed=1))
+    _ingest(database, settings, "other", random_rows(90, n_items=10, seed=2, prefix="o"))
+    yield database, settings
+    database.dispose()
+    jobs.clear_caches()
+
+
+def _run(database, settings, out, **options):
+    options.setdefault("day", DAY)
+    return {r.survey: r for r in nightly.run_nightly(database, settings, out, **options)}
+
+
+def test_nightly_rescreens_stale_results_and_writes_files(two_surveys, tmp_path):
+    database, settings = two_surveys
+    runs = _run(database, settings, tmp_path)
+    assert set(runs) == {"pulse", "other"}
+    for name, n in (("pulse", 150), ("other", 90)):
+        run = runs[name]
+        assert not run.failed, run.error
+        assert run.respondents == n and run.stale == n and run.counts.rescreened == n
+        assert len(run.references) == 1 and run.references[0]["respondents"] == n
+        folder = tmp_path / DAY.isoformat() / name
+        assert sorted(p.name for p in folder.iterdir()) == sorted(
+            [f"{name}.sav", "nightly.json", "report.html"]
+        )
+        table = read_labelled(folder / f"{name}.sav")
+        assert len(table.frame) == n
+        assert json.loads((folder / "nightly.json").read_text())["rescreened"] == n
+        assert name in run.line() and f"{n:,} re-screened" in run.line()
+    with database.read() as session:
+        for name in ("pulse", "other"):
+            survey = store.get_survey(session, name)
+            reference = store.latest_reference(session, survey.current_version_id)
+            assert survey.current_reference_id == reference.id
+            screener = jobs.screener_for(session, survey.current_version_id)
+            assert store.count_stale(
+                session, survey.id, [survey.current_version_id], survey.current_version_id,
+                reference.id, screener.fingerprint,
+            ) == 0
+        # Every result was judged against the new reference: mahalanobis is assessed now.
+        states = session.execute(
+            text("SELECT DISTINCT state FROM detector_outcomes WHERE detector = 'mahalanobis'")
+        ).scalars().all()
+        assert states == [0]
+
+
+def test_a_second_run_changes_nothing(two_surveys, tmp_path):
+    database, settings = two_surveys
+    _run(database, settings, tmp_path / "first")
+    before = _state(database)
+    runs = _run(database, settings, tmp_path / "second")
+    assert _state(database) == before  # not even a screening time moved
+    for run in runs.values():
+        assert run.stale == 0 and run.counts.rescreened == 0 and run.references == []
+        assert (run.files[0]).exists()
+
+
+def test_new_arrivals_refresh_the_reference_and_only_results_that_can_change(
+    two_surveys, tmp_path
+):
+    database, settings = two_surveys
+    _run(database, settings, tmp_path)
+    _ingest(database, settings, "pulse", random_rows(10, seed=9, prefix="late"))
+    runs = _run(database, settings, tmp_path)
+    pulse = runs["pulse"]
+    assert pulse.references and pulse.references[0]["respondents"] == 160
+    assert pulse.stale == 160 and pulse.counts.rescreened == 160
+    # The reference-based detector is rewritten for everyone; the others only where a result
+    # came out different (here: nowhere for the 150, whose answers and screener are unchanged).
+    sample = [name for name, cls in REGISTRY.items() if cls.needs_sample]
+    assert pulse.counts.results_written < 160 * len(REGISTRY)
+    assert pulse.counts.results_written >= 160 * len(sample)
+    assert runs["other"].stale == 0 and runs["other"].references == []
+
+
+def test_a_few_arrivals_keep_the_reference_and_nobody_is_stale(two_surveys, tmp_path):
+    database, settings = two_surveys
+    _run(database, settings, tmp_path)
+    # 3 more of 150 is 2%, under REFERENCE_REFRESH_SHARE: the new ones were screened against
+    # the current reference on arrival.
+    _ingest(database, settings, "pulse", random_rows(3, seed=9, prefix="late"))
+    runs = _run(database, settings, tmp_path)
+    assert runs["pulse"].references == [] and runs["pulse"].stale == 0
+
+
+def test_a_new_detector_version_makes_every_result_stale(two_surveys, tmp_path, monkeypatch):
+    database, settings = two_surveys
+    _run(database, settings, tmp_path)
+    monkeypatch.setattr(REGISTRY["long_string"], "version", "999")
+    jobs.clear_caches()
+    runs = _run(database, settings, tmp_path)
+    assert runs["pulse"].stale == 150 and runs["other"].stale == 90
+    assert runs["pulse"].references == []  # the respondents did not change
+    with database.read() as session:
+        versions = session.execute(
+            text("SELECT DISTINCT detector_version FROM detector_outcomes "
+                 "WHERE detector = 'long_string'")
+        ).scalars().all()
+    assert versions == ["999"]
+
+
+def test_respondents_move_to_a_new_version_their_answers_fit(two_surveys, tmp_path):
+    database, settings = two_surveys
+    _run(database, settings, tmp_path)
+    # Same items, a different cut-off: the old respondents' results are stale.
+    _register(database, make_document(survey="pulse", screening={"long_string": {"run_cutoff": 3}}))
+    # More items: answers of 'other' do not fit; its respondents stay on version 1.
+    _register(database, make_document(n_items=12, survey="other"))
+    jobs.clear_caches()
+    runs = _run(database, settings, tmp_path)
+    assert runs["pulse"].stale == 150 and runs["other"].stale == 0
+    with database.read() as session:
+        numbers = {
+            name: session.execute(
+                text("SELECT DISTINCT v.number FROM respondents r JOIN survey_versions v "
+                     "ON v.id = r.survey_version_id JOIN surveys s ON s.id = r.survey_id "
+                     "WHERE s.survey = :name"),
+                {"name": name},
+            ).scalars().all()
+            for name in ("pulse", "other")
+        }
+        flagged = session.execute(
+            text("SELECT count(*) FROM detector_outcomes WHERE detector = 'long_string' "
+                 "AND flagged")
+        ).scalar_one()
+    assert numbers == {"pulse": [2], "other": [1]}
+    assert flagged > 0  # runs of 3 are common in random answers
+
+
+def test_an_interrupted_run_finishes_on_the_next_one(tmp_path, monkeypatch):
+    # SQLite files, so the same starting state can be copied.
+    jobs.clear_caches()
+    first = tmp_path / "a.db"
+    settings = Settings(database_url=f"sqlite:///{first}", reference_min_respondents=50)
+    database = _database(settings.database_url)
+    _register(database, make_document(survey="pulse"))
+    _ingest(database, settings, "pulse", random_rows(150, seed=4))
+    database.dispose()
+    second = tmp_path / "b.db"
+    shutil.copyfile(first, second)
+
+    whole = _database(f"sqlite:///{first}")
+    _run(whole, settings, tmp_path / "whole", chunk=40)
+    expected = _state(whole, times=False)
+    whole.dispose()
+
+    jobs.clear_caches()
+    broken = _database(f"sqlite:///{second}")
+    chunks = []
+
+    def stop_after_first(survey, done, total):
+        chunks.append(done)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(nightly, "_after_chunk", stop_after_first)
+    with pytest.raises(KeyboardInterrupt):
+        _run(broken, settings, tmp_path / "broken", chunk=40)
+    assert chunks == [40]
+    with broken.read() as session:
+        survey = store.get_survey(session, "pulse")
+        screener = jobs.screener_for(session, survey.current_version_id)
+        left = store.count_stale(
+            session, survey.id, [survey.current_version_id], survey.current_version_id,
+            survey.current_reference_id, screener.fingerprint,
+        )
+    assert left == 110  # the first chunk is committed, the rest still stale
+
+    monkeypatch.setattr(nightly, "_after_chunk", lambda survey, done, total: None)
+    runs = _run(broken, settings, tmp_path / "broken", chunk=40)
+    assert runs["pulse"].stale == 110 and runs["pulse"].references == []
+    assert _state(broken, times=False) == expected
+    broken.dispose()
+
+
+def test_a_failing_survey_exits_non_zero_while_the_others_complete(two_surveys, database_url,
+                                                                   tmp_path, capsys):
+    database, _ = two_surveys
+    with database.write() as session:
+        session.execute(
+            text("UPDATE survey_versions SET document = :doc WHERE survey_id = "
+                 "(SELECT id FROM surveys WHERE survey = 'other')"),
+            {"doc": json.dumps({"survey": "other", "response_format": {"points": 5},
+                                "items": []})},
+        )
+    jobs.clear_caches()
+    code = main(["nightly", "--out", str(tmp_path), "--database", database_url])
+    captured = capsys.readouterr()
+    assert code == 1
+    assert "other: FAILED:" in captured.err and "items" in captured.err
+    assert "1 of 2 survey(s) failed" in captured.err
+    assert "pulse: 150 respondents, 150 stale, 150 re-screened" in captured.out
+    day = dt.date.today().isoformat()
+    assert (tmp_path / day / "pulse" / "pulse.sav").exists()
+    assert not (tmp_path / day / "other").exists()
+
+
+def test_an_unknown_survey_is_reported(two_surveys, tmp_path):
+    database, settings = two_surveys
+    runs = _run(database, settings, tmp_path, surveys=["pulse", "nope"])
+    assert runs["nope"].failed and "no survey 'nope'" in runs["nope"].error
+    assert not runs["pulse"].failed
+
+
+def test_cli_options_choose_surveys_and_format(two_surveys, database_url, tmp_path, capsys,
+                                               monkeypatch):
+    monkeypatch.setenv("HEEDFUL_REFERENCE_MIN_RESPONDENTS", "50")
+    code = main(["nightly", "--out", str(tmp_path), "--survey", "other", "--format", "csv",
+                 "--without", "none", "--database", database_url])
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    assert "other:" in captured.out and "pulse" not in captured.out
+    day = dt.date.today().isoformat()
+    exported = (tmp_path / day / "other" / "other.csv").read_text().splitlines()
+    assert len(exported) == 91  # header and 90 respondents
+    # Without a terminal, progress comes as plain log lines on standard error.
+    assert "other: re-screening version 1: 90 of 90" in captured.err
+
+
+def test_progress_bar_in_a_terminal():
+    stream = io.StringIO()
+    progress = nightly.Progress(stream, interactive=True)
+    progress.start("pulse: re-screening", 200)
+    progress.update(200)
+    progress.finish()
+    shown = stream.getvalue()
+    assert "\r" in shown and "#" * nightly.Progress.WIDTH in shown and "200/200" in shown
+
+
+def test_a_respondent_replaced_during_the_run_is_left_alone(two_surveys, tmp_path):
+    database, settings = two_surveys
+    with database.read() as session:
+        survey = store.get_survey(session, "pulse")
+        [target] = jobs.screening_targets(session, survey)
+        stored = jobs.read_stored(session, survey.id, target)
+    new = random_rows(1, seed=77, prefix="r")[0]  # same id as the first, other answers
+    with database.write() as session:
+        jobs.ingest(session, store.get_survey(session, "pulse"), [new],
+                    jobs.IngestOptions(replace=True), settings)
+    with database.write() as session:
+        count = jobs.rescreen_rows(
+            session, target.screener, stored, np.arange(len(stored)), None, None,
+            dt.datetime.now(dt.UTC),
+        )
+    assert count.skipped == 1 and count.rescreened == 149
+
+
+def test_stored_matrix_matches_the_posted_answers(two_surveys):
+    # The vectorised reader against the posted rows themselves.
+    database, _ = two_surveys
+    rows = random_rows(150, seed=1)
+    with database.read() as session:
+        survey = store.get_survey(session, "pulse")
+        [target] = jobs.screening_targets(session, survey)
+        stored = jobs.read_stored(session, survey.id, target, chunk=33)
+    items = [f"q{i + 1:02d}" for i in range(8)]
+    expected = np.array(
+        [[-128 if r["answers"][q] is None else r["answers"][q] for q in items] for r in rows]
+    )
+    np.testing.assert_array_equal(stored.matrix.answers, expected)
+    assert stored.matrix.respondent_ids.tolist() == [r["respondent_id"] for r in rows]
+
+
+def test_files_go_to_a_dated_folder(two_surveys, tmp_path):
+    database, settings = two_surveys
+    runs = _run(database, settings, tmp_path, surveys=["pulse"], fmt="parquet")
+    assert runs["pulse"].files[0] == Path(tmp_path, "2027-05-04", "pulse", "pulse.parquet")
+
+
+def test_summary_and_stored_results_agree_when_a_detector_sees_more_in_a_chunk(
+    two_surveys, tmp_path
+):
+    # Posted one at a time, two identical records cannot be seen as duplicates on arrival;
+    # screened together in a nightly chunk they are. The respondent is then rewritten whole,
+    # so the stored result agrees with the flags on the respondent.
+    database, settings = two_surveys
+    _run(database, settings, tmp_path)
+    same = [1, 2, 4, 5, 2, 1, 3, 4, 5, 2]
+    for rid in ("twin-a", "twin-b"):
+        _ingest(database, settings, "other", [respondent(rid, same)])
+    # With 3 more, 5 of 90 arrived: a new reference sample, everyone stale against it.
+    _ingest(database, settings, "other", random_rows(3, n_items=10, seed=11, prefix="m"))
+    runs = _run(database, settings, tmp_path)
+    assert runs["other"].references and runs["other"].stale == 95
+    with database.read() as session:
+        rows = session.execute(
+            text("SELECT r.flags, o.flagged FROM respondents r JOIN detector_outcomes o "
+                 "ON o.respondent_pk = r.id AND o.detector = 'duplicate_answers' "
+                 "WHERE r.respondent_id IN ('twin-a', 'twin-b')")
+        ).all()
+    assert len(rows) == 2
+    for flags, flagged in rows:
+        assert ("duplicate_answers" in flags.split(",")) == bool(flagged)
+    assert all(flagged for _, flagged in rows)
+
+
+def test_ctrl_c_exits_130_and_says_the_next_run_finishes(two_surveys, database_url, tmp_path,
+                                                          capsys, monkeypatch):
+    monkeypatch.setenv("HEEDFUL_REFERENCE_MIN_RESPONDENTS", "50")
+
+    def interrupt(survey, done, total):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(nightly, "_after_chunk", interrupt)
+    code = main(["nightly", "--out", str(tmp_path), "--database", database_url])
+    assert code == 130
+    assert "next run finishes the rest" in capsys.readouterr().err
