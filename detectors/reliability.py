@@ -158,7 +158,9 @@ def cronbach_alpha(items: np.ndarray, missing: Missing = "pairwise") -> float:
     return float(k / (k - 1) * (1.0 - np.trace(covariance) / total))
 
 
-def keyed_answers(instrument: Instrument, matrix: ResponseMatrix, columns: np.ndarray) -> np.ndarray:
+def keyed_answers(
+    instrument: Instrument, matrix: ResponseMatrix, columns: np.ndarray
+) -> np.ndarray:
     """Answers of the given item columns as float, reverse-keyed (``lowest + highest - x``)
     where the item is keyed -1, NaN where unanswered."""
     answers = matrix.answers[:, columns]

@@ -1064,7 +1064,9 @@ def _place(earlier: _Earlier, pks: np.ndarray, rows: Sequence[Sequence[Any]]) ->
     earlier.cutoff[where] = np.array(cutoff, dtype=np.float64)[hit]
 
 
-def _earlier_results(session: Session, pks: np.ndarray, names: Sequence[str]) -> dict[str, _Earlier]:
+def _earlier_results(
+    session: Session, pks: np.ndarray, names: Sequence[str]
+) -> dict[str, _Earlier]:
     """The named detectors' stored results for the (ascending) respondent ``pks``, read as
     columns along the chunk's id range."""
     low, high = int(pks[0]), int(pks[-1])

@@ -46,7 +46,6 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import sys
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -374,7 +373,3 @@ def run_nightly(
         if report is not None:
             report(run)
     return runs
-
-
-def default_progress() -> Progress:
-    return Progress(sys.stderr)

@@ -110,6 +110,11 @@ def _share(part: int, whole: int) -> str:
     return "-" if whole == 0 else f"{100.0 * part / whole:.1f}%"
 
 
+def _ordinal(n: int) -> str:
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
 def _num(value: float, digits: int = 2) -> str:
     return "-" if value is None or not np.isfinite(value) else f"{value:.{digits}f}"
 
@@ -200,8 +205,8 @@ READ_RESPONDENTS = 50_000
 
 def _detector_data(session: Session, survey_id: int, pks: np.ndarray, step: int
                    ) -> dict[str, _DetectorData]:
-    """Every detector's counts (exact) and the assessed scores of every ``step``-th
-    respondent, read along the results' primary key a range of respondents at a time."""
+    """Every detector's counts (exact, read along the results' primary key a range of
+    respondents at a time) and the assessed scores of every ``step``-th respondent."""
     tallies: dict[str, Counter] = {}
     samples: dict[str, list[tuple]] = {}
     for start in range(0, len(pks), READ_RESPONDENTS):
@@ -214,10 +219,8 @@ def _detector_data(session: Session, survey_id: int, pks: np.ndarray, step: int
             tally[int(state)] += int(n)
             if flagged:
                 tally["flagged"] += int(n)
-        for name, flagged, score, cutoff in store.outcome_sample(
-            session, only, low, high, step
-        ):
-            samples.setdefault(name, []).append((score, flagged, cutoff))
+    for name, flagged, score, cutoff in store.outcome_sample(session, pks[::step].tolist()):
+        samples.setdefault(name, []).append((score, flagged, cutoff))
     out = {}
     for name, tally in tallies.items():
         rows = samples.get(name, [])
@@ -310,8 +313,8 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
     if hidden:
         label += f"; {hidden:,} higher score(s) beyond the axis"
     axes.set_xlabel(label, fontsize=8, color=INK)
-    axes.set_ylabel("respondents" + (f" (every {step}th)" if step > 1 else ""), fontsize=8,
-                    color=INK)
+    every = f" (every {_ordinal(step)})" if step > 1 else ""
+    axes.set_ylabel("respondents" + every, fontsize=8, color=INK)
     axes.legend(handles=handles, fontsize=7, frameon=False, loc="lower right",
                 bbox_to_anchor=(1.0, 1.0), ncols=3, borderaxespad=0.2)
     return _img(figure, f"Distribution of {data.name} scores with the cut-off",
@@ -478,10 +481,10 @@ def _pattern_section(session: Session, survey: Survey, screener: jobs.Screener) 
     return (
         f"{picture}<p class=\"note\">Each row is a respondent (id on the left), each column an "
         "item in the order respondents saw them; colour is the answer given (rust low, cream "
-        "middle, blue high), black an unanswered item. Most flagged: the respondents with the most flags (then the highest "
-        "careless score). Typical: respondents without any flag, picked evenly across the "
-        "order of arrival. Straight lines, stripes and checkerboards stand out; the flags say "
-        "which index saw what.</p>"
+        "middle, blue high), black an unanswered item. Most flagged: the respondents with "
+        "the most flags (then the highest careless score). Typical: respondents without any "
+        "flag, picked evenly across the order of arrival. Straight lines, stripes and "
+        "checkerboards stand out; the flags say which index saw what.</p>"
     )
 
 
@@ -662,8 +665,8 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
         "cut-off depends on how many items a respondent answered, the picture gives its range "
         "and draws the most common one."
         + (
-            f" The pictures are drawn from every {step}th respondent by arrival; the counts "
-            "are of everyone."
+            f" The pictures are drawn from every {_ordinal(step)} respondent by arrival; the "
+            "counts are of everyone."
             if step > 1 else ""
         )
         + "</p>"

@@ -837,22 +837,19 @@ def outcome_tallies(
     )
 
 
-def outcome_sample(
-    session: Session, survey_id: int | None, low: int, high: int, step: int
-) -> list[Row[Any]]:
-    """(detector, flagged, score, cutoff) of the assessed results of every ``step``-th
-    respondent (by id) of a survey with ids in [low, high] (``survey_id`` as above)."""
+def outcome_sample(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
+    """(detector, flagged, score, cutoff) of the assessed results of these respondents."""
     table = DetectorOutcome.__table__
-    statement = select(table.c.detector, table.c.flagged, table.c.score, table.c.cutoff).where(
-        table.c.respondent_pk.between(low, high), table.c.state == 0
-    )
-    if survey_id is not None:
-        statement = statement.where(
-            table.c.respondent_pk.in_(_survey_rows(survey_id, low, high))
+    out: list[Row[Any]] = []
+    for chunk in _chunks(list(pks)):
+        out.extend(
+            session.connection().execute(
+                select(table.c.detector, table.c.flagged, table.c.score, table.c.cutoff).where(
+                    table.c.respondent_pk.in_(chunk), table.c.state == 0
+                )
+            )
         )
-    if step > 1:
-        statement = statement.where(table.c.respondent_pk % step == 0)
-    return list(session.connection().execute(statement))
+    return out
 
 
 def arrivals_by_day(session: Session, survey_id: int) -> list[Row[Any]]:

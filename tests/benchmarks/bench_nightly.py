@@ -4,6 +4,8 @@ Phases, each in its own process so each peak memory figure (resident set) is its
 
 1. ``generate``: register a 50-item instrument and bulk-insert the respondents (50,000 rows per
    insert, a bounded loop), as stored answers that were never screened (not timed as nightly).
+   Then the stored answers are read into a matrix both ways (one row at a time, and as
+   ``jobs.read_stored`` does: chunks, column-wise parsing), and the times compared.
 2. ``first``: the first nightly run: every result is stale (never screened), so every detector
    runs on everyone and every result is written; then the export (.sav) and the report.
 3. 1% new respondents are posted through the ingest use case (screened on arrival, not
@@ -17,7 +19,7 @@ Phases, each in its own process so each peak memory figure (resident set) is its
 Prints seconds and peak memory per phase, and for each nightly run how long re-screening took
 apart from the files. Aim: each nightly run under 2 minutes and 3 GB.
 
-    python tests/benchmarks/bench_nightly.py [--respondents 1000000] [--folder DIR]
+    python tests/benchmarks/bench_nightly.py [--respondents 1000000] [--folder DIR] [--keep DB]
 """
 
 from __future__ import annotations
@@ -137,6 +139,41 @@ def arrivals(url: str, n: int) -> None:
     database.dispose()
 
 
+def compare_read(url: str) -> dict:
+    """Stored answers to a matrix: one row at a time (parse each JSON document, look every item
+    up) against ``jobs.read_stored`` (chunks, Arrow's column-wise JSON reader)."""
+    from sqlalchemy import select
+
+    from detectors import MISSING
+    from service import jobs, store
+    from service.database import Database
+    from service.db import make_engine
+    from service.models import Respondent
+
+    database = Database(make_engine(url))
+    with database.read() as session:
+        survey = store.get_survey(session, "bench")
+        [target] = jobs.screening_targets(session, survey)
+        items = target.screener.instrument.item_ids
+        t0 = time.perf_counter()
+        rows = session.execute(
+            select(Respondent.answers).where(Respondent.survey_id == survey.id)
+            .order_by(Respondent.id)
+        ).all()
+        values = np.array([[row.answers.get(item) for item in items] for row in rows],
+                          dtype=np.float64).reshape(len(rows), len(items))
+        values[np.isnan(values)] = MISSING
+        one_by_one = values.astype(np.int8)
+        by_row = time.perf_counter() - t0
+        del rows, values
+        t0 = time.perf_counter()
+        stored = jobs.read_stored(session, survey.id, target)
+        by_column = time.perf_counter() - t0
+        assert (stored.matrix.answers == one_by_one).all()
+    database.dispose()
+    return {"by_row": by_row, "by_column": by_column}
+
+
 def nightly(url: str, out: str) -> dict:
     from service import nightly as job
     from service.database import Database
@@ -181,6 +218,8 @@ def child(args: argparse.Namespace) -> None:
         generate(args.url, args.respondents)
     elif args.phase == "arrivals":
         arrivals(args.url, args.respondents)
+    elif args.phase == "read":
+        extra = compare_read(args.url)
     else:
         extra = nightly(args.url, args.out)
     seconds = time.perf_counter() - t0
@@ -219,6 +258,9 @@ def main() -> None:
             generated = run_phase("generate", url, n, out)
             print(f"generated {n:,} respondents x {ITEMS} items: {generated['seconds']:.1f} s "
                   f"(peak {generated['peak_mb']:,.0f} MB)", flush=True)
+        read = run_phase("read", url, n, out)
+        print(f"stored answers to a matrix: one row at a time {read['by_row']:.1f} s, chunked "
+              f"and column-wise {read['by_column']:.1f} s", flush=True)
         phases = [("first run (nothing screened yet)", None),
                   ("after 1% new respondents (reference kept)", n // 100),
                   ("after 5% more (new reference: everyone stale)", n // 20),
