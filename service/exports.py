@@ -285,36 +285,6 @@ def _filters(without: Sequence[str]) -> list[Any]:
     return out
 
 
-def _answers(texts: Sequence[str], items: Sequence[str]) -> np.ndarray:
-    """Stored answer documents to an int8 (n, k) matrix (``MISSING`` where unanswered).
-
-    The documents are parsed together as newline-delimited JSON by Arrow's reader, with the
-    items as the schema (other keys ignored); measured in bench_export.py against one
-    ``json.loads`` per row.
-    """
-    import pyarrow as pa
-    import pyarrow.json as pajson
-
-    n = len(texts)
-    out = np.full((n, len(items)), MISSING, dtype=np.int8)
-    if n == 0 or not items:
-        return out
-    joined = "\n".join(texts)
-    if joined.count("\n") != n - 1:  # a stored document spanning lines (pretty-printed)
-        joined = "\n".join(" ".join(text.splitlines()) for text in texts)
-    schema = pa.schema([(item, pa.int8()) for item in items])
-    table = pajson.read_json(
-        io.BytesIO(joined.encode("utf-8")),
-        parse_options=pajson.ParseOptions(
-            explicit_schema=schema, unexpected_field_behavior="ignore"
-        ),
-    )
-    for j, item in enumerate(items):
-        column = table.column(item)
-        out[:, j] = column.fill_null(int(MISSING)).to_numpy()
-    return out
-
-
 def _times(values: Sequence[Any]) -> pd.Series:
     """Stored timestamps (text from SQLite, datetimes from PostgreSQL) as UTC datetimes."""
     series = pd.Series(values, dtype=object)
@@ -388,7 +358,7 @@ def _chunk_frame(session: Session, layout: ExportLayout, rows: Sequence[Any]) ->
     n = len(pks)
     pk_array = np.array(pks, dtype=np.int64)
     version_array = np.array(version_ids, dtype=np.int64)
-    answers = _answers(texts, layout.items)
+    answers = jobs.answer_codes(texts, tuple(layout.items))
     scores, flags, unknown = _outcomes(session, layout.detectors, pk_array)
     layout.unregistered_results += unknown
     data: dict[str, Any] = {}

@@ -48,6 +48,7 @@ __all__ = [
     "reference_data",
     "check_rows",
     "screen_matrix",
+    "answer_codes",
     "ingest",
     "ingest_many",
     "Submission",
@@ -912,7 +913,7 @@ class Stored:
         return rescore | (self.reference_ids != wanted), rescore
 
 
-def _answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
+def answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
     """int8 answer codes (rows x items) from the stored JSON texts of answers, parsed in one
     vectorised pass (Arrow's JSON reader); null or absent answers become ``MISSING``."""
     import pyarrow as pa
@@ -959,7 +960,7 @@ def read_stored(
         pk, rid, version, text, digest, seconds, reference, screened_with = zip(*rows, strict=True)
         block_pks = np.fromiter(pk, dtype=np.int64, count=len(rows))
         try:
-            answers.append(_answer_codes(text, items))
+            answers.append(answer_codes(text, items))
         except (ValueError, TypeError) as error:  # Arrow's parse errors are ValueErrors
             raise ValueError(
                 f"the stored answers of respondents {rid[0]!r} to {rid[-1]!r} cannot be read "
