@@ -375,7 +375,7 @@ def register(subparsers: Any) -> None:
     _add_database(p)
     p.set_defaults(func=_guard(cmd_rescreen))
 
-    from .exports import EXPORT_FORMATS, WITHOUT_CHOICES
+    from .file_commands import EXPORT_FORMATS, WITHOUT_CHOICES  # light: no storage imports
 
     p = subparsers.add_parser(
         "nightly",
