@@ -15,7 +15,7 @@ from ._registry import REGISTRY, get_detector
 from .instrument import Instrument
 from .responses import ResponseMatrix
 from .scales import scale_scores
-from .verdict import RANKS_KEY, Verdicts, assess, rank_tables
+from .verdict import RANKS_KEY, VERDICTS, Verdicts, assess, rank_tables
 
 __all__ = ["Screening", "screen", "build_detectors", "fit_references"]
 
@@ -135,7 +135,7 @@ class Screening:
         return {
             "respondents": self.n_respondents,
             "flagged_any": int((count > 0).sum()),
-            "verdicts": {v: int(verdicts.get(v, 0)) for v in ("ok", "review", "likely_careless")},
+            "verdicts": {v: int(verdicts.get(v, 0)) for v in VERDICTS},
             "detectors": detectors,
         }
 

@@ -207,14 +207,6 @@ def _top_sum(values: np.ndarray, top: int) -> np.ndarray:
     return np.where(present.any(axis=1), total, np.nan)
 
 
-def describe(verdicts: Verdicts, i: int) -> str:
-    """One line for a reviewer: the verdict and which families flagged."""
-    named = verdicts.flagging_families(i)
-    if not named:
-        return "ok: no counted family of indices raised a flag"
-    return f"{verdicts.verdict[i]}: flags from {len(named)} famil{'y' if len(named) == 1 else 'ies'} ({', '.join(named)})"
-
-
 def reference_ranks(reference: Mapping[str, Any] | None) -> Mapping[str, list[float]] | None:
     """The percentile tables stored in a reference, if any."""
     if not reference:

@@ -44,6 +44,20 @@ __all__ = [
     "FieldErrorOut",
 ]
 
+VerdictField = Annotated[
+    Verdict | None,
+    Field(
+        description="ok, review (one family of indices flags) or likely_careless (two or more, "
+        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
+    ),
+]
+CarelessScoreField = Annotated[
+    float | None,
+    Field(
+        description="Share of the reference sample this respondent is more suspect than, in "
+        "[0, 1], combining the carelessness indices; null before a reference sample exists."
+    ),
+]
 RespondentId = Annotated[
     str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)
 ]
@@ -106,14 +120,8 @@ class RespondentOutcome(BaseModel):
     status: Literal["stored", "replaced", "duplicate"]
     flag_count: int
     flags: list[str] = Field(description="Detectors that raised a flag.")
-    verdict: Verdict | None = Field(
-        description="ok, review (one family of indices flags) or likely_careless (two or more, "
-        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
-    )
-    careless_score: float | None = Field(
-        description="Share of the reference sample this respondent is more suspect than, in "
-        "[0, 1], combining the carelessness indices; null before a reference sample exists."
-    )
+    verdict: VerdictField
+    careless_score: CarelessScoreField
     not_assessed: list[str] = Field(description="Detectors that could not judge this respondent.")
 
 
@@ -325,14 +333,8 @@ class RespondentRow(BaseModel):
     respondent_id: str
     flag_count: int
     flags: list[str]
-    verdict: Verdict | None = Field(
-        description="ok, review (one family of indices flags) or likely_careless (two or more, "
-        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
-    )
-    careless_score: float | None = Field(
-        description="Share of the reference sample this respondent is more suspect than, in "
-        "[0, 1], combining the carelessness indices; null before a reference sample exists."
-    )
+    verdict: VerdictField
+    careless_score: CarelessScoreField
     review_decision: Decision | None
     received_at: dt.datetime
     version: int
@@ -508,14 +510,8 @@ class RespondentDetail(BaseModel):
     answers: dict[str, Any]
     flag_count: int
     flags: list[str]
-    verdict: Verdict | None = Field(
-        description="ok, review (one family of indices flags) or likely_careless (two or more, "
-        "or a failed attention check with another flag). Evidence for a reviewer, not a decision."
-    )
-    careless_score: float | None = Field(
-        description="Share of the reference sample this respondent is more suspect than, in "
-        "[0, 1], combining the carelessness indices; null before a reference sample exists."
-    )
+    verdict: VerdictField
+    careless_score: CarelessScoreField
     review_decision: Decision | None
     results: list[OutcomeOut]
     reviews: list[ReviewOut]
