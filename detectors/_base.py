@@ -197,6 +197,15 @@ class Detector:
     reference: ClassVar[str]
     #: True when the detector needs a reference sample (estimated by ``fit``).
     needs_sample: ClassVar[bool] = False
+    #: How the cut-off used for the verdict is set. ``"fixed"``: the detector's own cut-off (a
+    #: rule of the trade or an exact null model). ``"reference"``: the index's null behaviour
+    #: depends on the instrument and the sample, so the screen replaces the detector's own
+    #: cut-off by the reference sample's upper quantile at the policy's per-index false-alarm
+    #: rate (``detectors.calibration``), unless the instrument or the caller sets
+    #: ``cutoff_setting`` explicitly.
+    calibration: ClassVar[str] = "fixed"
+    #: The setting holding the detector's own cut-off, or None.
+    cutoff_setting: ClassVar[str | None] = None
     parameter_constraints: ClassVar[dict[str, Interval | Options]] = {}
 
     # Settings ---------------------------------------------------------------------------------
