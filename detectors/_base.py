@@ -206,6 +206,9 @@ class Detector:
     calibration: ClassVar[str] = "fixed"
     #: The setting holding the detector's own cut-off, or None.
     cutoff_setting: ClassVar[str | None] = None
+    #: The evidence entry that states the cut-off in the reader's units (rewritten when the
+    #: cut-off is calibrated), or None.
+    cutoff_evidence: ClassVar[str | None] = None
     parameter_constraints: ClassVar[dict[str, Interval | Options]] = {}
 
     # Settings ---------------------------------------------------------------------------------
@@ -250,6 +253,12 @@ class Detector:
                 cls.check_settings(layer)
                 merged.update(layer)
         return cls(**merged)
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        """A score cut-off (per respondent) in the units of ``cutoff_evidence``; the identity
+        unless the score is a transform of what the sentence states."""
+        return cutoffs
 
     # Screening --------------------------------------------------------------------------------
 

@@ -189,6 +189,12 @@ class ItemPairConsistency(Detector):
     )
     #: +1: pairs the sample answers alike (synonyms); -1: answered oppositely (antonyms).
     direction: ClassVar[int]
+    calibration = "reference"
+    cutoff_setting = cutoff_evidence = "consistency_cutoff"
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cls.direction * cutoffs  # the score is -direction x r
     #: Wording: "alike" or "oppositely".
     _answered: ClassVar[str]
 

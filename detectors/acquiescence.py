@@ -93,6 +93,8 @@ disagreed with both in 1; mean answer 0.62 points above the midpoint'
         "Baumgartner, H., & Steenkamp, J.-B. E. M. (2001). Response styles in marketing "
         "research: A cross-national investigation. Journal of Marketing Research, 38(2), 143-156."
     )
+    calibration = "reference"
+    cutoff_setting = cutoff_evidence = "share_cutoff"
     parameter_constraints = {
         "share_cutoff": Interval(float, 0, 1, closed="right"),
         "min_pairs": Interval(int, 1, None),

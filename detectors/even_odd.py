@@ -101,11 +101,17 @@ Spearman-Brown (flagged at 0.30 or less)'
         "Johnson, J. A. (2005). Ascertaining the validity of individual protocols from Web-based "
         "personality inventories. Journal of Research in Personality, 39(1), 103-129."
     )
+    calibration = "reference"
+    cutoff_setting = cutoff_evidence = "consistency_cutoff"
     parameter_constraints = {
         "consistency_cutoff": Interval(float, -1, 1),
         "min_scales": Interval(int, 3, None),
         "min_scale_items": Interval(int, 2, None),
     }
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cutoffs  # the score is the negative of the corrected correlation
 
     def __init__(
         self, *, consistency_cutoff: float = 0.3, min_scales: int = 3, min_scale_items: int = 4

@@ -136,6 +136,13 @@ class VerdictPolicy(BaseModel):
         default=2, ge=1,
         description="The careless score combines this many most surprising families.",
     )
+    review_rate: float = Field(
+        default=0.05, gt=0, lt=0.5,
+        description="Share of ordinary respondents the policy means to send to review. It is "
+        "split evenly over the counted families that hold an index calibrated from the "
+        "reference sample; each such index gets its cut-off from that share "
+        "(detectors.calibration).",
+    )
 
     @model_validator(mode="after")
     def _ordered(self) -> VerdictPolicy:

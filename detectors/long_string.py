@@ -104,11 +104,17 @@ class LongString(Detector):
         "Johnson, J. A. (2005). Ascertaining the validity of individual protocols from Web-based "
         "personality inventories. Journal of Research in Personality, 39(1), 103-129."
     )
+    calibration = "reference_within_own"
+    cutoff_setting = cutoff_evidence = "run_cutoff"
     parameter_constraints = {
         "run_cutoff": Interval(int, 2, None, allow_none=True),
         "repeat_probability": Interval(float, 0, 1, closed="neither"),
         "alpha": Interval(float, 0, 1, closed="neither"),
     }
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return np.ceil(cutoffs).astype(np.int64)  # runs are whole numbers of items
 
     def __init__(
         self,

@@ -304,10 +304,10 @@ class Mahalanobis(Detector):
     (True, 3)
     >>> print(result.sentence_for(0))  # doctest: +NORMALIZE_WHITESPACE
     answers far from the sample's pattern: squared distance 41.5 on 4 answered items
-    (p < 0.0001, flagged below p = 0.001); largest contributions from q2, q3, q1
+    (p < 0.0001; flagged from 18.5); largest contributions from q2, q3, q1
     >>> print(result.sentence_for(1))  # doctest: +NORMALIZE_WHITESPACE
     answers not unusual for the sample: squared distance 0.0 on 3 answered items
-    (p = 1, flagged below p = 0.001)
+    (p = 1; flagged from 16.3)
     """
 
     name = "mahalanobis"
@@ -318,6 +318,9 @@ class Mahalanobis(Detector):
         "Mahalanobis, P. C. (1936). On the generalised distance in statistics. Proceedings of "
         "the National Institute of Sciences of India, 2(1), 49-55."
     )
+    calibration = "reference"
+    cutoff_setting = "alpha"
+    cutoff_evidence = "distance_cutoff"
     parameter_constraints = {
         "alpha": Interval(float, 0, 1, closed="neither"),
         "distribution": Options(("chi2", "beta", "f")),
@@ -548,6 +551,7 @@ class Mahalanobis(Detector):
                 "p_value": p_values,
                 "top_items": top_items,
                 "alpha": np.full(n, float(self.alpha)),
+                "distance_cutoff": cutoffs.copy(),
             },
         )
 
@@ -659,7 +663,7 @@ class Mahalanobis(Detector):
         answered = evidence["degrees_of_freedom"]
         measured = (
             f"squared distance {evidence['squared_distance']:.1f} on {answered} answered "
-            f"item{'s' * (answered != 1)} ({shown}, flagged below p = {evidence['alpha']:g})"
+            f"item{'s' * (answered != 1)} ({shown}; flagged from {evidence['distance_cutoff']:.1f})"
         )
         named = [item_ids[i] for i in evidence["top_items"] if i >= 0]
         if not named:

@@ -866,6 +866,8 @@ class PersonFit(Detector):
     reference = (
         "Wright, B. D., & Masters, G. N. (1982). Rating Scale Analysis. Chicago: MESA Press."
     )
+    calibration = "reference"
+    cutoff_setting = cutoff_evidence = "upper_mean_square"
     parameter_constraints = {
         "lower_mean_square": Interval(float, 0, 1, closed="left"),
         "flag_overfit": Options((False, True)),
@@ -879,6 +881,11 @@ class PersonFit(Detector):
         "tolerance": Interval(float, 0, None, closed="neither"),
         "max_iterations": Interval(int, 1, None),
     }
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        # the score is the misfit ratio MS / upper: a ratio cut-off c means MS >= c x upper
+        return cutoffs * float(params["upper_mean_square"])
 
     def __init__(
         self,

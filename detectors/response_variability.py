@@ -101,10 +101,16 @@ answered items) (flagged at SD 0.5 or less)"
         "response variability as an indicator of insufficient effort responding. Journal of "
         "Business and Psychology, 33(1), 105-121."
     )
+    calibration = "reference"
+    cutoff_setting = cutoff_evidence = "sd_cutoff"
     parameter_constraints = {
         "sd_cutoff": Interval(float, 0, None),
         "min_items": Interval(int, 2, None),
     }
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cutoffs  # the score is the negative of the SD
 
     def __init__(self, *, sd_cutoff: float = 0.5, min_items: int = 4):
         self.sd_cutoff = sd_cutoff

@@ -12,12 +12,21 @@ import pandas as pd
 
 from ._base import DetectorResult, State
 from ._registry import REGISTRY, get_detector
+from .calibration import CALIBRATION_KEY, Calibration, apply, calibrate
 from .instrument import Instrument
 from .responses import ResponseMatrix
 from .scales import scale_scores
 from .verdict import RANKS_KEY, VERDICTS, Verdicts, assess, rank_tables
 
-__all__ = ["Screening", "screen", "build_detectors", "fit_references"]
+__all__ = [
+    "Screening",
+    "build_detectors",
+    "calibration_kinds",
+    "fit_references",
+    "reference_calibration",
+    "reference_detectors",
+    "screen",
+]
 
 
 def build_detectors(
@@ -38,14 +47,70 @@ def build_detectors(
     }
 
 
+def reference_detectors(reference: Mapping[str, Any]) -> list[str]:
+    """Names of the detectors with an entry in a stored reference (not its tables)."""
+    return sorted(key for key in reference if key in REGISTRY)
+
+
+def calibration_kinds(
+    instrument: Instrument,
+    detectors: Mapping[str, Any],
+    overrides: Mapping[str, Mapping[str, Any]] | None = None,
+) -> dict[str, str]:
+    """Detectors whose cut-off is calibrated from the reference, with their kind: those that
+    declare it, in a counted family, whose own cut-off the instrument or the caller did not
+    set explicitly (an explicit cut-off is the analyst's decision and is kept)."""
+    overrides = overrides or {}
+    kinds = {}
+    for name, detector in detectors.items():
+        if detector.calibration == "fixed" or detector.family not in instrument.verdict.families:
+            continue
+        setting = detector.cutoff_setting
+        if setting is not None and (
+            setting in instrument.settings_for(name) or setting in overrides.get(name, {})
+        ):
+            continue
+        kinds[name] = detector.calibration
+    return kinds
+
+
+def reference_calibration(
+    instrument: Instrument,
+    detectors: Mapping[str, Any],
+    reference: Mapping[str, Any] | None,
+    overrides: Mapping[str, Mapping[str, Any]] | None = None,
+) -> Calibration | None:
+    """The calibrated cut-offs stored in a reference, for the detectors that use them now
+    (None for a reference from before calibration, or no reference)."""
+    stored = reference.get(CALIBRATION_KEY) if reference else None
+    if stored is None:
+        return None
+    kinds = calibration_kinds(instrument, detectors, overrides)
+    return Calibration.from_json(stored).only(kinds)
+
+
+def _calibrated(
+    instrument: Instrument,
+    detectors: Mapping[str, Any],
+    results: dict[str, DetectorResult],
+    overrides: Mapping[str, Mapping[str, Any]] | None,
+) -> tuple[dict[str, DetectorResult], Calibration]:
+    """Calibrate on ``results`` themselves (they are the reference sample's) and apply."""
+    calibration = calibrate(
+        instrument.verdict, results, calibration_kinds(instrument, detectors, overrides)
+    )
+    return apply(results, calibration, detectors), calibration
+
+
 def fit_references(
     instrument: Instrument,
     matrix: ResponseMatrix,
     overrides: Mapping[str, Mapping[str, Any]] | None = None,
 ) -> dict[str, dict[str, Any]]:
     """The reference estimated from a sample ``matrix``: the entry of every detector that needs
-    a sample, and under ``RANKS_KEY`` the percentile tables of the careless score (from
-    screening the sample itself against those entries)."""
+    a sample, under ``CALIBRATION_KEY`` the calibrated cut-offs and under ``RANKS_KEY`` the
+    percentile tables of the careless score (from screening the sample itself against those
+    entries)."""
     out: dict[str, Any] = {}
     detectors = build_detectors(instrument, overrides)
     for name, detector in detectors.items():
@@ -55,7 +120,9 @@ def fit_references(
         name: detector.screen(instrument, matrix, out.get(name))
         for name, detector in detectors.items()
     }
-    out[RANKS_KEY] = rank_tables(instrument.verdict, results)
+    results, calibration = _calibrated(instrument, detectors, results, overrides)
+    out[CALIBRATION_KEY] = calibration.to_json()
+    out[RANKS_KEY] = rank_tables(instrument.verdict, results, calibration.cleaned)
     return out
 
 
@@ -70,6 +137,8 @@ class Screening:
     ranks: Mapping[str, list[float]] | None = None
     #: Scale scores, plain and acquiescence-adjusted (``detectors.scales.scale_scores``).
     scales: pd.DataFrame | None = None
+    #: The calibrated cut-offs applied (None when every detector kept its own).
+    calibration: Calibration | None = None
 
     @property
     def n_respondents(self) -> int:
@@ -173,6 +242,15 @@ def screen(
             progress(name, index, len(detectors))
         results[name] = detector.screen(instrument, matrix, references.get(name))
     ranks = references.get(RANKS_KEY)
+    calibration = reference_calibration(instrument, detectors, references, overrides)
+    if calibration is not None:
+        results = apply(results, calibration, detectors)
+    elif ranks is None:
+        # no reference: the matrix is its own reference sample
+        results, calibration = _calibrated(instrument, detectors, results, overrides)
+        ranks = rank_tables(instrument.verdict, results, calibration.cleaned)
+    else:
+        calibration = None  # a reference from before calibration: the detectors' own cut-offs
     if ranks is None:
         ranks = rank_tables(instrument.verdict, results)
     return Screening(
@@ -181,4 +259,5 @@ def screen(
         results=results,
         ranks=ranks,
         scales=scale_scores(instrument, matrix),
+        calibration=calibration,
     )

@@ -69,6 +69,8 @@ RANKS_KEY = "careless_score"
 RANK_POINTS = 1001
 #: Key of the combined value's table among the percentile tables.
 COMBINED = "(combined)"
+#: Prefix of a family's table of smallest tail shares among the percentile tables.
+FAMILY_PREFIX = "(family) "
 #: The attention-check detector whose failure escalates the verdict.
 ATTENTION = "attention_checks"
 
@@ -82,22 +84,37 @@ def _quantiles(values: np.ndarray) -> list[float] | None:
 
 
 def rank_tables(
-    policy: VerdictPolicy, results: Mapping[str, DetectorResult | None]
+    policy: VerdictPolicy,
+    results: Mapping[str, DetectorResult | None],
+    cleaned: Mapping[str, np.ndarray] | None = None,
 ) -> dict[str, list[float]]:
-    """Quantiles (JSON-ready) of each counted detector's assessed scores in a reference
-    sample, and under ``COMBINED`` those of the combined family percentiles, so that the
-    careless score itself is a percentile of the reference. Detectors that assessed nobody
-    get no table."""
+    """Quantiles (JSON-ready) read from a reference sample: of each counted detector's
+    assessed scores, under ``FAMILY_PREFIX + family`` of each family's smallest tail share,
+    and under ``COMBINED`` of the combined value, so that the careless score itself is a
+    percentile of the reference. Detectors that assessed nobody get no table.
+
+    ``cleaned`` maps a family to the reference respondents kept in its cleaned sample
+    (``detectors.calibration``); a detector's and its family's tables are read from that
+    sample, so that careless respondents in the reference do not dilute the tail. The combined
+    table is read from the whole reference."""
+    cleaned = cleaned or {}
+    n = next((len(r) for r in results.values() if r is not None), 0)
     tables: dict[str, list[float]] = {}
     for name, result in results.items():
         if result is None or result.family not in policy.families:
             continue
-        table = _quantiles(result.scores[result.states == State.ASSESSED])
+        keep = result.states == State.ASSESSED
+        if result.family in cleaned:
+            keep = keep & cleaned[result.family]
+        table = _quantiles(result.scores[keep])
         if table is not None:
             tables[name] = table
-    n = next((len(r) for r in results.values() if r is not None), 0)
-    combined = _combine(policy, results, tables, n)
-    table = _quantiles(combined)
+    for family, smallest in _smallest_shares(policy, results, tables, n).items():
+        keep = cleaned.get(family, np.ones(n, dtype=bool))
+        table = _quantiles(smallest[keep])
+        if table is not None:
+            tables[FAMILY_PREFIX + family] = table
+    table = _quantiles(_combine(policy, results, tables, n))
     if table is not None:
         tables[COMBINED] = table
     return tables
@@ -173,30 +190,51 @@ def assess(
     return Verdicts(verdict, careless, families, family_flags)
 
 
+def _smallest_shares(
+    policy: VerdictPolicy,
+    results: Mapping[str, DetectorResult | None],
+    ranks: Mapping[str, list[float]],
+    n: int,
+) -> dict[str, np.ndarray]:
+    """Per counted family, each respondent's smallest upper-tail share among its detectors
+    (the share of the reference scoring at or above the respondent); NaN where none assessed."""
+    out: dict[str, np.ndarray] = {}
+    for name, result in results.items():
+        if result is None or result.family not in policy.families or name not in ranks:
+            continue
+        share = 1.0 - _percentiles(result.scores, ranks[name])
+        family = result.family
+        out[family] = share if family not in out else np.fmin(out[family], share)
+    return out
+
+
 def _combine(
     policy: VerdictPolicy,
     results: Mapping[str, DetectorResult | None],
     ranks: Mapping[str, list[float]],
     n: int,
 ) -> np.ndarray:
-    """Sum of the ``score_families`` largest family surprises (a family's percentile is the
-    highest of its detectors')."""
+    """Sum of the ``score_families`` largest family surprises.
+
+    A family's evidence is its detectors' smallest upper-tail share, itself ranked among the
+    reference's (so a family of five indices is not five chances to look extreme: the min-p
+    adjustment of Westfall & Young 1993); its surprise is ``-ln`` of that adjusted share."""
     families = tuple(policy.families)
-    family_rank = np.full((n, len(families)), np.nan)
-    for name, result in results.items():
-        if result is None or result.family not in families or name not in ranks:
+    adjusted = np.full((n, len(families)), np.nan)
+    for family, smallest in _smallest_shares(policy, results, ranks, n).items():
+        table = ranks.get(FAMILY_PREFIX + family)
+        if table is None:
             continue
-        f = families.index(result.family)
-        family_rank[:, f] = np.fmax(family_rank[:, f], _percentiles(result.scores, ranks[name]))
-    return _top_sum(surprise(family_rank), policy.score_families)
+        adjusted[:, families.index(family)] = _percentiles(smallest, table)
+    return _top_sum(surprise(adjusted), policy.score_families)
 
 
-def surprise(percentiles: np.ndarray) -> np.ndarray:
-    """``max(0, -ln(2 (1 - p)))``: 0 up to the median, growing as p nears 1 (capped where the
-    percentile tables stop resolving); NaN stays NaN."""
-    capped = np.minimum(percentiles, 1.0 - 1.0 / (2 * RANK_POINTS))
+def surprise(shares: np.ndarray) -> np.ndarray:
+    """``-ln(p)`` of a lower-tail share p (small p = rare), with p kept at or above the
+    resolution of the percentile tables; NaN stays NaN."""
+    floor = 1.0 / (2 * RANK_POINTS)
     with np.errstate(invalid="ignore"):
-        return np.maximum(0.0, -np.log(2.0 * (1.0 - capped)))
+        return -np.log(np.maximum(shares, floor))
 
 
 def _top_sum(values: np.ndarray, top: int) -> np.ndarray:

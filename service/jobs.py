@@ -33,7 +33,9 @@ from detectors import (
     fit_references,
     parse_instrument,
 )
-from detectors.verdict import RANKS_KEY, Verdicts, assess, reference_ranks
+from detectors.calibration import apply as apply_calibration
+from detectors.screening import calibration_kinds, reference_calibration, reference_detectors
+from detectors.verdict import Verdicts, assess, reference_ranks
 
 from . import store
 from .db import utcnow
@@ -94,7 +96,12 @@ class Screener:
 
     @property
     def sample_detectors(self) -> list[str]:
-        return [name for name, d in self.detectors.items() if d.needs_sample]
+        """Detectors whose result depends on the reference sample: those that need one, and
+        those whose cut-off is calibrated from it."""
+        calibrated = calibration_kinds(self.instrument, self.detectors)
+        return [
+            name for name, d in self.detectors.items() if d.needs_sample or name in calibrated
+        ]
 
 
 class _LRU:
@@ -352,6 +359,12 @@ def screen_matrix(
         results[name] = result
         flags[d] = result.flags
         states[d] = result.states
+    calibration = reference_calibration(screener.instrument, screener.detectors, reference)
+    if calibration is not None:
+        results = apply_calibration(results, calibration, screener.detectors)
+        for d, name in enumerate(names):
+            if results[name] is not None:
+                flags[d] = results[name].flags
     versions = [type(d).version for d in screener.detectors.values()]
     verdicts = assess(screener.instrument.verdict, results, reference_ranks(reference), n)
     return Screened(
@@ -1277,7 +1290,8 @@ def rescreen(session: Session, survey: Survey, settings: Settings) -> dict[str, 
                 references.append(
                     {
                         "id": sample.id, "version": screener.number, "respondents": n,
-                        "detectors": sorted(k for k in data if k != RANKS_KEY), "created_at": now,
+                        "detectors": reference_detectors(data),
+                        "created_at": now,
                     }
                 )
             else:

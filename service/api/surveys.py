@@ -9,6 +9,7 @@ from fastapi import APIRouter, Request, Response
 from starlette.concurrency import run_in_threadpool
 
 from detectors import Instrument, lint, parse_instrument
+from detectors.screening import reference_detectors
 
 from .. import jobs, store
 from ..models import Role, Survey
@@ -136,7 +137,7 @@ def _reference_info(session: Any, survey: Survey, numbers: dict[int, int]) -> Re
         id=reference.id,
         version=numbers[reference.survey_version_id],
         respondents=reference.respondents,
-        detectors=sorted(reference.data),
+        detectors=reference_detectors(reference.data),
         created_at=reference.created_at,
     )
 

@@ -13,6 +13,7 @@ from detectors.responses import ResponseMatrix
 
 #: Modules of the package that are infrastructure, not detectors.
 INFRASTRUCTURE = {
+    "calibration", "planting",
     "errors", "instrument", "responses", "screening", "lint", "scales", "verdict", "reliability",
 }
 

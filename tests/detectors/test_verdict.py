@@ -13,6 +13,7 @@ from detectors._base import DetectorResult
 from detectors.instrument import VerdictPolicy
 from detectors.verdict import (
     COMBINED,
+    FAMILY_PREFIX,
     RANK_POINTS,
     _percentiles,
     assess,
@@ -91,11 +92,11 @@ def test_percentiles_equal_scipys_mean_percentile_of_score():
 
 
 def test_surprise_by_hand():
-    # Hand-computed: -ln(2 (1 - .99)) = -ln(.02) = 3.912; the median and below give 0.
-    values = surprise(np.array([0.2, 0.5, 0.75, 0.99, np.nan]))
-    np.testing.assert_allclose(values[:4], [0.0, 0.0, np.log(2), -np.log(0.02)])
+    # Hand-computed: -ln(1) = 0, -ln(.5) = 0.693, -ln(.01) = 4.605; a share of 0 is read at the
+    # tables' resolution, 1 / (2 x 1001), so -ln(1 / 2002) = ln 2002 = 7.6019.
+    values = surprise(np.array([1.0, 0.5, 0.01, 0.0, np.nan]))
+    np.testing.assert_allclose(values[:4], [0.0, 0.6931472, 4.6051702, 7.6019020], atol=1e-6)
     assert np.isnan(values[4])
-    assert np.isfinite(surprise(np.array([1.0]))).all()
 
 
 def test_rank_tables_skip_style_and_unassessed_and_add_the_combined_table():
@@ -106,7 +107,7 @@ def test_rank_tables_skip_style_and_unassessed_and_add_the_combined_table():
         "mahalanobis": _result("mahalanobis", "outlier", flags, [np.nan] * 4),
     }
     tables = rank_tables(VerdictPolicy(), results)
-    assert set(tables) == {"straightlining", COMBINED}
+    assert set(tables) == {"straightlining", FAMILY_PREFIX + "invariance", COMBINED}
     assert all(len(t) == RANK_POINTS for t in tables.values())
     verdicts = assess(VerdictPolicy(), results, tables, 4)
     # One family only: its percentile orders the respondents as the raw scores do.
