@@ -64,6 +64,7 @@ __all__ = [
     "RECIPES",
     "Drill",
     "drill",
+    "drill_summary",
     "plant",
     "roc_auc",
     "simulated_sample",
@@ -153,7 +154,7 @@ def simulated_sample(instrument: Instrument, n: int, rng: np.random.Generator) -
     Used when a drill has no reference sample. Each scale gets a standard normal trait per
     respondent; an answer is the item's midpoint plus ``keyed x (0.8 trait + 0.6 noise)`` in
     units of ``points / 4``, rounded and kept within the options (items outside scales get
-    noise only). The loadings give item-rest correlations of about .5 on five-item scales, in
+    noise only); attention-check items get their instructed answer. The loadings give item-rest correlations of about .5 on five-item scales, in
     the range of ordinary personality and attitude scales (Heedful's choice, stated so the
     figures can be read with it in mind).
     """
@@ -166,7 +167,11 @@ def simulated_sample(instrument: Instrument, n: int, rng: np.random.Generator) -
     high = instrument.highest.astype(np.float64)
     unit = (high - low + 1) / 4.0
     latent = 0.8 * trait + 0.6 * rng.normal(size=(n, k))
-    return _within(instrument, np.rint((low + high) / 2 + instrument.keyed * latent * unit))
+    values = _within(instrument, np.rint((low + high) / 2 + instrument.keyed * latent * unit))
+    for column, item in enumerate(instrument.items):
+        if item.instructed_answer is not None:  # an attentive respondent follows the instruction
+            values[:, column] = item.instructed_answer
+    return values
 
 
 def roc_auc(scores: np.ndarray, positive: np.ndarray) -> float:
@@ -322,6 +327,59 @@ def drill(
         simulated_ordinary=simulated,
         seed=seed,
     )
+
+
+def drill_summary(
+    instrument: Instrument,
+    ordinary: ResponseMatrix | None = None,
+    *,
+    seeds: Sequence[int] = (1, 2, 3),
+    careless_share: float = 0.10,
+    overrides: Mapping[str, Mapping[str, Any]] | None = None,
+) -> dict[str, Any]:
+    """Drills at several seeds, averaged: JSON-ready figures for the command line and the
+    report (every figure a mean over the seeds)."""
+    if not seeds:
+        raise ValueError("a drill needs at least one seed")
+    runs = [
+        drill(instrument, ordinary, seed=seed, careless_share=careless_share, overrides=overrides)
+        for seed in seeds
+    ]
+
+    def mean(values: Any) -> float:
+        return float(np.mean(list(values)))
+
+    kinds = {
+        kind: {key: mean(r.kinds[kind][key] for r in runs) for key in runs[0].kinds[kind]}
+        for kind in runs[0].kinds
+    }
+    per_index: dict[str, dict[str, Any]] = {}
+    for name, first in runs[0].per_index.items():
+        entry = {key: mean(r.per_index[name][key] for r in runs) for key in first}
+        per_index[name] = entry
+    planted = sum(figures["planted"] for figures in runs[0].kinds.values())
+    caught = mean(
+        sum(f["not_ok"] * f["planted"] for f in r.kinds.values()) / planted for r in runs
+    )
+    return {
+        "simulation": True,
+        "seeds": list(seeds),
+        "careless_share": careless_share,
+        "review_rate": instrument.verdict.review_rate,
+        "ordinary_respondents_simulated": runs[0].simulated_ordinary,
+        "kinds": kinds,
+        "careless_not_ok": caught,
+        "overall_auc": mean(r.overall_auc for r in runs),
+        "ordinary": {key: mean(r.ordinary[key] for r in runs) for key in runs[0].ordinary},
+        "per_index": per_index,
+        "recipes": dict(RECIPES),
+        "sources": [
+            "Meade, A. W., & Craig, S. B. (2012). Identifying careless responses in survey data. "
+            "Psychological Methods, 17(3), 437-455.",
+            "Curran, P. G. (2016). Methods for the detection of carelessly invalid responses in "
+            "survey data. Journal of Experimental Social Psychology, 66, 4-19.",
+        ],
+    }
 
 
 def _codes(values: np.ndarray) -> np.ndarray:

@@ -216,6 +216,7 @@ def screen(
     references: Mapping[str, Mapping[str, Any]] | None = None,
     names: Iterable[str] | None = None,
     progress: Callable[[str, int, int], None] | None = None,
+    calibrate: bool = True,
 ) -> Screening:
     """Run the detectors (all registered ones by default) over ``matrix``.
 
@@ -233,6 +234,10 @@ def screen(
         Only these detectors, in this order.
     progress : callable, optional
         Called as ``progress(name, index, total)`` before each detector runs.
+    calibrate : bool, default True
+        Without ``references``, calibrate cut-offs on ``matrix`` itself (it is its own
+        reference sample). False keeps every detector's own cut-off, as the service does for
+        respondents screened before a survey has a reference sample.
     """
     references = references or {}
     detectors = build_detectors(instrument, overrides, names)
@@ -245,7 +250,7 @@ def screen(
     calibration = reference_calibration(instrument, detectors, references, overrides)
     if calibration is not None:
         results = apply(results, calibration, detectors)
-    elif ranks is None:
+    elif ranks is None and calibrate:
         # no reference: the matrix is its own reference sample
         results, calibration = _calibrated(instrument, detectors, results, overrides)
         ranks = rank_tables(instrument.verdict, results, calibration.cleaned)

@@ -159,12 +159,15 @@ class SequencePattern(Detector):
         of up to 32 items one run of minimum length reaches it. On the bfi data (25 six-point
         items read as one block) 7 of the 2,800 respondents (0.25%) are flagged (see the
         tests).
-    cross_blocks : bool, default False
-        Follow runs across block boundaries. By default a run ends where a block (a grid or
+    cross_blocks : {"auto", False, True}, default "auto"
+        Follow runs across block boundaries. With False a run ends where a block (a grid or
         page) ends: the patterns looked for are drawn on one grid, the first answer on a new
         page is not visually next to the last one of the page before, and blocks may be shown
-        in a different order to each respondent. Set it for questionnaires shown as one list,
-        or with blocks shorter than the minimum lengths.
+        in a different order to each respondent. True follows runs through the whole
+        questionnaire, as for one shown as a list. ``"auto"`` (the default) keeps runs within
+        blocks when some block is as long as the shortest counted run, and otherwise follows
+        them across blocks, so that a questionnaire of short blocks (five-item scales on
+        their own pages) is still judged rather than left out.
 
     Notes
     -----
@@ -233,7 +236,7 @@ class SequencePattern(Detector):
         "min_period_2_run": Interval(int, 4, None),
         "min_period_3_run": Interval(int, 6, None),
         "share_cutoff": Interval(float, 0, 1, closed="right"),
-        "cross_blocks": Options((False, True)),
+        "cross_blocks": Options(("auto", False, True)),
     }
 
     def __init__(
@@ -243,7 +246,7 @@ class SequencePattern(Detector):
         min_period_2_run: int = 8,
         min_period_3_run: int = 9,
         share_cutoff: float = 0.25,
-        cross_blocks: bool = False,
+        cross_blocks: bool | str = "auto",
     ):
         self.min_step_run = min_step_run
         self.min_period_2_run = min_period_2_run
@@ -261,8 +264,13 @@ class SequencePattern(Detector):
         states, reasons = new_states(n)
         columns = instrument.content_items
         shortest = min(self._min_lengths())
-        starts = _block_starts(instrument, columns, bool(self.cross_blocks))
+        cross = self.cross_blocks is True
+        starts = _block_starts(instrument, columns, cross)
         longest_block = int(np.diff(np.r_[np.flatnonzero(starts), len(columns)]).max(initial=0))
+        if self.cross_blocks == "auto" and longest_block < shortest:
+            cross = True
+            starts = _block_starts(instrument, columns, cross)
+            longest_block = len(columns)
         in_runs = np.zeros(n, dtype=np.int64)
         answered = np.zeros(n, dtype=np.int64)
         longest_stretch = np.zeros(n, dtype=np.int64)
@@ -279,7 +287,7 @@ class SequencePattern(Detector):
                     best_rule[rows], best_length[rows], best_end[rows], values[rows], last[rows],
                 ) = found
         if longest_block < shortest:
-            if self.cross_blocks or starts.sum() <= 1:
+            if cross or starts.sum() <= 1:
                 why = (
                     f"fewer than {shortest} items other than attention checks; the shortest "
                     f"run counted is {shortest} items"
@@ -297,7 +305,7 @@ class SequencePattern(Detector):
                 states, reasons, (answered > 0) & (longest_stretch < shortest),
                 State.NOT_ASSESSED,
                 f"no {shortest} answered items in a row"
-                + ("" if self.cross_blocks else " within a block"),
+                + ("" if cross else " within a block"),
             )
         share = np.divide(in_runs, answered, out=np.zeros(n), where=answered > 0)
         rule_names = np.array([*RULES, None], dtype=object)

@@ -146,6 +146,75 @@ def cmd_demo_data(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# drill ------------------------------------------------------------------------------------------
+
+
+def drill_lines(result: dict[str, Any]) -> list[str]:
+    """A drill's figures (``detectors.planting.drill_summary``) as lines of text."""
+    source = (
+        "answers simulated from the instrument (no sample given)"
+        if result["ordinary_respondents_simulated"]
+        else f"{round(result['ordinary']['respondents'])} respondents of the sample given"
+    )
+    lines = [
+        "SIMULATION: careless respondents planted by published recipes among the ordinary "
+        f"ones ({source}), one in {round(1 / result['careless_share'])}, seeds "
+        f"{', '.join(map(str, result['seeds']))}; mean over seeds.",
+        f"  {'careless kind':<16} {'caught (not ok)':>16} {'likely careless':>16} {'ROC AUC':>8}",
+    ]
+    for kind, figures in result["kinds"].items():
+        lines.append(
+            f"  {kind:<16} {figures['not_ok']:>16.1%} {figures['likely_careless']:>16.1%} "
+            f"{figures['auc']:>8.3f}"
+        )
+    ordinary = result["ordinary"]
+    lines.append(
+        f"  {'all kinds':<16} {result['careless_not_ok']:>16.1%} {'':>16} "
+        f"{result['overall_auc']:>8.3f}"
+    )
+    lines.append(
+        f"Ordinary respondents sent to review: {ordinary['not_ok']:.1%} "
+        f"(likely careless: {ordinary['likely_careless']:.1%}); the policy means "
+        f"{result['review_rate']:.1%}."
+    )
+    lines.append(f"  {'index':<22} {'ordinary flagged':>16} {'stated rate':>12}")
+    for name, figures in result["per_index"].items():
+        stated = figures.get("expected")
+        lines.append(
+            f"  {name:<22} {figures['flagged']:>16.2%} "
+            f"{'fixed rule' if stated is None else f'{stated:.2%}':>12}"
+        )
+    lines.append("Recipes (Meade & Craig 2012; Curran 2016):")
+    for kind, recipe in result["recipes"].items():
+        lines.append(f"  {kind}: {recipe}")
+    lines.append(
+        "Real careless answering is more varied than any recipe, and a real sample holds some "
+        "careless respondents among the ordinary ones: read these as what the design allows."
+    )
+    return lines
+
+
+def cmd_drill(args: argparse.Namespace) -> int:
+    from detectors.planting import drill_summary
+
+    instrument = load_instrument(args.instrument)
+    ordinary = None
+    if args.sample is not None:
+        frame = read_table(args.sample, id_column=args.id_column)
+        ordinary = matrix_from_frame(
+            instrument, frame, id_column=args.id_column, duration_column=args.duration_column
+        ).matrix
+    result = drill_summary(
+        instrument, ordinary, seeds=args.seeds, careless_share=args.careless_share,
+        overrides=_parse_settings(args.set or []),
+    )
+    if args.format == "json":
+        print(json.dumps(result, indent=2))
+    else:
+        print("\n".join(drill_lines(result)))
+    return EXIT_OK
+
+
 # the parser -------------------------------------------------------------------------------------
 
 
@@ -188,6 +257,37 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--respondents", type=int, default=600, help="how many (default: %(default)s)")
     p.add_argument("--seed", type=int, default=2027, help="random seed (default: %(default)s)")
     p.set_defaults(func=cmd_demo_data)
+
+    p = commands.add_parser(
+        "drill",
+        help="plant careless respondents into a sample (or simulated answers) and show what "
+        "the screen catches",
+    )
+    p.add_argument("--instrument", required=True, help="instrument definition (JSON)")
+    p.add_argument(
+        "--sample", metavar="FILE",
+        help="ordinary respondents to plant among (CSV, Parquet, .sav, .dta); default: answers "
+        "simulated from the instrument",
+    )
+    p.add_argument("--id-column", default="respondent_id", help="respondent id column (default: %(default)s)")
+    p.add_argument(
+        "--duration-column", default="duration_seconds",
+        help="column of seconds taken, when present (default: %(default)s)",
+    )
+    p.add_argument(
+        "--careless-share", type=float, default=0.10,
+        help="share of careless respondents planted (default: %(default)s)",
+    )
+    p.add_argument(
+        "--seeds", type=int, nargs="+", default=[1, 2, 3],
+        help="planting seeds; figures are means over them (default: 1 2 3)",
+    )
+    p.add_argument(
+        "--set", action="append", metavar="DETECTOR.SETTING=VALUE",
+        help="override a detector setting (repeatable)",
+    )
+    p.add_argument("--format", choices=("text", "json"), default="text")
+    p.set_defaults(func=cmd_drill)
 
     if importlib.util.find_spec("service.commands") is not None:
         from . import commands as service_commands

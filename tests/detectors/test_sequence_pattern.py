@@ -260,7 +260,7 @@ def test_states_with_their_reasons():
         "fewer than 8 items other than attention checks; the shortest run counted is 8 items"
     )
     blocks = ["a"] * 6 + ["b"] * 6
-    result = screen([[1] * 12], instrument(12, blocks=blocks))
+    result = screen([[1] * 12], instrument(12, blocks=blocks), cross_blocks=False)
     assert result.reasons[0] == (
         "no block has 8 or more items other than attention checks; the shortest run counted "
         "is 8 items, and runs are not followed across blocks unless cross_blocks is set"
@@ -292,7 +292,7 @@ def test_settings_are_checked():
         r"got 5\.",
     ):
         screen([[1] * 10], min_period_3_run=5)
-    with pytest.raises(SettingError, match=r"'cross_blocks' setting .* one of False, True"):
+    with pytest.raises(SettingError, match=r"'cross_blocks' setting .* one of 'auto', False, True"):
         screen([[1] * 10], cross_blocks="yes")
 
 
@@ -317,5 +317,8 @@ def test_planted_patterns_in_the_bfi_data(bfi_instrument, bfi_frame):
     assert set(result.evidence["rule"][added][4:]) == {"period_3"}
     assert result.flags[original].mean() < 0.01
     # With the blocks respected, no run of 8 fits in a five-item scale: not applicable.
-    blocked = SequencePattern().screen(bfi_instrument, matrix)
+    blocked = SequencePattern(cross_blocks=False).screen(bfi_instrument, matrix)
     assert set(blocked.states.tolist()) == {State.NOT_APPLICABLE}
+    # By default ("auto") such short blocks are crossed, as with cross_blocks=True.
+    automatic = SequencePattern().screen(bfi_instrument, matrix)
+    np.testing.assert_array_equal(automatic.flags, result.flags)

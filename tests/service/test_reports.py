@@ -216,7 +216,10 @@ def test_history_keeps_the_earlier_result_when_a_rescreen_changes_it(service, su
                  "ON r.id = h.respondent_pk GROUP BY r.respondent_id HAVING count(*) = 2")
         ).scalars().all()
     assert len(twice) > 60  # runs of two equal answers are common in random answers
-    latest = _detail(service, twice[0])
+    # The version-1 cut-off is calibrated from the reference, so a few random answerers were
+    # already flagged for a run; the change shows on those that were not.
+    details = [_detail(service, rid) for rid in twice[:10]]
+    latest = next(d for d in details if "long_string" not in d["screening_history"][0]["flags"])
     assert latest["version"] == 2 and "long_string" in latest["flags"]
     newest, oldest = latest["screening_history"]
     assert newest["replaced_at"] > oldest["replaced_at"]
