@@ -79,13 +79,6 @@ CALIBRATION_KEY = "calibration"
 #: Rounds of estimating cut-offs and setting flagged respondents aside (three rounds settle
 #: the cut-offs on the bfi data with planted careless respondents; more change nothing there).
 CLEANING_ROUNDS = 3
-#: The cleaning sets aside respondents that another family flags at this many times its
-#: share of the budget: careless respondents that other kinds of evidence see only moderately
-#: (random answering) leave the sample too. Looser cleaning removes more careless respondents
-#: and also more ordinary ones related to the family's own evidence (which lowers its cut-off);
-#: 4 balances the two on simulated and on real answers (Heedful's choice, measured with
-#: ``tests/benchmarks/bench_judgement.py`` and the null check in the tests).
-LOOSENESS = 4.0
 
 
 @dataclass(frozen=True)
@@ -196,7 +189,7 @@ def calibrate(
         flags_by_family: dict[str, np.ndarray] = {f: np.zeros(n, dtype=bool) for f in counted}
         for name, flag in fixed.items():
             flags_by_family[results[name].family] |= flag
-        loose_by_family = {f: v.copy() for f, v in flags_by_family.items()}
+
         for family in families:
             members = {k: r for k, r in calibrated.items() if r.family == family}
             sample = keep[family]
@@ -215,10 +208,9 @@ def calibrate(
                 cutoffs[name] = cutoff
                 rates[name] = float(np.mean(reference >= cutoff)) if len(reference) else 0.0
                 flags_by_family[family] |= assessed & (result.scores >= cutoff)
-                loose = upper_cutoff(reference, min(1.0, tail * LOOSENESS))
-                loose_by_family[family] |= assessed & (result.scores >= loose)
+
         keep = {
-            f: ~np.logical_or.reduce([loose_by_family[g] for g in counted if g != f])
+            f: ~np.logical_or.reduce([flags_by_family[g] for g in counted if g != f])
             for f in families
         }
     return Calibration(cutoffs, rates, family_rates, keep)

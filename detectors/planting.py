@@ -65,6 +65,7 @@ __all__ = [
     "Drill",
     "drill",
     "drill_summary",
+    "false_alarm_rates",
     "plant",
     "roc_auc",
     "simulated_sample",
@@ -379,6 +380,46 @@ def drill_summary(
             "Curran, P. G. (2016). Methods for the detection of carelessly invalid responses in "
             "survey data. Journal of Experimental Social Psychology, 66, 4-19.",
         ],
+    }
+
+
+def false_alarm_rates(
+    instrument: Instrument,
+    sample: ResponseMatrix | None = None,
+    *,
+    n_simulated: int = 2000,
+    seed: int = 1,
+) -> dict[str, Any]:
+    """The cut-off and stated false-alarm rate of every index on this instrument, as the
+    screen would calibrate them on ``sample`` (or, without one, on answers simulated from the
+    instrument, which says so). JSON-ready: ``{"simulated": bool, "review_rate": float,
+    "families": {family: share}, "indices": {name: {"family", "calibrated", "cutoff",
+    "rate"}}}``; an index with a fixed rule has ``calibrated`` False and no rate."""
+    from .screening import screen
+
+    simulated = sample is None
+    if sample is None:
+        values = simulated_sample(instrument, n_simulated, np.random.default_rng(seed))
+        sample = ResponseMatrix.from_arrays(instrument, values)
+    screening = screen(instrument, sample)
+    calibration = screening.calibration
+    indices = {}
+    for name, result in screening.results.items():
+        if result.family not in instrument.verdict.families:
+            continue
+        calibrated = calibration is not None and name in calibration.cutoffs
+        indices[name] = {
+            "family": result.family,
+            "calibrated": calibrated,
+            "cutoff": calibration.cutoffs[name] if calibrated else None,
+            "rate": calibration.rates[name] if calibrated else None,
+            "assessed": float((result.states == State.ASSESSED).mean()),
+        }
+    return {
+        "simulated": simulated,
+        "review_rate": instrument.verdict.review_rate,
+        "families": dict(calibration.family_rates) if calibration is not None else {},
+        "indices": indices,
     }
 
 

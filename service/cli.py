@@ -51,7 +51,43 @@ def _print_problems(error: HeedfulError, stream: TextIO) -> None:
 # lint -------------------------------------------------------------------------------------------
 
 
+def _sample_matrix(args: argparse.Namespace, instrument: Any) -> Any:
+    """The ``--sample`` file as a response matrix, or None without one."""
+    if args.sample is None:
+        return None
+    frame = read_table(args.sample, id_column=args.id_column)
+    return matrix_from_frame(
+        instrument, frame, id_column=args.id_column, duration_column=args.duration_column
+    ).matrix
+
+
+def false_alarm_lines(rates: dict[str, Any]) -> list[str]:
+    """Each index's stated false-alarm rate (``detectors.planting.false_alarm_rates``)."""
+    source = (
+        "answers simulated from the instrument (give --sample for your own)"
+        if rates["simulated"] else "the sample given"
+    )
+    lines = [
+        f"Expected false alarms, calibrated on {source}: the verdict policy sends "
+        f"{rates['review_rate']:.1%} of ordinary respondents to review, split over "
+        f"{len(rates['families'])} families "
+        + "(" + ", ".join(f"{f} {share:.2%}" for f, share in rates["families"].items()) + ")."
+    ]
+    width = max((len(name) for name in rates["indices"]), default=8)
+    for name, entry in rates["indices"].items():
+        if entry["assessed"] == 0:
+            stated = "judges nobody on this instrument"
+        elif entry["calibrated"]:
+            stated = f"{entry['rate']:.2%} of ordinary respondents (score cut-off {entry['cutoff']:.3g})"
+        else:
+            stated = "fixed rule (its own cut-off)"
+        lines.append(f"  {name:<{width}}  {entry['family']:<13}  {stated}")
+    return lines
+
+
 def cmd_lint(args: argparse.Namespace) -> int:
+    from detectors.planting import false_alarm_rates
+
     instrument = load_instrument(args.instrument)
     notes = lint(instrument)
     print(
@@ -61,6 +97,9 @@ def cmd_lint(args: argparse.Namespace) -> int:
     for note in notes:
         print(f"warning: {note}")
     print(f"{len(notes)} warning(s)" if notes else "no warnings")
+    rates = false_alarm_rates(instrument, _sample_matrix(args, instrument))
+    for line in false_alarm_lines(rates):
+        print(line)
     return EXIT_OK
 
 
@@ -198,14 +237,8 @@ def cmd_drill(args: argparse.Namespace) -> int:
     from detectors.planting import drill_summary
 
     instrument = load_instrument(args.instrument)
-    ordinary = None
-    if args.sample is not None:
-        frame = read_table(args.sample, id_column=args.id_column)
-        ordinary = matrix_from_frame(
-            instrument, frame, id_column=args.id_column, duration_column=args.duration_column
-        ).matrix
     result = drill_summary(
-        instrument, ordinary, seeds=args.seeds, careless_share=args.careless_share,
+        instrument, _sample_matrix(args, instrument), seeds=args.seeds, careless_share=args.careless_share,
         overrides=_parse_settings(args.set or []),
     )
     if args.format == "json":
@@ -218,6 +251,15 @@ def cmd_drill(args: argparse.Namespace) -> int:
 # the parser -------------------------------------------------------------------------------------
 
 
+def _sample_arguments(p: argparse.ArgumentParser, sample_help: str) -> None:
+    p.add_argument("--sample", metavar="FILE", help=sample_help)
+    p.add_argument("--id-column", default="respondent_id", help="respondent id column (default: %(default)s)")
+    p.add_argument(
+        "--duration-column", default="duration_seconds",
+        help="column of seconds taken, when present (default: %(default)s)",
+    )
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="heedful",
@@ -227,6 +269,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser("lint", help="report design problems of an instrument that limit screening")
     p.add_argument("instrument", help="instrument definition (JSON)")
+    _sample_arguments(p, "a reference sample to calibrate the cut-offs on (CSV, Parquet, .sav, "
+                      ".dta); default: answers simulated from the instrument")
     p.set_defaults(func=cmd_lint)
 
     p = commands.add_parser(
@@ -264,16 +308,8 @@ def build_parser() -> argparse.ArgumentParser:
         "the screen catches",
     )
     p.add_argument("--instrument", required=True, help="instrument definition (JSON)")
-    p.add_argument(
-        "--sample", metavar="FILE",
-        help="ordinary respondents to plant among (CSV, Parquet, .sav, .dta); default: answers "
-        "simulated from the instrument",
-    )
-    p.add_argument("--id-column", default="respondent_id", help="respondent id column (default: %(default)s)")
-    p.add_argument(
-        "--duration-column", default="duration_seconds",
-        help="column of seconds taken, when present (default: %(default)s)",
-    )
+    _sample_arguments(p, "ordinary respondents to plant among (CSV, Parquet, .sav, .dta); "
+                      "default: answers simulated from the instrument")
     p.add_argument(
         "--careless-share", type=float, default=0.10,
         help="share of careless respondents planted (default: %(default)s)",
