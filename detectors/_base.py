@@ -255,6 +255,13 @@ class Detector:
         return cls(**merged)
 
     @classmethod
+    def model_cutoff(cls, result: DetectorResult, keep: np.ndarray, share: float) -> float | None:
+        """For ``calibration == "reference_within_own"``: a cut-off from the detector's chance
+        model with its parameters read from the reference respondents ``keep``, at the upper
+        tail ``share``; the calibrated cut-off is never above it. None: no such model."""
+        return None
+
+    @classmethod
     def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
         """A score cut-off (per respondent) in the units of ``cutoff_evidence``; the identity
         unless the score is a transform of what the sentence states."""

@@ -88,13 +88,16 @@ class Calibration:
     ``cutoffs`` maps a detector to its score cut-off; ``rates`` to the upper-tail share of the
     cleaned reference beyond that cut-off (the index's own expected false-alarm rate);
     ``family_rates`` maps a family to its share of the review budget; ``cleaned`` maps a
-    family to a boolean mask of the reference respondents kept in its cleaned sample.
+    family to a boolean mask of the reference respondents kept in its cleaned sample, and
+    ``unflagged`` marks the reference respondents no counted family flags at the calibrated
+    cut-offs (the sample the careless score's percentile tables are read from).
     """
 
     cutoffs: dict[str, float]
     rates: dict[str, float]
     family_rates: dict[str, float]
     cleaned: dict[str, np.ndarray]
+    unflagged: np.ndarray | None = None
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -109,6 +112,7 @@ class Calibration:
             {k: v for k, v in self.rates.items() if k in names},
             self.family_rates,
             self.cleaned,
+            self.unflagged,
         )
 
     @classmethod
@@ -155,7 +159,7 @@ def calibrate(
     policy: VerdictPolicy,
     results: Mapping[str, DetectorResult | None],
     kinds: Mapping[str, str],
-    fixed_flags: Mapping[str, np.ndarray] | None = None,
+    models: Mapping[str, Any] | None = None,
 ) -> Calibration:
     """Calibrate the cut-offs of the detectors named in ``kinds`` on a reference sample.
 
@@ -167,6 +171,10 @@ def calibrate(
         Every detector's result on the reference sample itself.
     kinds : mapping of detector name to its calibration (``"reference"`` or
         ``"reference_within_own"``): the detectors to calibrate.
+    models : mapping of detector name to its class, optional
+        For a ``"reference_within_own"`` detector, its ``model_cutoff`` (a chance model fitted
+        to the cleaned sample) caps the empirical cut-off: a careless kind that fills the
+        index's upper tail cannot raise the cut-off beyond what the model allows.
     """
     counted = tuple(policy.families)
     calibrated = {
@@ -205,6 +213,10 @@ def calibrate(
                 assessed = result.states == State.ASSESSED
                 reference = result.scores[sample & assessed]
                 cutoff = upper_cutoff(reference, tail)
+                if kinds[name] == "reference_within_own" and models and name in models:
+                    modelled = models[name].model_cutoff(result, sample & assessed, tail)
+                    if modelled is not None:
+                        cutoff = min(cutoff, modelled)
                 cutoffs[name] = cutoff
                 rates[name] = float(np.mean(reference >= cutoff)) if len(reference) else 0.0
                 flags_by_family[family] |= assessed & (result.scores >= cutoff)
@@ -213,7 +225,8 @@ def calibrate(
             f: ~np.logical_or.reduce([flags_by_family[g] for g in counted if g != f])
             for f in families
         }
-    return Calibration(cutoffs, rates, family_rates, keep)
+    unflagged = ~np.logical_or.reduce([flags_by_family[g] for g in counted])
+    return Calibration(cutoffs, rates, family_rates, keep, unflagged)
 
 
 def _family_tail(smallest: np.ndarray, rate: float) -> float:

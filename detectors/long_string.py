@@ -47,6 +47,12 @@ def default_run_cutoff(n_items: int, repeat_probability: float, alpha: float) ->
     return max(n_items, 2)
 
 
+#: Quantile of the respondents' repeat shares that sets the sample's repeat model (Heedful's
+#: choice: high enough to cover the ordinary respondents who repeat most, below the share of
+#: careless respondents a sample commonly holds, about one in ten).
+MODEL_QUANTILE = 0.9
+
+
 class LongString(Detector):
     """Longest run of identical consecutive answers (long-string analysis).
 
@@ -141,6 +147,8 @@ class LongString(Detector):
         cutoff = self.cutoff_for(m)
         best = np.zeros(n, dtype=np.int16)
         best_end = np.zeros(n, dtype=np.int16)
+        repeats = np.zeros(n, dtype=np.int16)
+        pairs = np.zeros(n, dtype=np.int16)
         value = np.zeros(n, dtype=np.int16)
         if m < 2:
             mark(states, reasons, slice(None), State.NOT_APPLICABLE, "fewer than 2 items")
@@ -151,6 +159,8 @@ class LongString(Detector):
             best[:] = run
             for j in range(1, m):
                 same = answered[:, j] & (answers[:, j] == answers[:, j - 1])
+                repeats += same
+                pairs += answered[:, j] & answered[:, j - 1]
                 run = np.where(same, run + 1, answered[:, j]).astype(np.int16)
                 longer = run > best
                 best[longer] = run[longer]
@@ -170,8 +180,30 @@ class LongString(Detector):
                 "first_item": columns[best_start] if m else best_start,
                 "last_item": columns[best_end] if m else best_end,
                 "run_cutoff": np.full(n, cutoff, dtype=np.int64),
+                "repeat_share": np.divide(
+                    repeats, pairs, out=np.full(n, np.nan), where=pairs > 0
+                ),
+                "items_answered": answered.sum(axis=1) if m >= 2 else np.zeros(n, np.int64),
             },
         )
+
+    @classmethod
+    def model_cutoff(cls, result: DetectorResult, keep: np.ndarray, share: float) -> float | None:
+        """The repeat model fitted to the sample: the shortest run whose chance is at most
+        ``share`` when each answer repeats the previous one with probability q, q the
+        ``MODEL_QUANTILE`` quantile of the respondents' own shares of repeated answers (so the
+        model allows for respondents who repeat more than most, while careless respondents in
+        the top of the sample do not set it), for the most common number of answered items."""
+        repeat = result.evidence["repeat_share"][keep]
+        answered = result.evidence["items_answered"][keep]
+        repeat = repeat[np.isfinite(repeat)]
+        if len(repeat) == 0 or len(answered) == 0:
+            return None
+        q = float(np.clip(np.quantile(repeat, MODEL_QUANTILE), 0.01, 0.99))
+        typical = int(np.bincount(answered.astype(np.int64)).argmax())
+        if typical < 2:
+            return None
+        return float(default_run_cutoff(typical, round(q, 4), share))
 
     @staticmethod
     def _sentence(evidence: Mapping[str, Any], item_ids: tuple[str, ...]) -> str:

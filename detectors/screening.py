@@ -97,7 +97,8 @@ def _calibrated(
 ) -> tuple[dict[str, DetectorResult], Calibration]:
     """Calibrate on ``results`` themselves (they are the reference sample's) and apply."""
     calibration = calibrate(
-        instrument.verdict, results, calibration_kinds(instrument, detectors, overrides)
+        instrument.verdict, results, calibration_kinds(instrument, detectors, overrides),
+        {name: type(detector) for name, detector in detectors.items()},
     )
     return apply(results, calibration, detectors), calibration
 
@@ -122,7 +123,7 @@ def fit_references(
     }
     results, calibration = _calibrated(instrument, detectors, results, overrides)
     out[CALIBRATION_KEY] = calibration.to_json()
-    out[RANKS_KEY] = rank_tables(instrument.verdict, results, calibration.cleaned)
+    out[RANKS_KEY] = rank_tables(instrument.verdict, results, calibration.unflagged)
     return out
 
 
@@ -253,7 +254,7 @@ def screen(
     elif ranks is None and calibrate:
         # no reference: the matrix is its own reference sample
         results, calibration = _calibrated(instrument, detectors, results, overrides)
-        ranks = rank_tables(instrument.verdict, results, calibration.cleaned)
+        ranks = rank_tables(instrument.verdict, results, calibration.unflagged)
     else:
         calibration = None  # a reference from before calibration: the detectors' own cut-offs
     if ranks is None:

@@ -86,32 +86,29 @@ def _quantiles(values: np.ndarray) -> list[float] | None:
 def rank_tables(
     policy: VerdictPolicy,
     results: Mapping[str, DetectorResult | None],
-    cleaned: Mapping[str, np.ndarray] | None = None,
+    unflagged: np.ndarray | None = None,
 ) -> dict[str, list[float]]:
     """Quantiles (JSON-ready) read from a reference sample: of each counted detector's
     assessed scores, under ``FAMILY_PREFIX + family`` of each family's smallest tail share,
     and under ``COMBINED`` of the combined value, so that the careless score itself is a
     percentile of the reference. Detectors that assessed nobody get no table.
 
-    ``cleaned`` maps a family to the reference respondents kept in its cleaned sample
-    (``detectors.calibration``); a detector's and its family's tables are read from that
-    sample, so that careless respondents in the reference do not dilute the tail. The combined
-    table is read from the whole reference."""
-    cleaned = cleaned or {}
+    ``unflagged`` marks the reference respondents that no counted family flags at the
+    calibrated cut-offs (``detectors.calibration``); the detectors' and families' tables are
+    read from them, so that careless respondents in the reference do not fill the tails: a
+    respondent beyond a cut-off then lies beyond (nearly) the whole table. The combined table
+    is read from the whole reference, so the careless score stays a percentile of it."""
     n = next((len(r) for r in results.values() if r is not None), 0)
+    keep_all = np.ones(n, dtype=bool) if unflagged is None else unflagged
     tables: dict[str, list[float]] = {}
     for name, result in results.items():
         if result is None or result.family not in policy.families:
             continue
-        keep = result.states == State.ASSESSED
-        if result.family in cleaned:
-            keep = keep & cleaned[result.family]
-        table = _quantiles(result.scores[keep])
+        table = _quantiles(result.scores[keep_all & (result.states == State.ASSESSED)])
         if table is not None:
             tables[name] = table
     for family, smallest in _smallest_shares(policy, results, tables, n).items():
-        keep = cleaned.get(family, np.ones(n, dtype=bool))
-        table = _quantiles(smallest[keep])
+        table = _quantiles(smallest[keep_all])
         if table is not None:
             tables[FAMILY_PREFIX + family] = table
     table = _quantiles(_combine(policy, results, tables, n))
