@@ -20,6 +20,7 @@ from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
 from .person_total import PersonTotal
 from .response_variability import ResponseVariability
+from .scale_agreement import ScaleAgreement
 from .sequence_pattern import SequencePattern
 from .speeding import Speeding
 from .straightlining import Straightlining
@@ -45,6 +46,7 @@ _DETECTORS = (
     AntonymConsistency,
     PersonFit,
     PersonTotal,
+    ScaleAgreement,
 )
 
 #: Detector name to class, in the order results are reported.
