@@ -215,7 +215,7 @@ def _correlations(
         # below 2**24 even on a scale of 1,000 items: float32 is exact here whatever the order
         # of summation.
         slices = list(row_slices(matrix.n_respondents))
-        size = max(rows.stop - rows.start for rows in slices)
+        size = max((rows.stop - rows.start for rows in slices), default=0)
         squares_buffer = np.empty((size, len(columns)), dtype=np.float32)
         for rows, keyed, answered in keyed_slices(
             instrument, matrix, columns, np.float32, slices

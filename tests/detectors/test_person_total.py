@@ -229,3 +229,10 @@ def test_planted_random_around_the_middle_on_bfi(bfi_instrument, bfi_frame):
     planted = np.clip(np.rint(np.random.default_rng(8).normal(3.5, 1, (200, 25))), 1, 6)
     auc, _, _ = planted_auc(bfi_instrument, bfi_frame, planted)
     assert auc > 0.80
+
+
+def test_no_respondents_give_an_empty_result_and_a_reference_without_means():
+    inst = instrument(10)
+    empty = ResponseMatrix(np.array([], dtype=object), np.zeros((0, 10), dtype=np.int8))
+    assert PersonTotal().fit(inst, empty)["item_means"] == [None] * 10
+    assert len(PersonTotal().screen(inst, empty).scores) == 0

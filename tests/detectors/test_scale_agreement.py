@@ -194,3 +194,9 @@ def test_planted_random_around_the_middle_on_bfi(bfi_instrument, bfi_frame):
     # own output.
     planted = np.clip(np.rint(np.random.default_rng(8).normal(3.5, 1, (200, 25))), 1, 6)
     assert planted_auc(bfi_instrument, bfi_frame, planted)[0] > 0.85
+
+
+def test_no_respondents_give_an_empty_result():
+    inst = instrument("aaabbb")
+    empty = ResponseMatrix(np.array([], dtype=object), np.zeros((0, 6), dtype=np.int8))
+    assert len(ScaleAgreement().screen(inst, empty).scores) == 0
