@@ -18,7 +18,9 @@ from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
 from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
+from .person_total import PersonTotal
 from .response_variability import ResponseVariability
+from .scale_agreement import ScaleAgreement
 from .sequence_pattern import SequencePattern
 from .speeding import Speeding
 from .straightlining import Straightlining
@@ -43,6 +45,8 @@ _DETECTORS = (
     SynonymConsistency,
     AntonymConsistency,
     PersonFit,
+    PersonTotal,
+    ScaleAgreement,
 )
 
 #: Detector name to class, in the order results are reported.
