@@ -13,11 +13,13 @@ from .duplicate_answers import DuplicateAnswers
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
+from .guttman_errors import GuttmanErrors
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
 from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
+from .person_scalability import PersonScalability
 from .response_variability import ResponseVariability
 from .sequence_pattern import SequencePattern
 from .speeding import Speeding
@@ -43,6 +45,8 @@ _DETECTORS = (
     SynonymConsistency,
     AntonymConsistency,
     PersonFit,
+    PersonScalability,
+    GuttmanErrors,
 )
 
 #: Detector name to class, in the order results are reported.
