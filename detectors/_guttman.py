@@ -44,10 +44,11 @@ def cumulative_positions(positions: np.ndarray, masks: np.ndarray) -> np.ndarray
     order[flat] = np.arange(flat.size)
     step_item = order // m  # item of each step, in popularity order
     answered_steps = masks[:, step_item]
-    before = np.cumsum(answered_steps, axis=1, dtype=np.int64) - answered_steps
+    before = np.cumsum(answered_steps, axis=1, dtype=np.int32) - answered_steps
     restricted = before[:, flat].reshape(len(masks), n_items, m)
     out = np.zeros((len(masks), n_items, m + 1))
-    np.cumsum(restricted, axis=2, out=out[:, :, 1:])
+    for k in range(m):  # a running sum over the few steps of an item, for all items at once
+        np.add(out[:, :, k], restricted[:, :, k], out=out[:, :, k + 1])
     return out
 
 
@@ -67,15 +68,17 @@ def most_guttman_errors_by_score(cumulative: np.ndarray, masks: np.ndarray) -> n
     m = width - 1
     full = np.where(masks, cumulative[:, :, m], _ABSENT)
     descending = np.argsort(-full, axis=1, kind="stable")
-    ranked_full = np.take_along_axis(full, descending, axis=1)
+    # Each group's items in that order, as one gather of whole rows of C.
+    flat = descending + (np.arange(n_groups) * n_items)[:, None]
+    ranked_cumulative = cumulative.reshape(-1, width)[flat]
+    answered = masks.ravel()[flat]
+    ranked_full = np.where(answered, ranked_cumulative[:, :, m], _ABSENT)
     top = np.zeros((n_groups, n_items + 1))
     np.cumsum(ranked_full, axis=1, out=top[:, 1:])
     most = np.empty((n_groups, n_items * m + 1))
     most[:, ::m] = top
     if m > 1:
-        ranked = np.take_along_axis(cumulative[:, :, 1:m], descending[:, :, None], axis=1)
-        answered = np.take_along_axis(masks, descending, axis=1)[:, :, None]
-        ranked = np.where(answered, ranked, _ABSENT)
+        ranked = np.where(answered[:, :, None], ranked_cumulative[:, :, 1:m], _ABSENT)
         after = np.maximum.accumulate(ranked[:, ::-1], axis=1)[:, ::-1] + top[:, :n_items, None]
         before = np.full_like(after, _ABSENT)
         before[:, 1:] = (

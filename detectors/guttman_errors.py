@@ -355,28 +355,30 @@ their total score: on the bfi data they rank *below* the original respondents). 
         answered = categories <= m
         keys = _mask_keys(answered)
         order = np.argsort(keys, kind="stable")
-        sorted_keys = keys[order]
-        starts = np.flatnonzero(np.r_[True, sorted_keys[1:] != sorted_keys[:-1]])
-        group_of = np.cumsum(np.r_[True, sorted_keys[1:] != sorted_keys[:-1]]) - 1
-        bounds = np.r_[starts, len(order)]
+        # Respondents in pattern order, so that each block of patterns is one run of rows.
+        rows, categories, scores = rows[order], categories[order], scores[order]
+        answered, keys = answered[order], keys[order]
+        new = np.r_[True, keys[1:] != keys[:-1]]
+        starts = np.flatnonzero(new)
+        group_of = np.cumsum(new) - 1
+        bounds = np.r_[starts, len(rows)]
         cell = np.arange(k) * (m + 2)
         width = k * (m + 2)
         ones = np.ones(k)
         for groups in row_slices(len(starts), _GROUPS_PER_BLOCK):
-            masks = answered[order[starts[groups]]]
+            masks = answered[starts[groups]]
             cumulative = cumulative_positions(positions, masks)
             table = _cell_table(cumulative)
             largest = most_guttman_errors_by_score(cumulative, masks)
-            members = np.arange(bounds[groups.start], bounds[groups.stop])
-            for part in row_slices(len(members)):
-                where = members[part]
-                who = order[where]
-                group = group_of[where] - groups.start
-                index = categories[who] + cell
+            first = bounds[groups.start]
+            for part in row_slices(bounds[groups.stop] - first):
+                part = slice(part.start + first, part.stop + first)
+                group = group_of[part] - groups.start
+                index = categories[part] + cell
                 index += (group * width)[:, None]
-                s = scores[who]
-                errors[rows[who]] = table.take(index) @ ones - s * (s - 1) / 2
-                most[rows[who]] = largest[group, s]
+                s = scores[part]
+                errors[rows[part]] = table.take(index) @ ones - s * (s - 1) / 2
+                most[rows[part]] = largest[group, s]
 
     def _mark_unassessed(
         self, states: np.ndarray, reasons: np.ndarray, counted: np.ndarray, k: int, most: np.ndarray

@@ -336,17 +336,21 @@ reference respondents (flagged at 0.00 or less)'
         # tail[c] = Σ_{r >= c} sorted_sums[r], so sort(x) · sorted_sums = Σ_v tail[#(x <= v-1)].
         tail = np.zeros(k + 1, dtype=np.int64)
         tail[:k] = np.cumsum(sorted_sums[::-1])[::-1]
+        ones = np.ones(k, dtype=np.float32)
         # One BLAS thread: the products are small, and threads would only wait between them.
         with threadpool_limits(limits=1, user_api="blas"):
             for rows in row_slices(matrix.n_respondents):
                 values, missing = keying.values(matrix.answers, rows)
-                filled[rows] = missing.sum(axis=1)
-                values = np.where(missing, fill, values)
+                filled[rows] = missing.view(np.uint8).astype(np.float32) @ ones
+                np.copyto(values, fill, where=missing)
                 # Integer products below 2**53, so exact in float64 in any order.
                 a = (values.astype(np.float64) @ column_sums).astype(np.int64)
                 below = _below_counts(values, keying.top)
-                b = tail[below].sum(axis=1)
-                s = k * keying.top - below.sum(axis=1)
+                b = np.zeros(len(a), dtype=np.int64)
+                s = np.full(len(a), k * keying.top, dtype=np.int64)
+                for v in range(keying.top):
+                    b += tail[below[:, v]]
+                    s -= below[:, v]
                 numerator = k * a - total * s
                 denominator = k * b - total * s
                 ht[rows] = np.divide(

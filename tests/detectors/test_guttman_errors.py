@@ -81,23 +81,24 @@ def test_every_pattern_of_three_items_against_brute_force():
     assert checked == 62 + 3 * 14  # 64 - 2 extreme, and 16 - 2 extreme per missing item
 
 
-def test_counts_on_random_answers_with_missing_answers_against_brute_force():
+@pytest.mark.parametrize("k", [10, 70])  # answered patterns kept as one integer, or as bytes
+def test_counts_on_random_answers_with_missing_answers_against_brute_force(k):
     # Popularity from the fit checked against pandas; counts against the pair-by-pair count.
-    inst = instrument(10, points=5)
+    inst = instrument(k, points=5)
     rng = np.random.default_rng(51)
     trait = rng.normal(0, 1, (120, 1))
-    values = np.clip(np.rint(3 + trait + np.linspace(-1, 1, 10) + rng.normal(0, 1, (120, 10))), 1, 5)
+    values = np.clip(np.rint(3 + trait + np.linspace(-1, 1, k) + rng.normal(0, 1, (120, k))), 1, 5)
     values = np.where(inst.keyed == -1, 6 - values, values)  # answers as given, before keying
     values[rng.random(values.shape) < 0.1] = np.nan
-    values[:3] = rng.integers(1, 6, (3, 10))
+    values[:3] = rng.integers(1, 6, (3, k))
     detector = GuttmanErrors(min_answered_items=6, min_respondents=20)
     matrix = as_matrix(inst, values)
     reference = detector.fit(inst, matrix)
     keyed = np.where(inst.keyed == -1, 6 - values, values) - 1  # categories 0..4
     frame = pd.DataFrame(keyed)
     enough = frame.notna().sum(axis=1) >= 6
-    expected = [[(frame.loc[enough, i] >= k).sum() / frame.loc[enough, i].notna().sum()
-                 for k in range(1, 5)] for i in range(10)]
+    expected = [[(frame.loc[enough, i] >= step).sum() / frame.loc[enough, i].notna().sum()
+                 for step in range(1, 5)] for i in range(k)]
     np.testing.assert_allclose(reference["step_popularity"], expected, rtol=1e-12)
     result = detector.screen(inst, matrix, reference)
     assessed = result.states == State.ASSESSED
