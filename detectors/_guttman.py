@@ -92,7 +92,9 @@ def most_guttman_errors_by_score(cumulative: np.ndarray, masks: np.ndarray) -> n
     return most
 
 
-def most_guttman_errors(cumulative: np.ndarray, masks: np.ndarray, scores: np.ndarray) -> np.ndarray:
+def most_guttman_errors(
+    cumulative: np.ndarray, masks: np.ndarray, scores: np.ndarray
+) -> np.ndarray:
     """Largest Guttman-error count possible for each group's own total score ``scores``."""
     by_score = most_guttman_errors_by_score(cumulative, masks)
     return np.take_along_axis(by_score, np.asarray(scores)[:, None], axis=1)[:, 0]

@@ -33,7 +33,9 @@ class _Steps:
         self.sign = np.where(reverse, -1, 1).astype(np.int16)
         self.offset = np.where(reverse, highest, -lowest).astype(np.int16)
 
-    def categories(self, answers: np.ndarray, rows: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def categories(
+        self, answers: np.ndarray, rows: slice | np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         """Keyed categories x' - lowest (m + 1 where unanswered) and the answered mask."""
         raw = answers[rows]
         if len(self.columns) != raw.shape[1]:
@@ -76,17 +78,18 @@ class GuttmanErrors(Detector):
         normed G = G / max{G(y) : y an answer pattern on the same items with total S}
 
     (Emons 2008), so 0 is a perfect Guttman pattern and 1 the most reversed one possible for
-    that score; random answering lies in between, well above attentive respondents on most
-    questionnaires (but random answers around the middle option make few errors for
-their total score: on the bfi data they rank *below* the original respondents). Unlike ``person_fit``, which counts the errors per scale, all items are
-    taken jointly, so the index also reacts to answers that disagree across scales. The score is
-    **normed G**; a respondent is flagged when it is at or above ``normed_errors_cutoff``.
+    that score. Uniform random answering lies well above attentive respondents on most
+    questionnaires; random answers around the middle option do not (see Notes). Unlike
+    ``person_fit``, which counts the errors per scale, all items are taken jointly, so the index
+    also reacts to answers that disagree across scales. The score is **normed G**; a respondent
+    is flagged when it is at or above ``normed_errors_cutoff``.
 
     Computation: with C[i, x] the summed places (counting from 0, among the steps of the
     answered items) of item i's steps 1..x, G = Σ_i C[i, x_i] - S(S - 1)/2, and the maximum
     has at most one item strictly between 0 and m (see ``detectors._guttman``), found exactly.
-    Both depend only on which items were answered, so respondents are grouped by that pattern
-    and each pattern's tables are built once.
+    The places depend only on which items were answered: respondents who answered every item
+    share one table; the others are grouped by their pattern of answered items and each
+    pattern's tables are built once.
 
     Parameters
     ----------
@@ -116,7 +119,11 @@ their total score: on the bfi data they rank *below* the original respondents). 
     consistent than they are. A respondent with every answer in the lowest (or every answer in
     the highest) keyed category can make no error (the maximum is 0): not assessed, reported by
     ``straightlining``, ``long_string`` and the style indices. All items must have the same
-    number of options, since the maximum is found for steps 1..m of every item.
+    number of options, since the maximum is found for steps 1..m of every item. On the bfi data
+    with 200 planted random answerers the ROC AUC of the score is 0.88 for uniform random
+    answers but 0.43 for random answers around the middle option, which make few errors for
+    their total score (Heedful's computation, see the tests): pair it with an index that
+    catches those, such as ``person_scalability`` (0.83) or ``mahalanobis``.
 
     Not applicable: fewer than ``min_answered_items`` content items, or items with different
     numbers of options. Not assessed: the reference was estimated on other items, keying or

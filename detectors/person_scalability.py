@@ -30,7 +30,9 @@ class _Keying:
         self.sign = np.where(reverse, -1, 1).astype(np.int16)
         self.offset = np.where(reverse, lowest + highest, 0).astype(np.int16) - self.base
 
-    def values(self, answers: np.ndarray, rows: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def values(
+        self, answers: np.ndarray, rows: slice | np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         """Keyed, shifted answers (int16) of the rows and their missing mask."""
         raw = answers[rows]
         if len(self.columns) != raw.shape[1]:
@@ -60,7 +62,7 @@ class PersonScalability(Detector):
 
     with covariances taken across the k items and Covmax(X_n, X_m) the covariance of the two
     vectors after sorting each in ascending order, the largest covariance their values allow.
-    HT is 1 when the respondent's answers order the items exactly as the reference respondents
+    HT is 1 when the respondent's answers order the items as every reference respondent's
     do (in the sense of Mokken's model, read for persons), near 0 for answers unrelated to the
     sample's ordering of the items, e.g. random answering, and negative for a reversed
     ordering. The score is **-HT** (higher = more suspect); a respondent is flagged when HT is at
@@ -89,7 +91,7 @@ class PersonScalability(Detector):
         HT's values depend on the instrument and the sample (how strongly the items differ in
         popularity, how many traits they measure), so the screen is meant to replace it by a
         quantile of the reference sample's scores. On the bfi data (25 items, five scales) the
-        original respondents' median HT is 0.21 and 11% lie at or below 0 (Heedful's
+        original respondents' median HT is 0.21 and 12% lie at or below 0 (Heedful's
         computation, see the tests); the 0.3 used as the lower bound of Loevinger's H for a
         scalable item in Mokken scaling (Mokken 1971; from memory) would flag three quarters of
         them.
@@ -110,10 +112,11 @@ class PersonScalability(Detector):
     **The respondent in the reference.** Screening the sample the reference came from (the
     default without a stored reference) includes the term m = n, which adds the same amount
     |c_n|²/k to the numerator and the denominator and so pulls HT towards 1 by
-    (1 - HT) |c_n|² / (k Σ_m Covmax + |c_n|²), about (1 - HT)/R: 1% of the distance to 1 for
-    100 reference respondents, 0.04% for 2,800. It is not removed: the detector cannot tell
-    whether a screened respondent belongs to a stored reference, and keeping it gives the same
-    value in both ways of screening; the bias lies on the lenient side.
+    (1 - HT) |c_n|² / (k Σ_m Covmax + |c_n|²), roughly (1 - HT)/R for a respondent of typical
+    spread: 1% of the distance to 1 for 100 reference respondents, 0.04% for 2,800. It is not
+    removed: the detector cannot tell whether a screened respondent belongs to a stored
+    reference, and keeping it gives the same value in both ways of screening; the bias lies on
+    the lenient side.
 
     **When it stops being valid.** HT measures agreement with the *sample's* ordering of the
     items: with items of nearly equal popularity, or an instrument of several unrelated
@@ -121,7 +124,9 @@ class PersonScalability(Detector):
     (hence the calibration from the reference). Filled answers make HT higher (more like
     everyone else), so a respondent near ``max_missing_share`` is judged leniently. Items with
     different answer ranges are compared on their raw codes, which gives wide-range items more
-    weight.
+    weight. On the bfi data with 200 planted random answerers the ROC AUC of the score is 0.86
+    for uniform random answers and 0.83 for random answers around the middle option (Heedful's
+    computation, see the tests).
 
     Not applicable: fewer than ``min_items`` content items. Not assessed: the reference was
     estimated on other items or keying, or has fewer than ``min_respondents`` usable
