@@ -13,11 +13,13 @@ from .duplicate_answers import DuplicateAnswers
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
+from .guttman_errors import GuttmanErrors
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
 from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
+from .person_scalability import PersonScalability
 from .person_total import PersonTotal
 from .response_variability import ResponseVariability
 from .scale_agreement import ScaleAgreement
@@ -47,6 +49,8 @@ _DETECTORS = (
     PersonFit,
     PersonTotal,
     ScaleAgreement,
+    PersonScalability,
+    GuttmanErrors,
 )
 
 #: Detector name to class, in the order results are reported.

@@ -11,6 +11,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states, row_slices
+from ._guttman import cumulative_positions, most_guttman_errors, step_positions
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -29,8 +30,6 @@ _GROUPS_PER_BLOCK = 1 << 13
 _MAX_STEP = 1.0
 #: Evidence "misfit" by code: not assessed, within the range, underfit, overfit.
 _MISFIT = np.array([None, "none", "underfit", "overfit"], dtype=object)
-#: Stands for "no such item" in the Guttman-error maximum: far below any sum of positions.
-_ABSENT = -1e12
 
 
 # The model ---------------------------------------------------------------------------------------
@@ -121,17 +120,6 @@ def _layouts(instrument: Instrument, min_items: int) -> list[tuple[_Layout | Non
     return out
 
 
-def _step_positions(popularity: np.ndarray) -> np.ndarray:
-    """Place of every item step (i, k) when steps are sorted from most to least popular.
-
-    Ties keep the (item, step) order, so an item's steps stay in their natural order.
-    """
-    order = np.argsort(-popularity.ravel(), kind="stable")
-    positions = np.empty(order.size, dtype=np.int64)
-    positions[order] = np.arange(order.size)
-    return positions.reshape(popularity.shape)
-
-
 def _pattern_groups(answered: np.ndarray, score: np.ndarray) -> tuple[np.ndarray, ...]:
     """Group rows by (which items were answered, raw score): the person estimate depends on
     nothing else. Returns (inverse, group masks, group scores, counts), groups in key order.
@@ -193,55 +181,6 @@ def _person_estimates(
     return theta
 
 
-# Guttman errors ----------------------------------------------------------------------------------
-
-
-def _cumulative_positions(positions: np.ndarray, masks: np.ndarray) -> np.ndarray:
-    """C[g, i, x] = Σ_{k<=x} (place of step (i, k) among the steps of g's answered items).
-
-    A respondent's Guttman errors are then Σ_i C[i, x_i] - S(S-1)/2 with S = Σ x_i: summed
-    over passed steps, a step's place counts the steps before it, passed or failed, and the
-    passed pairs among them number S(S-1)/2.
-    """
-    n_items, m = positions.shape
-    flat = positions.ravel()
-    order = np.empty_like(flat)
-    order[flat] = np.arange(flat.size)
-    step_item = order // m  # item of each step, in popularity order
-    answered_steps = masks[:, step_item]
-    before = np.cumsum(answered_steps, axis=1, dtype=np.int64) - answered_steps
-    restricted = before[:, flat].reshape(len(masks), n_items, m)
-    out = np.zeros((len(masks), n_items, m + 1))
-    np.cumsum(restricted, axis=2, out=out[:, :, 1:])
-    return out
-
-
-def _most_guttman_errors(cumulative: np.ndarray, masks: np.ndarray, scores: np.ndarray) -> np.ndarray:
-    """Largest Guttman-error count possible for total score S on the answered items.
-
-    Maximises Σ_i C[i, x_i] over answers with Σ x_i = S. Each C[i, .] is convex (its
-    increments, the places of the item's steps, increase), so an optimum has at most one item
-    strictly between 0 and m: q = S // m items at m, one at r = S % m, the rest at 0. Given the
-    partial item, the q full items are the ones with the largest C[i, m].
-    """
-    n_groups, n_items, width = cumulative.shape
-    m = width - 1
-    full = np.where(masks, cumulative[:, :, m], _ABSENT)
-    q, r = np.divmod(scores, m)
-    descending = np.argsort(-full, axis=1, kind="stable")
-    prefix = np.zeros((n_groups, n_items + 1))
-    np.cumsum(np.take_along_axis(full, descending, axis=1), axis=1, out=prefix[:, 1:])
-    rank = np.empty_like(descending)
-    np.put_along_axis(rank, descending, np.arange(n_items)[None, :], axis=1)
-    top = np.take_along_axis(prefix, q[:, None], axis=1)[:, 0]
-    top_next = np.take_along_axis(prefix, np.minimum(q + 1, n_items)[:, None], axis=1)
-    partial = np.take_along_axis(cumulative, r[:, None, None], axis=2)[:, :, 0]
-    others = np.where(rank < q[:, None], top_next - full, top[:, None])
-    best = np.where(masks, partial + others, _ABSENT).max(axis=1, initial=_ABSENT)
-    most = np.where(r == 0, top, best)
-    return most - scores * (scores - 1) / 2
-
-
 # Screening ---------------------------------------------------------------------------------------
 
 #: Columns of the per-group table: Σ W over the counted items, items counted in the fit (0 when
@@ -273,7 +212,7 @@ def _tables(model: _Model, theta: np.ndarray, masks: np.ndarray, scores: np.ndar
     squared_residual[:, :, : m + 1] = (np.arange(m + 1) - expected[..., None]) ** 2
     squared_residual[~counted] = 0.0
     squared_z = squared_residual / variance[..., None]
-    cumulative = _cumulative_positions(model.positions, masks)
+    cumulative = cumulative_positions(model.positions, masks)
     guttman = np.zeros(shape)
     guttman[:, :, : m + 1] = cumulative
     guttman[~masks] = 0.0
@@ -282,7 +221,7 @@ def _tables(model: _Model, theta: np.ndarray, masks: np.ndarray, scores: np.ndar
     per_group[:, _USED] = counted.sum(axis=1)
     per_group[:, _EXTREME] = (answered > 0) & ~estimated
     per_group[:, _OFFSET] = -(scores * (scores - 1) / 2.0)
-    per_group[:, _MOST] = _most_guttman_errors(cumulative, masks, scores)
+    per_group[:, _MOST] = most_guttman_errors(cumulative, masks, scores)
     return _Tables(squared_z.ravel(), squared_residual.ravel(), guttman.ravel(), per_group)
 
 
@@ -1201,7 +1140,7 @@ def _model(layout: _Layout, entry: Mapping[str, Any]) -> _Model:
         layout=layout,
         difficulties=np.asarray(entry["difficulties"], dtype=np.float64),
         thresholds=np.asarray(entry["thresholds"], dtype=np.float64),
-        positions=_step_positions(popularity),
+        positions=step_positions(popularity),
     )
 
 

@@ -22,6 +22,7 @@ from detectors import (
     matrix_from_frame,
     parse_instrument,
 )
+from detectors import _guttman as guttman
 from detectors import person_fit as module
 from detectors.person_fit import PersonFit, category_probabilities, reference_notes
 
@@ -390,14 +391,14 @@ def test_most_guttman_errors_equal_brute_force_enumeration():
     for _ in range(60):
         n_items, m = int(rng.integers(2, 6)), int(rng.integers(1, 5))
         popularity = -np.sort(-rng.random((n_items, m)), axis=1)  # within an item: decreasing
-        positions = module._step_positions(popularity)
+        positions = guttman.step_positions(popularity)
         mask = rng.random(n_items) < 0.8
         if not mask.any():
             continue
         answered = np.flatnonzero(mask)
         score = int(rng.integers(0, m * len(answered) + 1))
-        cumulative = module._cumulative_positions(positions, mask[None, :])
-        shortcut = module._most_guttman_errors(cumulative, mask[None, :], np.array([score]))[0]
+        cumulative = guttman.cumulative_positions(positions, mask[None, :])
+        shortcut = guttman.most_guttman_errors(cumulative, mask[None, :], np.array([score]))[0]
         order = sorted(
             ((i, k) for i in answered for k in range(1, m + 1)),
             key=lambda step: positions[step[0], step[1] - 1],
