@@ -18,6 +18,7 @@ from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
 from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
+from .resampled_reliability import ResampledReliability
 from .response_variability import ResponseVariability
 from .sequence_pattern import SequencePattern
 from .speeding import Speeding
@@ -43,6 +44,7 @@ _DETECTORS = (
     SynonymConsistency,
     AntonymConsistency,
     PersonFit,
+    ResampledReliability,
 )
 
 #: Detector name to class, in the order results are reported.
