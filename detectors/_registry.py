@@ -21,6 +21,7 @@ from .missing_answers import MissingAnswers
 from .person_fit import PersonFit
 from .person_scalability import PersonScalability
 from .person_total import PersonTotal
+from .resampled_reliability import ResampledReliability
 from .response_variability import ResponseVariability
 from .scale_agreement import ScaleAgreement
 from .sequence_pattern import SequencePattern
@@ -51,6 +52,7 @@ _DETECTORS = (
     ScaleAgreement,
     PersonScalability,
     GuttmanErrors,
+    ResampledReliability,
 )
 
 #: Detector name to class, in the order results are reported.
