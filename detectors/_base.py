@@ -33,7 +33,7 @@ __all__ = [
 ]
 
 #: Kinds of evidence; style flags are reported but are not evidence of carelessness.
-FAMILIES = ("invariance", "inconsistency", "outlier", "effort", "style")
+FAMILIES = ("invariance", "inconsistency", "misfit", "outlier", "effort", "style")
 
 
 class State(IntEnum):

@@ -190,7 +190,17 @@ def calibrate(
         name: result.flags for name, result in results.items()
         if result is not None and result.family in counted and name not in calibrated
     }
-    keep = {f: np.ones(n, dtype=bool) for f in families}
+    # The first round sets aside what the detectors' own cut-offs flag: without a start, two
+    # families that each see a careless kind only through the other's cleaning would never see
+    # it (each one's tail holds the kind, so neither flags it, so neither sample loses it).
+    own_by_family = {f: np.zeros(n, dtype=bool) for f in counted}
+    for result in results.values():
+        if result is not None and result.family in counted:
+            own_by_family[result.family] |= result.flags
+    keep = {
+        f: ~np.logical_or.reduce([own_by_family[g] for g in counted if g != f])
+        for f in families
+    }
     cutoffs: dict[str, float] = {}
     rates: dict[str, float] = {}
     for _ in range(CLEANING_ROUNDS):

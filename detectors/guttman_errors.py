@@ -165,10 +165,10 @@ class GuttmanErrors(Detector):
     """
 
     name = "guttman_errors"
-    family = "inconsistency"
+    family = "misfit"
     needs_sample = True
     calibration = "reference"
-    cutoff_setting = "normed_errors_cutoff"
+    cutoff_setting = cutoff_evidence = "normed_errors_cutoff"
     summary = "Normed polytomous Guttman errors over all items, steps ordered by popularity."
     reference = (
         "Emons, W. H. M. (2008). Nonparametric person-fit analysis of polytomous item scores. "

@@ -101,7 +101,7 @@ class Item(BaseModel):
 
 #: Families of evidence that count towards carelessness by default (``style`` does not: a response
 #: style distorts scale scores but does not make a record invalid).
-CARELESS_FAMILIES = ("invariance", "inconsistency", "outlier", "effort")
+CARELESS_FAMILIES = ("invariance", "inconsistency", "misfit", "outlier", "effort")
 
 
 class VerdictPolicy(BaseModel):
@@ -115,7 +115,7 @@ class VerdictPolicy(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    families: tuple[Literal["invariance", "inconsistency", "outlier", "effort", "style"], ...] = Field(
+    families: tuple[Literal["invariance", "inconsistency", "misfit", "outlier", "effort", "style"], ...] = Field(
         default=CARELESS_FAMILIES,
         min_length=1,
         description="Families whose flags count towards the verdict and the careless score.",
@@ -133,7 +133,7 @@ class VerdictPolicy(BaseModel):
         "family, its own included) makes the verdict 'likely_careless'.",
     )
     score_families: int = Field(
-        default=2, ge=1,
+        default=3, ge=1,
         description="The careless score combines this many most surprising families.",
     )
     review_rate: float = Field(

@@ -799,7 +799,7 @@ class PersonFit(Detector):
     """
 
     name = "person_fit"
-    family = "inconsistency"
+    family = "misfit"
     needs_sample = True
     summary = "Outfit and infit mean-squares under the rating scale model, per scale."
     reference = (

@@ -169,10 +169,14 @@ reference respondents (flagged at 0.00 or less)'
     """
 
     name = "person_scalability"
-    family = "inconsistency"
+    family = "misfit"
     needs_sample = True
     calibration = "reference"
-    cutoff_setting = "scalability_cutoff"
+    cutoff_setting = cutoff_evidence = "scalability_cutoff"
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cutoffs  # the score is the negative of the value the sentence states
     summary = "Person scalability HT: agreement with the sample's ordering of the items."
     reference = (
         "Sijtsma, K., & Meijer, R. R. (1992). A method for investigating the intersection of "

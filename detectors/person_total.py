@@ -154,7 +154,7 @@ means over 6 answered items (flagged at -0.20 or less)"
     """
 
     name = "person_total"
-    family = "inconsistency"
+    family = "misfit"
     summary = "Within-person correlation of the keyed answers with the sample's item means."
     reference = (
         "Curran, P. G. (2016). Methods for the detection of carelessly invalid responses in "
@@ -162,7 +162,11 @@ means over 6 answered items (flagged at -0.20 or less)"
     )
     needs_sample = True
     calibration = "reference"
-    cutoff_setting = "consistency_cutoff"
+    cutoff_setting = cutoff_evidence = "consistency_cutoff"
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cutoffs  # the score is the negative of the value the sentence states
     parameter_constraints = {
         "consistency_cutoff": Interval(float, -1, 1),
         "min_items": Interval(int, 3, None),

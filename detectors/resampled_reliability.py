@@ -32,8 +32,11 @@ class ResampledReliability(Detector):
         r_mean      = mean of r_s over the splits where r_s is defined
         reliability = 2 r_mean / (1 + r_mean)        (Spearman-Brown, clipped below at -1)
 
-    The score is **the negative of the reliability** (higher = more suspect); a respondent is
-    flagged when the reliability is at or below ``reliability_cutoff``.
+    The score is **the negative of r_mean** (higher = more suspect): it orders respondents as
+    the reliability does, without the ties that clipping at -1 makes among respondents whose
+    halves disagree (r_mean <= -1/3), so a cut-off calibrated from a sample can fall between
+    them. A respondent is flagged when the reliability is at or below ``reliability_cutoff``,
+    that is when r_mean is at or below ``reliability_cutoff / (2 - reliability_cutoff)``.
 
     The split correlations are averaged **before** the Spearman-Brown step-up. The step-up is
     concave and runs to minus infinity as r approaches -1 (it is clipped at -1), so averaging
@@ -140,7 +143,7 @@ class ResampledReliability(Detector):
     ...     instrument, ResponseMatrix.from_arrays(instrument, answers))
     >>> # The 2nd answers every scale at the same mean level, so its halves mirror each other.
     >>> result.scores.round(6).tolist(), result.flags.tolist()
-    ([-0.968679, 1.0], [False, True])
+    ([-0.93926, 0.96656], [False, True])
     >>> result.sentence_for(1)
     'random halves of the scales disagree: mean r -0.97 over 10 half-splits of 4 scales (SD 0.02 \
 between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less)'
@@ -154,7 +157,11 @@ between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less
         "survey data. Journal of Experimental Social Psychology, 66, 4-19."
     )
     calibration = "reference"
-    cutoff_setting = "reliability_cutoff"
+    cutoff_setting = cutoff_evidence = "reliability_cutoff"
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return spearman_brown(-cutoffs)  # the score is minus the mean split correlation
     parameter_constraints = {
         "reliability_cutoff": Interval(float, -1, 1),
         "splits": Interval(int, 1, 200),
@@ -213,10 +220,11 @@ between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less
                     scales_used[rows] = used.max(axis=1)
             mark_unjudged(states, reasons, mean_r, scales_used, self.min_scales)
         reliability = spearman_brown(mean_r)
+        cutoff = float(self.reliability_cutoff)
         return self._result(
             instrument,
-            scores=-reliability,
-            cutoffs=-float(self.reliability_cutoff),
+            scores=-mean_r,
+            cutoffs=-cutoff / (2.0 - cutoff),  # Spearman-Brown inverted: r = R / (2 - R)
             states=states,
             reasons=reasons,
             evidence={

@@ -127,7 +127,11 @@ of the other answers on its scale, over 6 items of 2 scales (flagged at -0.20 or
         "Psychology, 66, 4-19."
     )
     calibration = "reference"
-    cutoff_setting = "consistency_cutoff"
+    cutoff_setting = cutoff_evidence = "consistency_cutoff"
+
+    @classmethod
+    def cutoff_in_evidence(cls, cutoffs: np.ndarray, params: Mapping[str, Any]) -> np.ndarray:
+        return -cutoffs  # the score is the negative of the value the sentence states
     parameter_constraints = {
         "consistency_cutoff": Interval(float, -1, 1),
         "min_scale_items": Interval(int, 2, None),

@@ -45,7 +45,7 @@ def test_one_split_is_the_odd_even_split_by_hand():
     assert r == pytest.approx(0.952090, abs=5e-7)
     assert result.evidence["mean_correlation"][0] == pytest.approx(r, abs=1e-12)
     assert result.evidence["reliability"][0] == pytest.approx(0.975457, abs=5e-7)
-    assert result.scores[0] == pytest.approx(-0.975457, abs=5e-7) and not result.flags[0]
+    assert result.scores[0] == pytest.approx(-0.952090, abs=5e-7) and not result.flags[0]  # minus r
     assert result.evidence["splits_used"][0] == 1
     assert result.sentence_for(0) == (
         "random halves of the scales agree: mean r 0.95 over 1 half-splits of 4 scales (SD 0.00 "
@@ -63,7 +63,11 @@ def test_one_split_equals_even_odd_with_keying_and_gaps():
     theirs = EvenOdd(min_scales=4).screen(inst, matrix)
     assert np.array_equal(mine.states, theirs.states)
     assert (mine.states == State.ASSESSED).sum() > 300
-    np.testing.assert_allclose(mine.scores, theirs.scores, rtol=0, atol=1e-12)
+    # even_odd scores minus the stepped-up correlation, this index minus the mean correlation
+    # (the same order without the ties of clipping); the reliabilities agree
+    np.testing.assert_allclose(
+        mine.evidence["reliability"], -theirs.scores, rtol=0, atol=1e-12
+    )
     assessed = mine.states == State.ASSESSED
     np.testing.assert_allclose(
         mine.evidence["mean_correlation"][assessed], theirs.evidence["correlation"][assessed],
@@ -108,7 +112,8 @@ def test_every_split_correlation_equals_numpy_corrcoef():
         mean = defined.mean()
         assert result.evidence["mean_correlation"][i] == pytest.approx(mean, abs=1e-12)
         expected = max(2 * mean / (1 + mean), -1.0) if mean > -1 else -1.0
-        assert result.scores[i] == pytest.approx(-expected, abs=1e-12)
+        assert result.evidence["reliability"][i] == pytest.approx(expected, abs=1e-12)
+        assert result.scores[i] == pytest.approx(-mean, abs=1e-12)
 
 
 def test_the_splits():

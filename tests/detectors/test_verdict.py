@@ -200,5 +200,5 @@ def test_few_originals_are_likely_careless_and_figures_for_the_readme(bfi_screen
     # REFERENCES.md [V abstract]); two independent kinds of evidence should be rarer than that.
     assert likely["original"] <= 0.05, likely["original"]
     assert table.loc[original, "careless_score"].between(0, 1).all()
-    assert set(screening.verdicts.families) == {"invariance", "inconsistency", "outlier", "effort"}
+    assert set(screening.verdicts.families) == {"invariance", "inconsistency", "misfit", "outlier", "effort"}
     assert State.ASSESSED == 0
