@@ -133,8 +133,9 @@ class VerdictPolicy(BaseModel):
         "family, its own included) makes the verdict 'likely_careless'.",
     )
     score_families: int = Field(
-        default=3, ge=1,
-        description="The careless score combines this many most surprising families.",
+        default=5, ge=1,
+        description="The careless score adds the surprise of this many most surprising "
+        "families (default: every careless family).",
     )
     review_rate: float = Field(
         default=0.05, gt=0, lt=0.5,

@@ -1,9 +1,11 @@
 """From many detectors' flags to one verdict and one ranking score per respondent.
 
 Multiple hurdles
-    Every detector belongs to a family of evidence (invariance, inconsistency, outlier, effort,
-    style). A respondent's verdict counts the families, among those the policy counts (all but
-    ``style`` by default), in which at least one detector raised a flag:
+    Every detector belongs to a family of evidence (invariance, inconsistency, misfit, outlier,
+    effort, style). A respondent's verdict counts the families, among those the policy counts
+    (all but ``style`` by default), in which at least one detector raised a flag; the cut-offs
+    of the calibrated indices are set so that the policy's ``review_rate`` of ordinary
+    respondents is flagged in all (``detectors.calibration``):
 
     - ``likely_careless``: at least ``likely_careless_from`` families (default 2), or a failed
       attention check together with any other counted flag (``failed_check_escalates``);
@@ -15,22 +17,29 @@ Multiple hurdles
     for a human decision, not a decision about a person.
 
 Careless score
-    A continuous score in [0, 1] that ranks respondents for review. Each detector's score is
-    put on a common scale by its mid-rank percentile within a reference sample,
-    ``p(s) = (#{reference < s} + #{reference <= s}) / (2 N)``; a family's percentile is the
-    highest of its detectors'. A percentile becomes a surprise, ``u = max(0, -ln(2 (1 - p)))``:
-    zero up to the median, then the log of how much rarer than an ordinary value it is (p = .99
-    gives 3.9). The combined value is the sum of the ``score_families`` largest family
-    surprises (default 2), and the careless score is that sum's own percentile in the
-    reference, so .97 means "more suspect than 97% of the reference sample".
+    A continuous score in [0, 1] that ranks respondents for review.
 
-    Why this shape: unremarkable indices add nothing (a plain average would let them dilute a
-    strong signal); one very strong family still ranks a respondent high; agreement of two
-    families ranks higher still, as the multiple-hurdles advice wants; and rank-based scaling
-    makes indices with different units comparable. On the bfi data with planted careless
-    respondents this ranked every planted kind better than the mean or the maximum of the
-    family percentiles (README, "Checked against real data"). Percentiles are read from
-    ``RANK_POINTS`` quantiles of the reference's scores, stored with the reference sample.
+    1. Each counted detector's score becomes an upper-tail share: the share of the reference
+       sample's respondents that no family flags (``detectors.calibration``) scoring at or
+       above it, read from ``RANK_POINTS`` quantiles stored with the reference. A fixed
+       rule's score counts only once the rule flags (one skipped item is no evidence).
+    2. A family's evidence is the geometric mean of its smallest share and of the geometric
+       mean of all its shares: one loud index still counts, and several quiet ones that
+       agree add up (random answering lowers every consistency and misfit index a little).
+       That evidence is ranked among the reference's own, so a family of six indices is not
+       six chances to look extreme (the min-p adjustment of Westfall & Young 1993).
+    3. The surprise of a family is ``-ln`` of its ranked evidence (about 1 on average for an
+       ordinary respondent, 4.6 at 1 in 100); the combined value adds the ``score_families``
+       largest (by default all counted families, Fisher's (1925) way of combining
+       independent evidence), and the careless score is that sum's percentile in the whole
+       reference: .97 means "more suspect than 97% of the reference sample".
+
+    Why this shape, measured on the bfi answers with every careless kind of
+    ``detectors.planting`` planted (``tests/benchmarks/bench_judgement.py``): ranking the
+    detectors' tails among unflagged respondents lets a kind that fills an index's tail still
+    rank above it; counting rules only when they flag removed the noise of one skipped item;
+    the min/mean family evidence and the sum over all families ranked the random kinds better
+    than the maximum or the sum of the two largest, without losing the loud kinds.
 
 References
 ----------
@@ -39,6 +48,11 @@ Journal of Experimental Social Psychology, 66, 4-19.
 
 Meade, A. W., & Craig, S. B. (2012). Identifying careless responses in survey data.
 Psychological Methods, 17(3), 437-455.
+
+Fisher, R. A. (1925). Statistical methods for research workers. Edinburgh: Oliver and Boyd.
+
+Westfall, P. H., & Young, S. S. (1993). Resampling-based multiple testing: Examples and
+methods for p-value adjustment. New York: Wiley.
 """
 
 from __future__ import annotations
@@ -50,6 +64,7 @@ from typing import Any
 import numpy as np
 
 from ._base import DetectorResult, State
+from ._registry import REGISTRY
 from .instrument import VerdictPolicy
 
 __all__ = [
@@ -69,7 +84,7 @@ RANKS_KEY = "careless_score"
 RANK_POINTS = 1001
 #: Key of the combined value's table among the percentile tables.
 COMBINED = "(combined)"
-#: Prefix of a family's table of smallest tail shares among the percentile tables.
+#: Prefix of a family's table of family evidence shares among the percentile tables.
 FAMILY_PREFIX = "(family) "
 #: The attention-check detector whose failure escalates the verdict.
 ATTENTION = "attention_checks"
@@ -89,7 +104,7 @@ def rank_tables(
     unflagged: np.ndarray | None = None,
 ) -> dict[str, list[float]]:
     """Quantiles (JSON-ready) read from a reference sample: of each counted detector's
-    assessed scores, under ``FAMILY_PREFIX + family`` of each family's smallest tail share,
+    assessed scores, under ``FAMILY_PREFIX + family`` of each family's evidence share,
     and under ``COMBINED`` of the combined value, so that the careless score itself is a
     percentile of the reference. Detectors that assessed nobody get no table.
 
@@ -107,7 +122,7 @@ def rank_tables(
         table = _quantiles(result.scores[keep_all & (result.states == State.ASSESSED)])
         if table is not None:
             tables[name] = table
-    for family, smallest in _smallest_shares(policy, results, tables, n).items():
+    for family, smallest in _family_shares(policy, results, tables, n).items():
         table = _quantiles(smallest[keep_all])
         if table is not None:
             tables[FAMILY_PREFIX + family] = table
@@ -187,21 +202,40 @@ def assess(
     return Verdicts(verdict, careless, families, family_flags)
 
 
-def _smallest_shares(
+def _family_shares(
     policy: VerdictPolicy,
     results: Mapping[str, DetectorResult | None],
     ranks: Mapping[str, list[float]],
     n: int,
 ) -> dict[str, np.ndarray]:
-    """Per counted family, each respondent's smallest upper-tail share among its detectors
-    (the share of the reference scoring at or above the respondent); NaN where none assessed."""
+    """Per counted family, each respondent's evidence as a share (small = rare): the geometric
+    mean of the smallest upper-tail share among the family's detectors (the share of the
+    reference scoring at or above the respondent) and of the geometric mean of all of them.
+    Half the strongest index and half their average: one loud index still counts, and several
+    quiet ones that agree (as random answering makes them) add up. NaN where none assessed.
+
+    A fixed rule's score below its cut-off is no evidence (one skipped item, one grid answered
+    alike): its share is 1 until the rule flags."""
     out: dict[str, np.ndarray] = {}
+    logs: dict[str, list[np.ndarray]] = {}
     for name, result in results.items():
         if result is None or result.family not in policy.families or name not in ranks:
             continue
         share = 1.0 - _percentiles(result.scores, ranks[name])
-        family = result.family
-        out[family] = share if family not in out else np.fmin(out[family], share)
+        if REGISTRY.get(name) is not None and REGISTRY[name].calibration == "fixed":
+            # a rule's score below its cut-off is no evidence (one skipped item, one grid
+            # answered alike): it counts only once the rule flags
+            share = np.where(result.flags, share, np.where(np.isnan(share), np.nan, 1.0))
+        logs.setdefault(result.family, []).append(
+            np.log(np.maximum(share, 1.0 / (2 * RANK_POINTS)))
+        )
+    for family, values in logs.items():
+        stack = np.vstack(values)
+        present = ~np.isnan(stack)
+        some = present.any(axis=0)
+        smallest = np.where(present, stack, np.inf).min(axis=0)
+        mean = np.where(present, stack, 0.0).sum(axis=0) / np.maximum(present.sum(axis=0), 1)
+        out[family] = np.where(some, np.exp(0.5 * smallest + 0.5 * mean), np.nan)
     return out
 
 
@@ -211,14 +245,11 @@ def _combine(
     ranks: Mapping[str, list[float]],
     n: int,
 ) -> np.ndarray:
-    """Sum of the ``score_families`` largest family surprises.
-
-    A family's evidence is its detectors' smallest upper-tail share, itself ranked among the
-    reference's (so a family of five indices is not five chances to look extreme: the min-p
-    adjustment of Westfall & Young 1993); its surprise is ``-ln`` of that adjusted share."""
+    """Sum of the ``score_families`` largest family surprises: ``-ln`` of each family's
+    evidence share (:func:`_family_shares`) ranked among the reference's."""
     families = tuple(policy.families)
     adjusted = np.full((n, len(families)), np.nan)
-    for family, smallest in _smallest_shares(policy, results, ranks, n).items():
+    for family, smallest in _family_shares(policy, results, ranks, n).items():
         table = ranks.get(FAMILY_PREFIX + family)
         if table is None:
             continue
