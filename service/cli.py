@@ -154,7 +154,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="heedful",
         description="Screen survey responses for careless answering and response styles.",
     )
-    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    parser.set_defaults(func=help_of(parser))
 
     p = commands.add_parser("lint", help="report design problems of an instrument that limit screening")
     p.add_argument("instrument", help="instrument definition (JSON)")
@@ -194,6 +195,16 @@ def build_parser() -> argparse.ArgumentParser:
 
         service_commands.register(commands)
     return parser
+
+
+def help_of(parser: argparse.ArgumentParser) -> Any:
+    """What a command group does when no command is given: list the commands (exit 2)."""
+
+    def show(_args: argparse.Namespace) -> int:
+        sys.stdout.write(parser.format_help())
+        return EXIT_BAD_INPUT
+
+    return show
 
 
 def main(argv: Sequence[str] | None = None) -> int:
