@@ -245,11 +245,30 @@ def cmd_survey_show(args: argparse.Namespace) -> int:
             "versions": [v.number for v in versions],
             "respondents": store.count_respondents(session, survey.id),
             "reference_id": survey.current_reference_id,
+            "verdict_in_replies": survey.verdict_in_replies,
             "webhook_secret": survey.webhook_secret,
             "instrument": current.document,
         }
     database.dispose()
     print(json.dumps(document, indent=2))
+    return EXIT_OK
+
+
+def cmd_survey_set(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    try:
+        with database.write() as session:
+            survey = store.get_survey(session, args.survey)
+            if survey is None:
+                raise unknown_survey(args, args.survey)
+            if args.verdict_in_replies is not None:
+                survey.verdict_in_replies = args.verdict_in_replies == "yes"
+            state = "carry" if survey.verdict_in_replies else "leave out"
+    finally:
+        database.dispose()
+    print(f"survey {args.survey!r}: ingest replies {state} the verdict and careless score")
     return EXIT_OK
 
 
@@ -438,6 +457,15 @@ def register(subparsers: Any) -> None:
     q.add_argument("survey")
     _add_database(q)
     q.set_defaults(func=_guard(cmd_survey_show))
+    q = survey.add_parser("set", help="change a survey's settings")
+    q.add_argument("survey")
+    q.add_argument(
+        "--verdict-in-replies", choices=["yes", "no"],
+        help="whether replies to posted responses carry the verdict and careless score "
+        "(no: only flags, for platforms that should not act on them)",
+    )
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_survey_set))
 
     p = subparsers.add_parser(
         "rescreen", help="re-estimate the reference sample and re-score a survey's respondents"
