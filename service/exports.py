@@ -30,8 +30,8 @@ integer codes with value labels (codes in the order of ``models.Verdict`` and
 from __future__ import annotations
 
 import csv
-import datetime as dt
 import dataclasses
+import datetime as dt
 import io
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
