@@ -223,3 +223,9 @@ def test_screen_json_carries_the_note(tmp_path, capsys):
     document = json.loads(out.read_text())
     assert "not a verdict on a person" in document["note"]
     assert len(document["respondents"]) == 30
+
+
+def test_the_parser_lists_the_formats_the_writer_knows():
+    from service import cli, files
+
+    assert cli.OUTPUT_FORMATS == files.OUTPUT_FORMATS
