@@ -56,6 +56,8 @@ def test_runs_end_to_end_on_every_respondent(screened):
     assert summary["detectors"]["mahalanobis"]["assessed"] > 3000
 
 
+#: A regression floor measured on this code's own output: measured 72% (random) and 100% (one answer,
+#: agreeing with everything), floors set below.
 @pytest.mark.parametrize("kind, floor", [("random", 0.65), ("one_answer", 0.95), ("agree_all", 0.9)])
 def test_planted_respondents_are_flagged_at_high_rates(screened, kind, floor):
     _, table = screened
@@ -68,18 +70,7 @@ def test_original_respondents_flagged_modestly(screened):
     original = table["kind"] == "original"
     rate = careless_flagged(table)[original].mean()
     # Careless responding is often around 10-12% in long online surveys (Meade & Craig 2012,
-    # REFERENCES.md [V abstract]); a screen flagging far more of a real sample is too eager.
+    # Psychological Methods 17:437-455, checked in the abstract); a screen flagging far more
+    # of a real sample is too eager.
     assert rate <= 0.12, rate
 
-
-def test_rates_for_the_readme(screened, capsys):
-    _, table = screened
-    flagged = careless_flagged(table)
-    with capsys.disabled():
-        rates = flagged.groupby(table["kind"]).mean().round(3).to_dict()
-        per_detector = {
-            name: table.loc[table["kind"] == "original", f"{name}_flag"].fillna(0).mean().round(4)
-            for name in ["acquiescence", "extreme_style", "straightlining", "long_string", "mahalanobis"]
-        }
-        print(f"\nbfi flagged by a carelessness detector: {rates}; originals per detector: {per_detector}")
-    assert set(rates) == {"original", "random", "one_answer", "agree_all"}
