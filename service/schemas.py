@@ -77,7 +77,7 @@ class ResponseIn(BaseModel):
             "examples": [
                 {
                     "respondent_id": "v0001",
-                    "answers": {"be01": 4, "be02": 2, "be03": None},
+                    "answers": {"be01": 4, "be02": 2},
                     "submitted_at": "2027-05-04T09:30:00Z",
                     "duration_seconds": 412,
                     "meta": {"channel": "email"},

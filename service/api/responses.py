@@ -61,15 +61,16 @@ _FIELDS = set(ResponseIn.model_fields)
                     },
                     "examples": {
                         "one": {
-                            "summary": "One respondent",
+                            "summary": "One respondent, every item answered",
                             "value": ResponseIn.model_config["json_schema_extra"]["examples"][0],
                         },
                         "batch": {
-                            "summary": "A batch",
+                            "summary": "A batch: an ordinary response, then one agreeing with "
+                            "an item and its opposite",
                             "value": {
                                 "responses": [
-                                    {"respondent_id": "v0002", "answers": {"be01": 5, "be02": 1}},
-                                    {"respondent_id": "v0003", "answers": {"be01": 3, "be02": 3}},
+                                    {"respondent_id": "v0002", "answers": {"be01": 4, "be02": 1}},
+                                    {"respondent_id": "v0003", "answers": {"be01": 5, "be02": 5}},
                                 ]
                             },
                         },
