@@ -4,13 +4,15 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run screen-demo test lint bench openapi clean
+.PHONY: venv run screen-demo test lint bench openapi clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
+
+venv: $(STAMP)
 
 run: $(STAMP)
 	$(BIN)/python -m service.demo_server
@@ -33,4 +35,4 @@ openapi: $(STAMP)
 	$(BIN)/heedful openapi --out openapi/openapi.json
 
 clean:
-	rm -rf $(VENV) demo .pytest_cache
+	rm -rf $(VENV) demo nightly .pytest_cache

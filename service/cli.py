@@ -11,17 +11,11 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
-from detectors import (
-    HeedfulError,
-    lint,
-    load_instrument,
-    matrix_from_frame,
-    screen,
-)
-
-from .files import OUTPUT_FORMATS, format_from_path, read_table, write_atomic, write_screening
-
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
+#: ``files.OUTPUT_FORMATS``, repeated so that building the parser imports neither the engine
+#: nor pandas: commands that only touch the database start in a fraction of the time (a test
+#: keeps the two equal).
+OUTPUT_FORMATS = ("csv", "json", "parquet")
 #: Show progress only for runs long enough to notice, and only in a terminal.
 PROGRESS_FROM_RESPONDENTS = 50_000
 
@@ -44,8 +38,15 @@ def _parse_settings(pairs: Sequence[str]) -> dict[str, dict[str, Any]]:
     return out
 
 
-def _print_problems(error: HeedfulError, stream: TextIO) -> None:
+def _print_problems(error: Exception, stream: TextIO) -> None:
     print(f"error: {error}", file=stream)
+
+
+def _library_error(error: Exception) -> bool:
+    """Whether ``error`` is one of the engine's own (a bad instrument, bad responses, a bad
+    setting); the engine is imported only by commands that use it."""
+    errors = sys.modules.get("detectors.errors")
+    return errors is not None and isinstance(error, errors.HeedfulError)
 
 
 # lint -------------------------------------------------------------------------------------------
@@ -55,6 +56,10 @@ def _sample_matrix(args: argparse.Namespace, instrument: Any) -> Any:
     """The ``--sample`` file as a response matrix, or None without one."""
     if args.sample is None:
         return None
+    from detectors import matrix_from_frame
+
+    from .files import read_table
+
     frame = read_table(args.sample, id_column=args.id_column)
     return matrix_from_frame(
         instrument, frame, id_column=args.id_column, duration_column=args.duration_column
@@ -86,6 +91,7 @@ def false_alarm_lines(rates: dict[str, Any]) -> list[str]:
 
 
 def cmd_lint(args: argparse.Namespace) -> int:
+    from detectors import lint, load_instrument
     from detectors.planting import false_alarm_rates
 
     instrument = load_instrument(args.instrument)
@@ -133,6 +139,10 @@ def _summary_lines(summary: dict[str, Any], n_rejected: int) -> list[str]:
 
 
 def cmd_screen(args: argparse.Namespace) -> int:
+    from detectors import load_instrument, matrix_from_frame, screen
+
+    from .files import format_from_path, read_table, write_atomic, write_screening
+
     overrides = _parse_settings(args.set or [])
     instrument = load_instrument(args.instrument)
     names = [n.strip() for n in args.only.split(",")] if args.only else None
@@ -234,6 +244,7 @@ def drill_lines(result: dict[str, Any]) -> list[str]:
 
 
 def cmd_drill(args: argparse.Namespace) -> int:
+    from detectors import load_instrument
     from detectors.planting import drill_summary
 
     instrument = load_instrument(args.instrument)
@@ -265,7 +276,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="heedful",
         description="Screen survey responses for careless answering and response styles.",
     )
-    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    parser.set_defaults(func=help_of(parser))
 
     p = commands.add_parser("lint", help="report design problems of an instrument that limit screening")
     p.add_argument("instrument", help="instrument definition (JSON)")
@@ -332,6 +344,16 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def help_of(parser: argparse.ArgumentParser) -> Any:
+    """What a command group does when no command is given: list the commands (exit 2)."""
+
+    def show(_args: argparse.Namespace) -> int:
+        sys.stdout.write(parser.format_help())
+        return EXIT_BAD_INPUT
+
+    return show
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -342,11 +364,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except argparse.ArgumentTypeError as error:
         print(f"error: {error}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    except HeedfulError as error:
-        _print_problems(error, sys.stderr)
-        return EXIT_BAD_INPUT
     except KeyError as error:  # unknown detector name from --only or --set
         print(f"error: {error.args[0]}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except Exception as error:
+        if not _library_error(error):
+            raise
+        _print_problems(error, sys.stderr)
         return EXIT_BAD_INPUT
 
 

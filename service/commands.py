@@ -16,7 +16,7 @@ from pydantic import ValidationError
 
 from .settings import Settings
 
-__all__ = ["register", "settings_from"]
+__all__ = ["register", "settings_from", "CommandFailed", "unknown_survey"]
 
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 #: Exit code after Ctrl-C (128 + SIGINT, as shells report it).
@@ -32,11 +32,40 @@ def settings_from(args: argparse.Namespace, **overrides: Any) -> Settings:
     return Settings(**values)
 
 
-def _database(args: argparse.Namespace):
-    from .database import Database
-    from .db import make_engine, upgrade
+class CommandFailed(Exception):
+    """A command cannot go on; the message says why (exit code 2)."""
 
-    engine = make_engine(settings_from(args).database_url)
+
+def database_named(args: argparse.Namespace) -> str:
+    """The database a command reads, as messages name it."""
+    from .db import describe_url
+
+    return describe_url(settings_from(args).database_url)
+
+
+def unknown_survey(args: argparse.Namespace, survey: str) -> CommandFailed:
+    return CommandFailed(
+        f"no survey {survey!r} is registered in the database {database_named(args)}; "
+        "`heedful survey list` shows the registered ones, --database URL names another database"
+    )
+
+
+def _database(args: argparse.Namespace, *, create: bool = False):
+    """The database of ``--database`` (else HEEDFUL_DATABASE_URL, else ./heedful.db), at the
+    newest schema. Commands that only read or change stored surveys refuse a SQLite file that
+    is not there instead of creating an empty one."""
+    from .database import Database
+    from .db import make_engine, sqlite_path, upgrade
+
+    url = settings_from(args).database_url
+    path = sqlite_path(url)
+    if not create and path is not None and not path.exists():
+        raise CommandFailed(
+            f"no database at {path} (database URL {url}): name the database with --database "
+            "URL or HEEDFUL_DATABASE_URL (the demo's is sqlite:///demo/heedful.db), or create "
+            "one with `heedful db upgrade`"
+        )
+    engine = make_engine(url)
     upgrade(engine)
     return Database(engine)
 
@@ -83,7 +112,7 @@ def cmd_db_upgrade(args: argparse.Namespace) -> int:
 
     engine = make_engine(settings_from(args).database_url)
     upgrade(engine)
-    print(f"database schema at revision {current_revision(engine)}")
+    print(f"database {database_named(args)}: schema at revision {current_revision(engine)}")
     engine.dispose()
     return EXIT_OK
 
@@ -97,7 +126,7 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     from . import store
     from .models import Role
 
-    database = _database(args)
+    database = _database(args, create=True)
     try:
         with database.write() as session:
             token = store.create_key(session, args.name, Role(args.role))
@@ -169,7 +198,10 @@ def cmd_survey_register(args: argparse.Namespace) -> int:
         return _error(f"no such file: {path}")
     except json.JSONDecodeError as error:
         return _error(f"{path} is not valid JSON (line {error.lineno}): {error.msg}")
-    database = _database(args)
+    from detectors import parse_instrument
+
+    parse_instrument(document)  # an invalid document fails before any database is touched
+    database = _database(args, create=True)
     try:
         reply = register_document(database, document)
     finally:
@@ -203,7 +235,7 @@ def cmd_survey_show(args: argparse.Namespace) -> int:
         survey = store.get_survey(session, args.survey)
         if survey is None:
             database.dispose()
-            return _error(f"no survey {args.survey!r} is registered")
+            raise unknown_survey(args, args.survey)
         versions = store.versions_of(session, survey.id)
         current = next(v for v in versions if v.id == survey.current_version_id)
         document = {
@@ -213,11 +245,30 @@ def cmd_survey_show(args: argparse.Namespace) -> int:
             "versions": [v.number for v in versions],
             "respondents": store.count_respondents(session, survey.id),
             "reference_id": survey.current_reference_id,
+            "verdict_in_replies": survey.verdict_in_replies,
             "webhook_secret": survey.webhook_secret,
             "instrument": current.document,
         }
     database.dispose()
     print(json.dumps(document, indent=2))
+    return EXIT_OK
+
+
+def cmd_survey_set(args: argparse.Namespace) -> int:
+    from . import store
+
+    database = _database(args)
+    try:
+        with database.write() as session:
+            survey = store.get_survey(session, args.survey)
+            if survey is None:
+                raise unknown_survey(args, args.survey)
+            if args.verdict_in_replies is not None:
+                survey.verdict_in_replies = args.verdict_in_replies == "yes"
+            state = "carry" if survey.verdict_in_replies else "leave out"
+    finally:
+        database.dispose()
+    print(f"survey {args.survey!r}: ingest replies {state} the verdict and careless score")
     return EXIT_OK
 
 
@@ -230,7 +281,7 @@ def cmd_rescreen(args: argparse.Namespace) -> int:
         with database.write() as session:
             survey = store.get_survey(session, args.survey)
             if survey is None:
-                return _error(f"no survey {args.survey!r} is registered")
+                raise unknown_survey(args, args.survey)
             reply = jobs.rescreen(session, survey, settings)
     finally:
         database.dispose()
@@ -246,13 +297,21 @@ def cmd_rescreen(args: argparse.Namespace) -> int:
 
 
 def cmd_nightly(args: argparse.Namespace) -> int:
-    from .nightly import DEFAULT_WITHOUT, Progress, run_nightly
+    from .nightly import DEFAULT_WITHOUT, WITHOUT_FLAGGED_CAUTION, Progress, run_nightly
 
-    settings = settings_from(args)
-    database = _database(args)
     without = DEFAULT_WITHOUT if args.without is None else tuple(
         w for w in args.without if w != "none"
     )
+    if "flagged" in without:
+        if not args.confirm_without_flagged:
+            raise CommandFailed(
+                "--without flagged leaves respondents out on the screening's evidence alone, "
+                "unattended; give --confirm-without-flagged as well if that is really meant "
+                "(review and export --without excluded is the safer way)"
+            )
+        print(f"warning: {WITHOUT_FLAGGED_CAUTION}", file=sys.stderr, flush=True)
+    settings = settings_from(args)
+    database = _database(args)
 
     def report(run: Any) -> None:
         print(run.line(), file=sys.stderr if run.failed else sys.stdout, flush=True)
@@ -287,7 +346,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         with database.read() as session:
             survey = store.get_survey(session, args.survey)
             if survey is None:
-                return _error(f"no survey {args.survey!r} is registered")
+                raise unknown_survey(args, args.survey)
             text = build_report(session, survey)
     finally:
         database.dispose()
@@ -307,16 +366,43 @@ def cmd_openapi(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _new_sqlite_file(args: argparse.Namespace) -> Path | None:
+    """The SQLite file this command would create, when it does not exist yet."""
+    from .db import sqlite_path
+
+    try:
+        path = sqlite_path(settings_from(args).database_url)
+    except ValidationError:
+        return None
+    return path if path is not None and not path.exists() else None
+
+
+def _remove_database_files(path: Path) -> None:
+    for suffix in ("", "-wal", "-shm", "-journal"):
+        Path(f"{path}{suffix}").unlink(missing_ok=True)
+
+
 def _guard(func: Any) -> Any:
-    """Bad settings (e.g. an unsupported database URL) are bad input: exit code 2."""
+    """Bad settings (e.g. an unsupported database URL) are bad input: exit code 2. A command
+    that fails leaves no database file behind that it created."""
 
     def run(args: argparse.Namespace) -> int:
+        fresh = _new_sqlite_file(args) if hasattr(args, "database") else None
+        code = EXIT_FAILED
         try:
-            return func(args)
+            code = func(args)
+            return code
         except ValidationError as error:
             first = error.errors()[0]
             where = ".".join(str(p) for p in first["loc"])
-            return _error(f"invalid setting {where}: {first['msg']}")
+            code = _error(f"invalid setting {where}: {first['msg']}")
+            return code
+        except CommandFailed as error:
+            code = _error(str(error))
+            return code
+        finally:
+            if fresh is not None and code != EXIT_OK:
+                _remove_database_files(fresh)
 
     return run
 
@@ -326,6 +412,7 @@ def _guard(func: Any) -> Any:
 
 def register(subparsers: Any) -> None:
     """Add the service's subcommands to ``heedful``'s argument parser."""
+    from .cli import help_of
     p = subparsers.add_parser("serve", help="run the screening web service")
     p.add_argument("--host", help="address to listen on (default: HEEDFUL_HOST, else 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default: HEEDFUL_PORT, else 8000)")
@@ -334,13 +421,15 @@ def register(subparsers: Any) -> None:
     p.set_defaults(func=_guard(cmd_serve))
 
     p = subparsers.add_parser("db", help="manage the service's database")
-    db = p.add_subparsers(dest="db_command", required=True, metavar="ACTION")
+    db = p.add_subparsers(dest="db_command", metavar="ACTION")
+    p.set_defaults(func=help_of(p))
     q = db.add_parser("upgrade", help="create or upgrade the schema (Alembic migrations)")
     _add_database(q)
     q.set_defaults(func=_guard(cmd_db_upgrade))
 
     p = subparsers.add_parser("keys", help="manage API keys")
-    keys = p.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
+    keys = p.add_subparsers(dest="keys_command", metavar="ACTION")
+    p.set_defaults(func=help_of(p))
     q = keys.add_parser("create", help="create a key and print its token once")
     q.add_argument("--role", required=True, choices=["ingest", "analyst", "admin"])
     q.add_argument("--name", required=True, help="unique name, recorded with reviews")
@@ -355,7 +444,8 @@ def register(subparsers: Any) -> None:
     q.set_defaults(func=_guard(cmd_keys_revoke))
 
     p = subparsers.add_parser("survey", help="register and inspect surveys")
-    survey = p.add_subparsers(dest="survey_command", required=True, metavar="ACTION")
+    survey = p.add_subparsers(dest="survey_command", metavar="ACTION")
+    p.set_defaults(func=help_of(p))
     q = survey.add_parser("register", help="register an instrument (JSON file)")
     q.add_argument("file")
     _add_database(q)
@@ -367,6 +457,15 @@ def register(subparsers: Any) -> None:
     q.add_argument("survey")
     _add_database(q)
     q.set_defaults(func=_guard(cmd_survey_show))
+    q = survey.add_parser("set", help="change a survey's settings")
+    q.add_argument("survey")
+    q.add_argument(
+        "--verdict-in-replies", choices=["yes", "no"],
+        help="whether replies to posted responses carry the verdict and careless score "
+        "(no: only flags, for platforms that should not act on them)",
+    )
+    _add_database(q)
+    q.set_defaults(func=_guard(cmd_survey_set))
 
     p = subparsers.add_parser(
         "rescreen", help="re-estimate the reference sample and re-score a survey's respondents"
@@ -392,7 +491,12 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--without", action="append", choices=[*WITHOUT_CHOICES, "none"],
         help="leave these respondents out of the export (repeatable; default: excluded, i.e. "
-        "reviewed as exclude; 'none' keeps everyone)",
+        "reviewed as exclude; 'none' keeps everyone; 'flagged' needs --confirm-without-flagged)",
+    )
+    p.add_argument(
+        "--confirm-without-flagged", action="store_true",
+        help="confirm that --without flagged should drop flagged respondents without review "
+        "(a warning is printed and recorded in nightly.json)",
     )
     _add_database(p)
     p.set_defaults(func=_guard(cmd_nightly))

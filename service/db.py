@@ -11,6 +11,7 @@ PostgreSQL is used through psycopg 3. Callers own sessions and transactions::
 from __future__ import annotations
 
 import datetime as dt
+import os
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +24,8 @@ __all__ = [
     "Base",
     "UTCDateTime",
     "make_engine",
+    "sqlite_path",
+    "describe_url",
     "writer",
     "upgrade",
     "current_revision",
@@ -67,10 +70,44 @@ def _json_text(value: Any) -> str:
     return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
 
 
+def sqlite_path(url: str) -> Path | None:
+    """The file of a SQLite URL; None for other databases and in-memory SQLite."""
+    from sqlalchemy.engine import make_url
+
+    parsed = make_url(url)
+    if not parsed.drivername.startswith("sqlite"):
+        return None
+    database = parsed.database or ""
+    if database in ("", ":memory:") or database.startswith("file:"):
+        return None
+    return Path(database)
+
+
+def describe_url(url: str) -> str:
+    """The URL as an error message names it: the password hidden, a SQLite file's path shown."""
+    from sqlalchemy.engine import make_url
+
+    shown = make_url(url).render_as_string(hide_password=True)
+    path = sqlite_path(url)
+    return shown if path is None else f"{shown} (file {path})"
+
+
+def _create_private(path: Path) -> None:
+    """Create an empty SQLite file readable by its owner only: answers can be personal data.
+    SQLite gives its -wal and -shm files the database file's permissions."""
+    try:
+        os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
+    except FileExistsError:
+        pass
+
+
 def make_engine(url: str, **kwargs: Any) -> Engine:
-    """An engine for ``url`` with Heedful's connection settings."""
+    """An engine for ``url`` with Heedful's connection settings (a new SQLite file is 0600)."""
     kwargs.setdefault("json_serializer", _json_text)
     if url.startswith("sqlite"):
+        path = sqlite_path(url)
+        if path is not None and not path.exists() and path.parent.is_dir():
+            _create_private(path)
         engine = create_engine(
             url, connect_args={"check_same_thread": False, "timeout": SQLITE_BUSY_SECONDS}, **kwargs
         )

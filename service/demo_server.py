@@ -124,10 +124,14 @@ def main(argv: Sequence[str] | None = None) -> int:
                 f"  curl -sS -X POST {base}/v1/surveys/{survey}/responses \\",
                 f'    -H "Authorization: Bearer $(cat {args.out}/ingest.key)" \\',
                 "    -H 'Content-Type: application/json' "
-                f"--data-binary @{args.out}/responses.json | head -c 600; echo",
+                f"--data-binary @{args.out}/responses.json -o {args.out}/reply.json",
+                f"  head -c 700 {args.out}/reply.json; echo",
                 "Then list the flagged respondents:",
                 f"  curl -sS '{base}/v1/surveys/{survey}/respondents?flagged=true&limit=10' \\",
                 f'    -H "Authorization: Bearer $(cat {args.out}/analyst.key)"',
+                "",
+                f"The heedful commands read this database with --database "
+                f"{demo['database_url']}",
                 "",
                 "Flags are evidence for a reviewer's decision, not a verdict. Ctrl-C stops.",
                 "",

@@ -30,6 +30,7 @@ integer codes with value labels (codes in the order of ``models.Verdict`` and
 from __future__ import annotations
 
 import csv
+import dataclasses
 import datetime as dt
 import io
 from collections.abc import Iterable, Iterator, Sequence
@@ -97,6 +98,8 @@ CSV_DECIMALS = 6
 VERDICT_CODES = {verdict.value: code for code, verdict in enumerate(Verdict)}
 DECISION_CODES = {decision.value: code for code, decision in enumerate(Decision)}
 FLAG_LABELS = {0: "not flagged", 1: "flagged"}
+#: Display width of whole-number counts (version, flag count) in SPSS and Stata.
+COUNT_DIGITS = 8
 
 
 @dataclass(frozen=True)
@@ -104,13 +107,17 @@ class ExportColumn:
     """One column of the export: its name (CSV and Parquet), kind, label and value labels.
 
     ``kind`` is ``text``, ``int8`` (answers, flags), ``int16``, ``float``, ``time`` (UTC), or
-    ``code`` (text in CSV and Parquet, labelled integer codes in SPSS and Stata).
+    ``code`` (text in CSV and Parquet, labelled integer codes in SPSS and Stata). ``measure``
+    is the SPSS measurement level (``nominal``, ``ordinal``, ``scale``); ``digits`` the width
+    of a whole-number column's display format (``F1.0``, ``%1.0f``), None for other columns.
     """
 
     name: str
     kind: str
     label: str
     value_labels: dict[int, str] | None = None
+    measure: str = "scale"
+    digits: int | None = None
 
 
 @dataclass
@@ -185,8 +192,11 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
     detectors = list(REGISTRY)
 
     columns = [
-        ExportColumn("respondent_id", "text", "Respondent id"),
-        ExportColumn("version", "int16", "Survey version the respondent was screened with"),
+        ExportColumn("respondent_id", "text", "Respondent id", measure="nominal"),
+        ExportColumn(
+            "version", "int16", "Survey version the respondent was screened with",
+            measure="nominal", digits=COUNT_DIGITS,
+        ),
         ExportColumn("received_at", "time", "When the response was received (UTC)"),
         ExportColumn("submitted_at", "time", "When the respondent submitted, as sent (UTC)"),
         ExportColumn("duration_seconds", "float", "Seconds the respondent took, as sent"),
@@ -198,7 +208,12 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
         labels = (
             {fmt.lowest + k: text for k, text in enumerate(fmt.labels)} if fmt.labels else None
         )
-        columns.append(ExportColumn(item_id, "int8", item.text or item_id, labels))
+        digits = max(len(str(fmt.lowest)), len(str(fmt.lowest + fmt.points - 1)))
+        columns.append(
+            ExportColumn(
+                item_id, "int8", item.text or item_id, labels, measure="ordinal", digits=digits
+            )
+        )
     for name in detectors:
         summary = REGISTRY[name].summary
         columns.append(ExportColumn(f"{name}_score", "float", f"{name} score: {summary}"))
@@ -206,14 +221,19 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
             ExportColumn(
                 f"{name}_flag", "int8",
                 f"{name} flag (1 flagged, 0 not; empty when not assessed)", FLAG_LABELS,
+                measure="nominal", digits=1,
             )
         )
     columns += [
-        ExportColumn("flag_count", "int16", "Number of detectors that flagged the respondent"),
+        ExportColumn(
+            "flag_count", "int16", "Number of detectors that flagged the respondent",
+            digits=COUNT_DIGITS,
+        ),
         ExportColumn(
             "verdict", "code",
             "Screening verdict: evidence for a reviewer's decision, not a decision",
             {code: value for value, code in VERDICT_CODES.items()},
+            measure="nominal", digits=1,
         ),
         ExportColumn(
             "careless_score", "float", "Combined carelessness score, 0 to 1 (higher = more suspect)"
@@ -221,6 +241,7 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
         ExportColumn(
             "review_decision", "code", "Latest review decision (empty when not reviewed)",
             {code: value for value, code in DECISION_CODES.items()},
+            measure="nominal", digits=1,
         ),
     ]
     for column in scale_columns:
@@ -245,7 +266,7 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
         column = columns[position]
         if name != column.name:
             names[name] = column.name
-            columns[position] = ExportColumn(name, column.kind, column.label, column.value_labels)
+            columns[position] = dataclasses.replace(column, name=name)
     return ExportLayout(
         survey=survey, columns=columns, items=items, detectors=detectors,
         scale_columns=scale_columns, screeners=screeners, numbers=numbers, names=names,
@@ -524,6 +545,21 @@ def _statistical_layout(
     return names, variable_labels, value_labels, renamed
 
 
+def _display(layout: ExportLayout, names: list[str], fmt: str) -> tuple[dict, dict]:
+    """Display formats and measurement levels by written name: whole numbers without
+    decimals (an answer of 4 shows as 4, not 4.00), times as date-times; ordinal answers,
+    nominal codes and flags, scale scores and counts. Stata files hold no measurement level."""
+    formats: dict[str, str] = {}
+    measures: dict[str, str] = {}
+    for column, name in zip(layout.columns, names, strict=True):
+        if column.kind == "time":
+            formats[name] = TIME_FORMATS[fmt]
+        elif column.digits is not None:
+            formats[name] = f"F{column.digits}.0" if fmt == "sav" else f"%{column.digits}.0f"
+        measures[name] = column.measure
+    return formats, measures
+
+
 #: Seconds from the programs' date origins to 1970-01-01: SPSS counts seconds from 1582-10-14,
 #: Stata's %tc milliseconds from 1960-01-01.
 _SPSS_EPOCH = (dt.datetime(1970, 1, 1) - dt.datetime(1582, 10, 14)).total_seconds()
@@ -611,16 +647,12 @@ def write_export(
             del parts
         table = pd.DataFrame(data, copy=False)
         del data
-        times = {
-            name: TIME_FORMATS[fmt]
-            for column, name in zip(layout.columns, names, strict=True)
-            if column.kind == "time"
-        }
+        formats, measures = _display(layout, names, fmt)
         write_atomic(
             path,
             lambda p: write_labelled(
                 table, p, fmt, variable_labels=variable_labels, value_labels=value_labels,
-                formats=times, file_label=f"Heedful export of {survey.survey}",
+                formats=formats, measures=measures, file_label=f"Heedful export of {survey.survey}",
             ),
         )
     else:

@@ -41,7 +41,7 @@ def _format_from(out: str, given: str | None) -> str | None:
 
 def cmd_export(args: argparse.Namespace) -> int:
     from . import store
-    from .commands import _database
+    from .commands import _database, unknown_survey
     from .exports import write_export
 
     fmt = _format_from(args.out, args.format)
@@ -56,7 +56,7 @@ def cmd_export(args: argparse.Namespace) -> int:
         with database.read() as session:
             survey = store.get_survey(session, args.survey)
             if survey is None:
-                return _error(f"no survey {args.survey!r} is registered")
+                raise unknown_survey(args, args.survey)
             summary = write_export(session, survey, fmt, args.out, without=args.without or ())
     finally:
         database.dispose()
@@ -102,7 +102,7 @@ def _print_problems(problems: list[Any], stream: Any) -> None:
 def cmd_import(args: argparse.Namespace) -> int:
     from detectors import ResponseProblem
 
-    from .commands import _database, settings_from
+    from .commands import _database, database_named, settings_from
     from .files import read_table
     from .imports import IMPORT_BATCH, ImportRefused, import_table
 
@@ -119,7 +119,7 @@ def cmd_import(args: argparse.Namespace) -> int:
             partial=args.partial, batch_size=batch_size,
         )
     except LookupError as error:
-        return _error(str(error.args[0]))
+        return _error(f"{error.args[0]} (database {database_named(args)})")
     except ImportRefused as refused:
         print(
             f"error: nothing was stored: {len(refused.problems)} problem(s) in {args.file}",

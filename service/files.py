@@ -16,6 +16,12 @@ from detectors import ResponseDataError, ResponseProblem, Screening, State
 __all__ = ["read_table", "write_atomic", "screening_records", "write_screening", "OUTPUT_FORMATS"]
 
 OUTPUT_FORMATS = ("csv", "json", "parquet")
+#: Carried by every JSON screening document, which may travel far from the command line.
+SCREENING_NOTE = (
+    "Flags, verdicts and careless scores are evidence for a human reviewer's decision, not a "
+    "verdict on a person: read the evidence before excluding anyone or withholding an "
+    "incentive, and do not use them for automated decisions about people."
+)
 _READERS = {
     ".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet",
     ".sav": "labelled", ".zsav": "labelled", ".dta": "labelled",
@@ -128,7 +134,11 @@ def screening_records(screening: Screening) -> list[dict[str, Any]]:
 def write_screening(screening: Screening, out: str | Path, fmt: str) -> None:
     """Write the screening table as CSV or Parquet, or every detail as JSON."""
     if fmt == "json":
-        document = {"survey": screening.instrument.survey, "respondents": screening_records(screening)}
+        document = {
+            "survey": screening.instrument.survey,
+            "note": SCREENING_NOTE,
+            "respondents": screening_records(screening),
+        }
         write_atomic(out, lambda p: Path(p).write_text(json.dumps(document, indent=1), "utf-8"))
         return
     frame = screening.to_frame()

@@ -45,6 +45,8 @@ from .schemas import ResponseIn
 from .settings import Settings
 
 __all__ = [
+    "BodyFieldProblem",
+    "INGEST_CAUTION",
     "Screener",
     "screener_for",
     "reference_data",
@@ -202,6 +204,12 @@ class Checked:
     bad_positions: set[int] = field(default_factory=set)
 
 
+@dataclass(frozen=True)
+class BodyFieldProblem(ResponseProblem):
+    """A problem with a top-level field of a posted response (not an item of ``answers``),
+    so that its JSON pointer names the field itself."""
+
+
 def _schema_problems(
     raw_rows: Sequence[Any],
 ) -> tuple[dict[int, ResponseIn], list[ResponseProblem]]:
@@ -219,32 +227,64 @@ def _schema_problems(
             rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
             for entry in error.errors():
                 loc = [str(p) for p in entry["loc"]]
-                column = loc[-1] if loc and loc[0] == "answers" and len(loc) > 1 else (
-                    loc[0] if loc else None
-                )
-                problems.append(ResponseProblem(position + 1, rid, column, entry["msg"]))
+                if loc and loc[0] == "answers" and len(loc) > 1:
+                    problems.append(ResponseProblem(position + 1, rid, loc[1], entry["msg"]))
+                else:
+                    column = loc[0] if loc else None
+                    problems.append(BodyFieldProblem(position + 1, rid, column, entry["msg"]))
     return good, problems
+
+
+def _answer_problems(
+    screener: Screener, position: int, respondent_id: str | None, answers: dict[str, Any]
+) -> list[ResponseProblem]:
+    """Unknown items and answers out of range in one row's answers (its type errors are
+    reported by the schema), so that a row failing the schema still has every problem listed."""
+    index, instrument = screener.item_index, screener.instrument
+    problems = []
+    for item, value in answers.items():
+        if item not in index:
+            problems.append(
+                ResponseProblem(
+                    position + 1, respondent_id, item,
+                    f"unknown item: not in version {screener.number} of survey "
+                    f"{instrument.survey!r}",
+                )
+            )
+            continue
+        j = index[item]
+        if isinstance(value, int) and not isinstance(value, bool) and not (
+            instrument.lowest[j] <= value <= instrument.highest[j]
+        ):
+            problems.append(
+                ResponseProblem(
+                    position + 1, respondent_id, item,
+                    f"{value:g} is outside the answer range "
+                    f"{instrument.lowest[j]}..{instrument.highest[j]}",
+                )
+            )
+    return problems
 
 
 def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int) -> Checked:
     """Validate posted rows against the schema and the survey version's items; build the matrix
     of the valid ones. Problems name the row (1-based), the respondent and the item."""
     parsed, problems = _schema_problems(raw_rows)
-    index = screener.item_index
     instrument = screener.instrument
+    for position, raw in enumerate(raw_rows):
+        if position in parsed or not isinstance(raw, dict):
+            continue
+        answers = raw.get("answers")
+        if isinstance(answers, dict):
+            rid = raw.get("respondent_id")
+            rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
+            problems.extend(
+                _answer_problems(screener, position, rid, {str(k): v for k, v in answers.items()})
+            )
     seen: dict[str, int] = {}
     for position, row in parsed.items():
-        unknown = row.answers.keys() - index.keys()
-        for item in sorted(unknown):
-            problems.append(
-                ResponseProblem(
-                    position + 1,
-                    row.respondent_id,
-                    item,
-                    f"unknown item: not in version {screener.number} of survey "
-                    f"{instrument.survey!r}",
-                )
-            )
+        unknown = dict.fromkeys(sorted(row.answers.keys() - screener.item_index.keys()))
+        problems.extend(_answer_problems(screener, position, row.respondent_id, unknown))
         if row.meta is not None and max_meta_bytes >= 0:
             size = len(json.dumps(row.meta, separators=(",", ":")).encode("utf-8"))
             if size > max_meta_bytes:
@@ -786,19 +826,31 @@ def _store_group(
     store.insert_outcomes(session, outcome_rows(screened, pks_in_order, used_reference))
 
 
+#: Carried by every ingest reply: the survey platform reads it, and it is the component most
+#: likely to act on a reply without a person (cancel a complete, withhold an incentive).
+INGEST_CAUTION = (
+    "Flags, verdicts and careless scores are evidence for a human reviewer's decision, not a "
+    "verdict on a person. Do not cancel a complete, withhold an incentive or exclude anyone "
+    "automatically on this reply; have a person read the evidence and record a review."
+)
+
+
 def _reply(plan: _Plan, received: int) -> dict[str, Any]:
     results = []
+    with_verdict = plan.survey.verdict_in_replies
     for i in sorted(plan.outcome):
         status, summary, flags, waiting = plan.outcome[i]
-        results.append(
-            {
-                "respondent_id": plan.ids[i], "status": status,
-                "flag_count": summary["flag_count"], "flags": flags,
-                "verdict": summary["verdict"], "careless_score": summary["careless_score"],
-                "not_assessed": waiting,
-            }
-        )
+        result = {
+            "respondent_id": plan.ids[i], "status": status,
+            "flag_count": summary["flag_count"], "flags": flags,
+        }
+        if with_verdict:
+            result["verdict"] = summary["verdict"]
+            result["careless_score"] = summary["careless_score"]
+        result["not_assessed"] = waiting
+        results.append(result)
     return {
+        "caution": INGEST_CAUTION,
         "survey": plan.survey.survey,
         "version": plan.screener.number,
         "received": received,

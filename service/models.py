@@ -24,6 +24,7 @@ from sqlalchemy import (
     String,
     Text,
     UniqueConstraint,
+    true,
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
@@ -115,6 +116,9 @@ class Survey(Base):
     previous_secret_until: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
     #: Random key of the digests in the erasure audit lines.
     erasure_salt: Mapped[str] = mapped_column(String(64))
+    #: Whether ingest replies (read by the survey platform, which may act on them unattended)
+    #: carry each respondent's verdict and careless score; flags are always in them.
+    verdict_in_replies: Mapped[bool] = mapped_column(Boolean, default=True, server_default=true())
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
 
 

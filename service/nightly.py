@@ -68,6 +68,8 @@ __all__ = [
     "REFERENCE_REFRESH_SHARE",
     "DEFAULT_FORMAT",
     "DEFAULT_WITHOUT",
+    "NOTE",
+    "WITHOUT_FLAGGED_CAUTION",
     "SurveyRun",
     "Progress",
     "needs_new_reference",
@@ -87,6 +89,19 @@ NIGHTLY_CHUNK = 20_000
 DEFAULT_FORMAT = "sav"
 #: Left out of the nightly export by default: respondents a reviewer decided to exclude.
 DEFAULT_WITHOUT = ("excluded",)
+#: Written to every run record: what the files may and may not be used for.
+NOTE = (
+    "Flags, verdicts and careless scores are evidence for a human reviewer's decision, not a "
+    "verdict on a person."
+)
+#: Printed and recorded when a run leaves flagged respondents out of its export.
+WITHOUT_FLAGGED_CAUTION = (
+    "This export leaves out every respondent with a flag, on the screening's evidence alone and "
+    "without a person having read it. A strong opinion, a short scale or a badly translated "
+    "item raise flags too, and style flags are not carelessness. Review the flagged "
+    "respondents, record decisions, and export without the excluded instead; do not act on "
+    "this file's omissions about any person (exclusion, incentives) without review."
+)
 
 
 def _after_chunk(survey: str, done: int, total: int) -> None:
@@ -105,6 +120,9 @@ class SurveyRun:
     files: list[Path] = field(default_factory=list)
     error: str | None = None
     seconds: float = 0.0
+    without: tuple[str, ...] = ()
+    left_out: int = 0
+    cautions: list[str] = field(default_factory=list)
 
     @property
     def failed(self) -> bool:
@@ -141,6 +159,10 @@ class SurveyRun:
                 {**r, "created_at": r["created_at"].isoformat()} for r in self.references
             ],
             "files": [p.name for p in self.files],
+            "export_without": list(self.without),
+            "export_left_out": self.left_out,
+            "note": NOTE,
+            "cautions": list(self.cautions),
             "error": self.error,
             "seconds": round(self.seconds, 3),
         }
@@ -227,7 +249,9 @@ def nightly_survey(
 ) -> SurveyRun:
     """Run the nightly steps for one survey; raises on failure (``run_nightly`` catches)."""
     started = time.perf_counter()
-    run = SurveyRun(name)
+    run = SurveyRun(name, without=tuple(without))
+    if "flagged" in without:
+        run.cautions.append(WITHOUT_FLAGGED_CAUTION)
     now = utcnow()
     plans: list[_Plan] = []
     with database.read() as session:
@@ -313,7 +337,8 @@ def nightly_survey(
     with database.read() as session:
         survey = store.get_survey(session, name)
         assert survey is not None
-        exports.write_export(session, survey, fmt, export_path, without=without)
+        written = exports.write_export(session, survey, fmt, export_path, without=without)
+        run.left_out = written.left_out
         if progress is not None:
             progress.update(1)
         html = reports.build_report(session, survey)

@@ -21,6 +21,8 @@ __all__ = [
     "SurveySummaryRow",
     "SurveyList",
     "SurveyDetail",
+    "SurveySettingsIn",
+    "SurveySettingsOut",
     "VersionInfo",
     "ReferenceInfo",
     "SecretRotated",
@@ -75,7 +77,7 @@ class ResponseIn(BaseModel):
             "examples": [
                 {
                     "respondent_id": "v0001",
-                    "answers": {"be01": 4, "be02": 2, "be03": None},
+                    "answers": {"be01": 4, "be02": 2},
                     "submitted_at": "2027-05-04T09:30:00Z",
                     "duration_seconds": 412,
                     "meta": {"channel": "email"},
@@ -120,8 +122,16 @@ class RespondentOutcome(BaseModel):
     status: Literal["stored", "replaced", "duplicate"]
     flag_count: int
     flags: list[str] = Field(description="Detectors that raised a flag.")
-    verdict: VerdictField
-    careless_score: CarelessScoreField
+    verdict: VerdictField = Field(
+        default=None,
+        description="Left out when the survey's `verdict_in_replies` setting is off. "
+        "Evidence for a reviewer, not a decision about the person.",
+    )
+    careless_score: CarelessScoreField = Field(
+        default=None,
+        description="Left out when the survey's `verdict_in_replies` setting is off. "
+        "Orders a reviewer's work; not a decision about the person.",
+    )
     not_assessed: list[str] = Field(description="Detectors that could not judge this respondent.")
 
 
@@ -130,6 +140,10 @@ class IngestReply(BaseModel):
         json_schema_extra={
             "examples": [
                 {
+                    "caution": "Flags, verdicts and careless scores are evidence for a human "
+                    "reviewer's decision, not a verdict on a person. Do not cancel a complete, "
+                    "withhold an incentive or exclude anyone automatically on this reply; have a "
+                    "person read the evidence and record a review.",
                     "survey": "orchard-volunteers-2027",
                     "version": 1,
                     "received": 1,
@@ -154,6 +168,10 @@ class IngestReply(BaseModel):
         }
     )
 
+    caution: str = Field(
+        description="What the reply may be used for: evidence for a person's review, never an "
+        "automated decision about a respondent."
+    )
     survey: str
     version: int = Field(description="The survey version the respondents were screened with.")
     received: int
@@ -275,7 +293,32 @@ class SurveyDetail(SurveySummaryRow):
     versions: list[VersionInfo]
     reference: ReferenceInfo | None
     instrument: dict[str, Any]
+    verdict_in_replies: bool = Field(
+        default=True,
+        description="Whether ingest replies carry each respondent's verdict and careless score "
+        "(flags are always in them).",
+    )
     webhook_secret: str | None = Field(default=None, description="Only shown to admin keys.")
+
+
+class SurveySettingsIn(BaseModel):
+    """Settings of a survey that are not part of its instrument."""
+
+    model_config = ConfigDict(
+        extra="forbid", json_schema_extra={"examples": [{"verdict_in_replies": False}]}
+    )
+
+    verdict_in_replies: bool | None = Field(
+        default=None,
+        description="false leaves the verdict and careless score out of ingest replies, for "
+        "platforms that should not see them (they could be acted on without review); flags "
+        "stay in. Left out: unchanged.",
+    )
+
+
+class SurveySettingsOut(BaseModel):
+    survey: str
+    verdict_in_replies: bool
 
 
 class SecretRotated(BaseModel):
@@ -386,7 +429,14 @@ class ReviewIn(BaseModel):
     model_config = ConfigDict(
         extra="forbid",
         json_schema_extra={
-            "examples": [{"decision": "exclude", "note": "Same answer on every page."}]
+            "examples": [
+                {
+                    "decision": "exclude",
+                    "note": "Read the answers: the same answer down all six grids, 9 of 10 "
+                    "opposite pairs agreed with, and 33 items in 70 seconds. Three kinds of "
+                    "evidence agree.",
+                }
+            ]
         },
     )
 

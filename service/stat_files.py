@@ -137,12 +137,15 @@ def write_labelled(
     variable_labels: Mapping[str, str],
     value_labels: Mapping[str, Mapping[int, str]],
     formats: Mapping[str, str] | None = None,
+    measures: Mapping[str, str] | None = None,
     file_label: str = "",
 ) -> None:
     """Write ``frame`` (columns already named validly) as SPSS or Stata with labels.
 
     ``formats`` gives display formats by column (e.g. a date-time format for a column of the
-    program's date-time numbers). Labels are cut to the format's limits (:func:`fit_label`).
+    program's date-time numbers, ``F1.0`` for whole numbers); ``measures`` the SPSS
+    measurement level by column (Stata has none). Labels are cut to the format's limits
+    (:func:`fit_label`).
     SPSS files are written with the format's row compression (small whole numbers take one
     byte).
     """
@@ -161,6 +164,7 @@ def write_labelled(
             frame, str(path), file_label=fit_label(file_label, fmt, "file"),
             column_labels=column_labels, variable_value_labels=labels, row_compress=True,
             variable_format=dict(formats or {}) or None,
+            variable_measure=dict(measures or {}) or None,
         )
     elif fmt == "dta":
         pyreadstat.write_dta(

@@ -9,7 +9,14 @@ from fastapi import Request
 
 from ..problems import PROBLEM_JSON, Problem
 
-__all__ = ["read_json", "errors"]
+__all__ = ["read_json", "errors", "EVIDENCE_NOTE"]
+
+#: Said by every operation whose reply carries flags, verdicts or careless scores.
+EVIDENCE_NOTE = (
+    "Flags, verdicts and careless scores are evidence for a human decision, not a verdict on a "
+    "person: read the evidence and record a review before excluding anyone or withholding an "
+    "incentive, and do not act on them automatically."
+)
 
 _DESCRIPTIONS = {
     400: "Malformed JSON",

@@ -28,6 +28,10 @@ def _json_safe(value: Any) -> Any:
     "/v1/detectors",
     operation_id="listDetectors",
     summary="List the detectors with their description, reference and default settings",
+    description=(
+        "Every detector of the engine: what it measures, its family of evidence, the published "
+        "reference and its default settings (a survey's instrument can override them)."
+    ),
     response_model=DetectorList,
     responses=errors(401, 403),
 )

@@ -12,7 +12,13 @@ from .deps import DatabaseDep
 router = APIRouter(tags=["health"])
 
 
-@router.get("/healthz", operation_id="health", summary="The process is up", response_model=Health)
+@router.get(
+    "/healthz",
+    operation_id="health",
+    summary="The process is up",
+    description="Answers without a key as long as the process runs; says nothing about storage.",
+    response_model=Health,
+)
 def health() -> Health:
     return Health(status="ok")
 
@@ -21,6 +27,7 @@ def health() -> Health:
     "/readyz",
     operation_id="ready",
     summary="The database is reachable",
+    description="Answers without a key: 200 when the database answers a query, 503 otherwise.",
     response_model=Health,
     responses=errors(503),
 )

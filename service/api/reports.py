@@ -6,7 +6,7 @@ from fastapi import APIRouter
 from fastapi.responses import HTMLResponse
 
 from ..reports import build_report
-from .common import errors
+from .common import EVIDENCE_NOTE, errors
 from .deps import DatabaseDep, Reader
 from .surveys import survey_or_404
 
@@ -17,6 +17,11 @@ router = APIRouter(tags=["reports"])
     "/v1/surveys/{survey}/report",
     operation_id="getSurveyReport",
     summary="The survey's screening report as one self-contained HTML page",
+    description=(
+        "The screening report for the survey's analyst: key figures, design notes, each "
+        "detector's distribution and cut-off, overlapping flags, flags by day, answer patterns "
+        "and scale statistics with and without the flagged. " + EVIDENCE_NOTE
+    ),
     response_class=HTMLResponse,
     responses={
         200: {

@@ -26,7 +26,7 @@ from ..schemas import (
     ReviewOut,
     ScreeningHistoryEntry,
 )
-from .common import errors
+from .common import EVIDENCE_NOTE, errors
 from .deps import Admin, DatabaseDep, Reader, SettingsDep
 from .surveys import survey_or_404
 
@@ -60,6 +60,11 @@ def _wants_csv(request: Request) -> bool:
     "/v1/surveys/{survey}/respondents",
     operation_id="listRespondents",
     summary="Find respondents by flags, detector, review status and arrival time (paged)",
+    description=(
+        "A page of respondents with their flag count, flags, verdict, careless score and latest "
+        "review decision, filtered and sorted as asked; `next_cursor` leads to the next page. "
+        "Use it to find the respondents a person should look at first. " + EVIDENCE_NOTE
+    ),
     response_model=RespondentPage,
     responses={
         200: {
@@ -182,6 +187,11 @@ def _respondent_or_404(session, survey_id: int, survey: str, respondent: str):
     "/v1/surveys/{survey}/respondents/{respondent}",
     operation_id="getRespondent",
     summary="A respondent's answers, every detector's result with evidence, reviews and history",
+    description=(
+        "Everything a reviewer needs to decide about one respondent: the answers as received, "
+        "each detector's state, score, cut-off, evidence and a readable sentence, the reviews "
+        "so far, replaced answers and earlier screening results. " + EVIDENCE_NOTE
+    ),
     response_model=RespondentDetail,
     responses=errors(401, 403, 404),
 )
@@ -252,6 +262,14 @@ def get_respondent(
     "/v1/surveys/{survey}/respondents/{respondent}/review",
     operation_id="reviewRespondent",
     summary="Record a review decision (keep, exclude, undecided) with a note; append-only",
+    description=(
+        "Records a person's decision about a respondent after reading the evidence, with a note "
+        "saying why and the name of the key that recorded it. Reviews are never changed or "
+        "deleted (except by an erasure); the latest one is the respondent's "
+        "`review_decision`, which exports and filters use. Decide on the evidence as a whole: "
+        "a single flag, or flags of one kind, can come from a strong opinion or a badly "
+        "translated item."
+    ),
     response_model=ReviewOut,
     status_code=201,
     responses=errors(401, 403, 404, 422),
@@ -275,6 +293,11 @@ def review_respondent(
     "/v1/surveys/{survey}/respondents/{respondent}",
     operation_id="eraseRespondent",
     summary="Erase a respondent's answers, results and review notes (keeps an audit line)",
+    description=(
+        "Answers an erasure request: removes the respondent's answers, history, results and "
+        "reviews in one transaction and keeps only an audit line (when, by which key, and a "
+        "keyed digest of the respondent id). Copies outside the service are not touched."
+    ),
     status_code=204,
     responses=errors(401, 403, 404),
 )

@@ -36,7 +36,13 @@ _FIELDS = set(ResponseIn.model_fields)
         "`webhook-timestamp`, `webhook-signature`). The same respondent with the same answers "
         "is a duplicate (stored once); other answers under a stored respondent id are refused "
         "with 409 unless `replace=true`. A batch is all-or-nothing unless `partial=true`. "
-        "The reply comes after the data is committed."
+        "The reply comes after the data is committed.\n\n"
+        "**The reply is evidence for a person's review, not a decision.** It lists each "
+        "respondent's flags and, unless the survey's `verdict_in_replies` setting is off, the "
+        "verdict and careless score. A strong opinion, a short questionnaire or a badly "
+        "translated item can raise flags. Do not cancel a complete, withhold an incentive or "
+        "exclude anyone automatically on this reply; have a person read the evidence "
+        "(`getRespondent`) and record a review. The reply's `caution` field says so too."
     ),
     response_model=IngestReply,
     status_code=201,
@@ -55,15 +61,16 @@ _FIELDS = set(ResponseIn.model_fields)
                     },
                     "examples": {
                         "one": {
-                            "summary": "One respondent",
+                            "summary": "One respondent, every item answered",
                             "value": ResponseIn.model_config["json_schema_extra"]["examples"][0],
                         },
                         "batch": {
-                            "summary": "A batch",
+                            "summary": "A batch: an ordinary response, then one agreeing with "
+                            "an item and its opposite",
                             "value": {
                                 "responses": [
-                                    {"respondent_id": "v0002", "answers": {"be01": 5, "be02": 1}},
-                                    {"respondent_id": "v0003", "answers": {"be01": 3, "be02": 3}},
+                                    {"respondent_id": "v0002", "answers": {"be01": 4, "be02": 1}},
+                                    {"respondent_id": "v0003", "answers": {"be01": 5, "be02": 5}},
                                 ]
                             },
                         },
@@ -115,7 +122,7 @@ async def post_responses(
             kind="invalid-responses",
             errors=[
                 field_error(
-                    _pointer(batch, p.row, p.column), p.reason, row=p.row,
+                    _pointer(batch, p), p.reason, row=p.row,
                     respondent_id=p.respondent_id, item=p.column,
                 )
                 for p in error.problems
@@ -167,13 +174,15 @@ def _rows_of(document: Any, settings: Settings) -> tuple[list[Any], bool]:
     return rows, batch
 
 
-def _pointer(batch: bool, row: int | None, column: str | None) -> str:
+def _pointer(batch: bool, problem: Any) -> str:
+    row, column = problem.row, problem.column
     base = f"#/responses/{row - 1}" if batch and row is not None else "#"
     if column is None:
         return base
-    if column in _FIELDS:
-        return f"{base}/{column}"
-    return f"{base}/answers/{column}"
+    escaped = column.replace("~", "~0").replace("/", "~1")
+    if column in _FIELDS or isinstance(problem, jobs.BodyFieldProblem):
+        return f"{base}/{escaped}"
+    return f"{base}/answers/{escaped}"
 
 
 def _verify(found: Any, signature: tuple[Any, Any, Any], body: bytes, settings: Settings) -> None:

@@ -25,10 +25,12 @@ from ..schemas import (
     SurveyList,
     SurveyRegistered,
     SurveyReport,
+    SurveySettingsIn,
+    SurveySettingsOut,
     SurveySummaryRow,
     VersionInfo,
 )
-from .common import errors, read_json
+from .common import EVIDENCE_NOTE, errors, read_json
 from .deps import Admin, DatabaseDep, Reader, SettingsDep, authenticate
 
 router = APIRouter(tags=["surveys"])
@@ -56,6 +58,12 @@ def survey_or_404(session: Any, survey: str) -> Survey:
     "/v1/surveys",
     operation_id="registerSurvey",
     summary="Register an instrument (a changed one becomes a new version); returns lint warnings",
+    description=(
+        "Registers a survey's instrument document. The same document again changes nothing "
+        "(200); a changed one under the same survey id becomes a new version (201), and "
+        "respondents keep the version they were screened with. The reply lists design warnings "
+        "that limit screening and the survey's webhook secret."
+    ),
     response_model=SurveyRegistered,
     status_code=201,
     responses={200: {"description": "The same document was already registered"}}
@@ -112,6 +120,7 @@ def _register(database: Any, document: Any) -> SurveyRegistered:
     "/v1/surveys",
     operation_id="listSurveys",
     summary="List the registered surveys",
+    description="Every registered survey with its current version and number of respondents.",
     response_model=SurveyList,
     responses=errors(401, 403),
 )
@@ -145,6 +154,10 @@ def _reference_info(session: Any, survey: Survey, numbers: dict[int, int]) -> Re
 @router.get(
     "/v1/surveys/{survey}",
     operation_id="getSurvey",
+    description=(
+        "A survey's current instrument document, its versions, the reference sample in force "
+        "and its settings; the webhook secret is shown to admin keys only."
+    ),
     summary="A survey's current instrument, versions and reference sample "
     "(and webhook secret, for admin keys)",
     response_model=SurveyDetail,
@@ -166,7 +179,34 @@ def get_survey(survey: str, caller: Reader, database: DatabaseDep) -> SurveyDeta
             versions=[VersionInfo(number=v.number, created_at=v.created_at) for v in versions],
             reference=_reference_info(session, found, numbers),
             instrument=current.document,
+            verdict_in_replies=found.verdict_in_replies,
             webhook_secret=found.webhook_secret if caller.role is Role.ADMIN else None,
+        )
+
+
+@router.patch(
+    "/v1/surveys/{survey}",
+    operation_id="changeSurveySettings",
+    summary="Change a survey's settings (whether ingest replies carry verdict and careless score)",
+    description=(
+        "Settings that are not part of the instrument. `verdict_in_replies: false` leaves the "
+        "verdict and careless score out of the replies to posted responses: the survey platform "
+        "reads those replies, and a platform may act on them without a person (cancel a "
+        "complete, withhold an incentive). Flags stay in the reply; analysts still see "
+        "everything. Fields left out of the body are unchanged."
+    ),
+    response_model=SurveySettingsOut,
+    responses=errors(400, 401, 403, 404, 415, 422),
+)
+def change_survey_settings(
+    survey: str, body: SurveySettingsIn, caller: Admin, database: DatabaseDep
+) -> SurveySettingsOut:
+    with database.write() as session:
+        found = survey_or_404(session, survey)
+        if body.verdict_in_replies is not None:
+            found.verdict_in_replies = body.verdict_in_replies
+        return SurveySettingsOut(
+            survey=found.survey, verdict_in_replies=found.verdict_in_replies
         )
 
 
@@ -174,6 +214,10 @@ def get_survey(survey: str, caller: Reader, database: DatabaseDep) -> SurveyDeta
     "/v1/surveys/{survey}/webhook-secret",
     operation_id="rotateWebhookSecret",
     summary="Replace the survey's webhook secret (the old one verifies for a grace period)",
+    description=(
+        "A new webhook secret for the survey; the previous one keeps verifying signatures for "
+        "HEEDFUL_SECRET_GRACE_SECONDS so the platform can switch without losing posts."
+    ),
     response_model=SecretRotated,
     responses=errors(401, 403, 404),
 )
@@ -195,6 +239,11 @@ def rotate_webhook_secret(
     "/v1/surveys/{survey}/rescreen",
     operation_id="rescreenSurvey",
     summary="Re-estimate the reference sample from stored respondents and re-score them all",
+    description=(
+        "Estimates a reference sample per survey version from the stored respondents (once "
+        "there are HEEDFUL_REFERENCE_MIN_RESPONDENTS) and re-screens every stored respondent "
+        "against it; changed results keep the earlier ones in the screening history."
+    ),
     response_model=RescreenReply,
     responses=errors(401, 403, 404),
 )
@@ -210,6 +259,11 @@ def rescreen_survey(
     "/v1/surveys/{survey}/summary",
     operation_id="getSurveySummary",
     summary="Counts and flag rates per detector and per day of arrival",
+    description=(
+        "How many respondents each detector flagged, could not judge or does not apply to, and "
+        "the share flagged per day of arrival: a view of the survey, not of any person. "
+        + EVIDENCE_NOTE
+    ),
     response_model=SurveyReport,
     responses=errors(401, 403, 404),
 )

@@ -16,7 +16,8 @@ import time
 import numpy as np
 
 from detectors import REGISTRY, ResponseMatrix, build_detectors, fit_references, parse_instrument
-from detectors.screening import Screening
+from detectors.calibration import apply
+from detectors.screening import Screening, reference_calibration
 from detectors.verdict import RANKS_KEY
 
 
@@ -68,9 +69,13 @@ def main() -> None:
         results[name] = detector.screen(inst, matrix, reference.get(name))
         timings[name] = (time.perf_counter() - t1, int(results[name].flags.sum()))
     t1 = time.perf_counter()
+    calibration = reference_calibration(inst, detectors, reference)
+    results = apply(results, calibration, detectors)
     screening = Screening(inst, matrix.respondent_ids, results, ranks=reference[RANKS_KEY])
     verdicts = screening.verdicts
-    timings["(verdict and careless score)"] = (time.perf_counter() - t1, int((verdicts.verdict != "ok").sum()))
+    timings["(calibrated cut-offs, verdict and careless score)"] = (
+        time.perf_counter() - t1, int((verdicts.verdict != "ok").sum())
+    )
     total = time.perf_counter() - start
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"reference estimated once from {sample.n_respondents:,} respondents: {fit_seconds:.2f} s")

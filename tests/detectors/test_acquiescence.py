@@ -53,9 +53,10 @@ def pair_by_pair(inst, values):
         return answered, agreed / answered, disagreed / answered, deviation / (2 * answered)
 
 
-def test_reference_sheet_example_for_net_acquiescence():
-    # REFERENCES.md, response styles (Baumgartner & Steenkamp 2001) [C]: the answers
-    # 5,4,3,2,1,5,5,3,4,1 give NARS = mean - 3 = .3. Laid out as five opposite pairs (p1..p5 =
+def test_net_acquiescence_by_hand():
+    # Net acquiescence as the mean answer minus the midpoint (Baumgartner & Steenkamp 2001,
+    # J. Marketing Research 38:143-156; definition from memory). By hand: the answers
+    # 5,4,3,2,1,5,5,3,4,1 sum to 33, mean 3.3, NARS = 3.3 - 3 = .3. Laid out as five opposite pairs (p1..p5 =
     # 5,4,3,2,1; n1..n5 = 5,5,3,4,1) every item is in one pair, so the balanced set is all ten.
     # Hand-computed pairs: (5,5) and (4,5) agree on both sides, (1,1) disagrees on both.
     result = screen(paired_instrument(), [[5, 4, 3, 2, 1, 5, 5, 3, 4, 1]])

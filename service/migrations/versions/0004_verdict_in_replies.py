@@ -1,0 +1,30 @@
+"""A survey setting: whether ingest replies carry the verdict and careless score.
+
+Revision ID: 0004
+Revises: 0003
+Create Date: 2026-12-02
+"""
+
+from __future__ import annotations
+
+import sqlalchemy as sa
+from alembic import op
+
+revision = "0004"
+down_revision = "0003"
+branch_labels = None
+depends_on = None
+
+
+def upgrade() -> None:
+    with op.batch_alter_table("surveys") as batch:
+        batch.add_column(
+            sa.Column(
+                "verdict_in_replies", sa.Boolean(), nullable=False, server_default=sa.true()
+            )
+        )
+
+
+def downgrade() -> None:
+    with op.batch_alter_table("surveys") as batch:
+        batch.drop_column("verdict_in_replies")
