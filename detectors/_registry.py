@@ -13,6 +13,7 @@ from .duplicate_answers import DuplicateAnswers
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
+from .log_likelihood_fit import LogLikelihoodFit
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
@@ -43,6 +44,7 @@ _DETECTORS = (
     SynonymConsistency,
     AntonymConsistency,
     PersonFit,
+    LogLikelihoodFit,
 )
 
 #: Detector name to class, in the order results are reported.
