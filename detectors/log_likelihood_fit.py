@@ -25,9 +25,9 @@ from .responses import ResponseMatrix
 
 __all__ = ["LogLikelihoodFit"]
 
-#: Columns of the per-group table: S θ - Σ ln Γ_i(θ) over the answered items, E, Var, items
-#: counted, extreme score (1/0), θ finite (1/0: the pattern part of l0 counts).
-_FREE, _EXPECTED, _VARIANCE, _USED, _EXTREME, _COUNTED = range(6)
+#: Rows of the per-group table: S θ - Σ ln Γ_i(θ) over the answered items, E, Var, extreme
+#: score (1/0), items answered when the score is extreme (else 0).
+_FREE, _EXPECTED, _VARIANCE, _EXTREME, _EXTREME_ITEMS = range(5)
 
 
 class LogLikelihoodFit(RatingScaleDetector):
@@ -250,13 +250,15 @@ class LogLikelihoodFit(RatingScaleDetector):
 
 
 def _group_terms(model: _Model, persons: _Persons) -> np.ndarray:
-    """Per score group of a scale: S θ - Σ ln Γ_i(θ), E, Var, items counted, extreme score,
-    θ finite (columns as ``_FREE`` .. ``_COUNTED``); zeros where θ is not finite."""
+    """Per score group of a scale (columns): S θ - Σ ln Γ_i(θ), E, Var, extreme score and the
+    items answered then (rows as ``_FREE`` .. ``_EXTREME_ITEMS``); the first three are 0 where
+    θ is not finite."""
     theta, masks, scores = persons.theta, persons.masks, persons.scores
     answered = masks.sum(axis=1)
     finite = ~np.isnan(theta)
-    out = np.zeros((len(theta), 6))
-    out[:, _EXTREME] = (answered > 0) & ~finite
+    out = np.zeros((5, len(theta)))
+    out[_EXTREME] = (answered > 0) & ~finite
+    out[_EXTREME_ITEMS] = out[_EXTREME] * answered
     rows = np.flatnonzero(finite)
     for start in range(0, len(rows), _GROUPS_PER_BLOCK):
         block = rows[start : start + _GROUPS_PER_BLOCK]
@@ -268,18 +270,16 @@ def _group_terms(model: _Model, persons: _Persons) -> np.ndarray:
         first = (p * log_p).sum(axis=-1)
         # Rounding can leave a hair below zero where one category takes nearly all the mass.
         spread = np.maximum((p * log_p * log_p).sum(axis=-1) - first * first, 0.0)
-        out[block, _FREE] = scores[block] * theta[block] - np.where(mask, log_norm, 0.0).sum(axis=1)
-        out[block, _EXPECTED] = np.where(mask, first, 0.0).sum(axis=1)
-        out[block, _VARIANCE] = np.where(mask, spread, 0.0).sum(axis=1)
-        out[block, _USED] = answered[block]
-        out[block, _COUNTED] = 1.0
+        out[_FREE, block] = scores[block] * theta[block] - np.where(mask, log_norm, 0.0).sum(axis=1)
+        out[_EXPECTED, block] = np.where(mask, first, 0.0).sum(axis=1)
+        out[_VARIANCE, block] = np.where(mask, spread, 0.0).sum(axis=1)
     return out
 
 
 def _sums(plan: _Plan, matrix: ResponseMatrix, tolerance: float, max_iterations: int) -> np.ndarray:
     """Per respondent (rows of the result): l0, E, Var, items counted, items answered on the
     modelled scales, scales with an extreme score and the items on them."""
-    n, n_scales = matrix.n_respondents, len(plan.models)
+    n = matrix.n_respondents
     # Σ_i (κ_{x_i} - x_i δ_i) per scale, read from a table of (block column, category); an
     # unanswered item's category (m + 1) and columns on no modelled scale read 0.
     width = max(model.layout.m for model in plan.models) + 2
@@ -293,7 +293,7 @@ def _sums(plan: _Plan, matrix: ResponseMatrix, tolerance: float, max_iterations:
     flat = cells.ravel()
     start = np.arange(len(plan.columns)) * width
     start = start.astype(np.int16 if flat.size < 1 << 15 else np.int32)
-    pattern = np.empty((n, n_scales))
+    pattern = np.empty((n, len(plan.models)))
 
     def pattern_part(rows: slice, category: np.ndarray, answered: np.ndarray) -> None:
         pattern[rows] = flat[category + start] @ plan.indicator
@@ -301,16 +301,22 @@ def _sums(plan: _Plan, matrix: ResponseMatrix, tolerance: float, max_iterations:
     groups, counts, persons = _group_persons(
         plan, matrix, tolerance, max_iterations, row_slices, pattern_part
     )
+    terms = [_group_terms(model, found) for model, found in zip(plan.models, persons, strict=True)]
     sums = np.zeros((7, n))
-    for s, (model, found) in enumerate(zip(plan.models, persons, strict=True)):
-        terms = _group_terms(model, found)
+    for s, table in enumerate(terms):
         g = groups[:, s]
-        extreme = terms[:, _EXTREME].take(g)
-        sums[0] += terms[:, _FREE].take(g) + terms[:, _COUNTED].take(g) * pattern[:, s]
-        sums[1] += terms[:, _EXPECTED].take(g)
-        sums[2] += terms[:, _VARIANCE].take(g)
-        sums[3] += terms[:, _USED].take(g)
-        sums[4] += counts[:, s]
-        sums[5] += extreme
-        sums[6] += extreme * counts[:, s]
+        sums[0] += table[_FREE].take(g)
+        sums[1] += table[_EXPECTED].take(g)
+        sums[2] += table[_VARIANCE].take(g)
+        sums[6] += table[_EXTREME_ITEMS].take(g)
+    # The pattern part counts on every scale except those with an extreme score, which only
+    # respondents with extreme items have; they are put right on their own.
+    sums[0] += pattern.sum(axis=1)
+    extreme = np.flatnonzero(sums[6] > 0)
+    for s, table in enumerate(terms):
+        flag = table[_EXTREME].take(groups[extreme, s])
+        sums[0, extreme] -= flag * pattern[extreme, s]
+        sums[5, extreme] += flag
+    sums[4] = counts.sum(axis=1)
+    sums[3] = sums[4] - sums[6]
     return sums
