@@ -14,6 +14,7 @@ from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
 from .guttman_errors import GuttmanErrors
+from .log_likelihood_fit import LogLikelihoodFit
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
 from .midpoint_style import MidpointStyle
@@ -53,6 +54,7 @@ _DETECTORS = (
     PersonScalability,
     GuttmanErrors,
     ResampledReliability,
+    LogLikelihoodFit,
 )
 
 #: Detector name to class, in the order results are reported.

@@ -31,7 +31,10 @@ Cleaning the reference
     sample for family f leaves out only the respondents flagged by the *other* families:
     careless respondents caught by other kinds of evidence leave the sample, while family f's
     own ordinary tail stays (as long as families are not strongly related among ordinary
-    respondents; the false-alarm check in the tests measures what remains).
+    respondents; the false-alarm check in the tests measures what remains). Families whose
+    tails go together among ordinary respondents (``RELATED``: ``misfit`` and ``outlier``)
+    do not clean each other. The first round starts from the detectors' own cut-offs, so that
+    two families that each see a kind only once the other has set it aside get going.
 
     A careless kind that only one family can see stays in that family's sample. For such an
     index a detector may state ``calibration == "reference_within_own"``: its cut-off is the
@@ -74,6 +77,12 @@ __all__ = [
     "upper_cutoff",
 ]
 
+#: Families that never clean each other's sample. ``misfit`` and ``outlier`` both compare a
+#: respondent's answers with the sample's pattern (its item ordering and model; its means and
+#: covariances), so among ordinary respondents their upper tails go together: on simulated
+#: ordinary answers, setting aside the respondents one flags made the other flag 2 to 3.4
+#: times its share (``tests/detectors/test_calibration.py`` keeps the null check).
+RELATED: tuple[frozenset[str], ...] = (frozenset({"misfit", "outlier"}),)
 #: Key of the calibrated cut-offs inside a stored reference.
 CALIBRATION_KEY = "calibration"
 #: Rounds of estimating cut-offs and setting flagged respondents aside (three rounds settle
@@ -198,7 +207,10 @@ def calibrate(
         if result is not None and result.family in counted:
             own_by_family[result.family] |= result.flags
     keep = {
-        f: ~np.logical_or.reduce([own_by_family[g] for g in counted if g != f])
+        f: ~np.logical_or.reduce(
+            [own_by_family[g] for g in counted if g != f and not _related(f, g)]
+            + [np.zeros(n, dtype=bool)]
+        )
         for f in families
     }
     cutoffs: dict[str, float] = {}
@@ -207,7 +219,6 @@ def calibrate(
         flags_by_family: dict[str, np.ndarray] = {f: np.zeros(n, dtype=bool) for f in counted}
         for name, flag in fixed.items():
             flags_by_family[results[name].family] |= flag
-
         for family in families:
             members = {k: r for k, r in calibrated.items() if r.family == family}
             sample = keep[family]
@@ -230,13 +241,20 @@ def calibrate(
                 cutoffs[name] = cutoff
                 rates[name] = float(np.mean(reference >= cutoff)) if len(reference) else 0.0
                 flags_by_family[family] |= assessed & (result.scores >= cutoff)
-
         keep = {
-            f: ~np.logical_or.reduce([flags_by_family[g] for g in counted if g != f])
+            f: ~np.logical_or.reduce(
+                [flags_by_family[g] for g in counted if g != f and not _related(f, g)]
+                + [np.zeros(n, dtype=bool)]
+            )
             for f in families
         }
     unflagged = ~np.logical_or.reduce([flags_by_family[g] for g in counted])
     return Calibration(cutoffs, rates, family_rates, keep, unflagged)
+
+
+def _related(family: str, other: str) -> bool:
+    """Whether two families' tails go together among ordinary respondents (``RELATED``)."""
+    return any({family, other} <= pair for pair in RELATED)
 
 
 def _family_tail(smallest: np.ndarray, rate: float) -> float:

@@ -62,12 +62,11 @@ def _instrument(make_instrument):
 
 def test_under_the_null_each_family_flags_about_its_share_of_the_budget():
     # Ordinary respondents only (answers simulated from the instrument, no careless ones):
-    # each family's flagged share is close to review_rate / F. Cleaning the reference sets
-    # aside respondents other families flag, and families are related among ordinary
-    # respondents, so the realised share runs somewhat above the budget; measured on this
-    # code's own output (seeds 1-3, 8,000 respondents): 1.04 to 1.53 times the budget, the
-    # whole review share 6.1-6.9% for a review_rate of 5% (fixed-rule indices such as
-    # sequence patterns add their own few). The bounds are regression bounds.
+    # each family's flagged share is close to review_rate / F. Setting aside what the other
+    # families flag thins a family's tail a little where families are related among ordinary
+    # respondents; measured on this code's own output (seeds 1-3, 8,000 respondents): 1.00 to
+    # 1.23 times the budget per family, the whole review share 5.7-5.9% for a review_rate of
+    # 5% (fixed-rule indices such as sequence patterns add their own few). Regression bounds.
     for seed in (1, 2, 3):
         instrument, matrix = _null_sample(n=8000, seed=seed)
         screening = screen(instrument, matrix)
@@ -81,9 +80,9 @@ def test_under_the_null_each_family_flags_about_its_share_of_the_budget():
         # binomial standard error of a share near the budget on 8,000 respondents
         error = np.sqrt(budget * (1 - budget) / matrix.n_respondents)
         for family, flags in by_family.items():
-            assert budget * 0.6 - 3 * error <= flags.mean() <= budget * 1.6 + 3 * error, family
+            assert budget * 0.7 - 3 * error <= flags.mean() <= budget * 1.35 + 3 * error, family
         not_ok = np.mean(screening.verdicts.verdict != "ok")
-        assert not_ok <= instrument.verdict.review_rate * 1.5, not_ok
+        assert not_ok <= instrument.verdict.review_rate * 1.25, not_ok
 
 
 def test_a_careless_kind_in_the_reference_does_not_hide_itself():
