@@ -10,6 +10,7 @@ import pytest
 from sqlalchemy import text
 
 from detectors import REGISTRY, matrix_from_frame, parse_instrument
+from detectors.planting import KINDS
 from detectors.reliability import cronbach_alpha, keyed_answers
 from service import jobs, store
 from service.cli import main
@@ -140,6 +141,21 @@ def test_report_of_a_survey_without_respondents(service, survey):
     assert reply.status_code == 200
     page = _parse(reply.text)
     assert page.images == [] and CAUTION_HEAD in " ".join(page.text)
+    # the drill then plants among answers simulated from the instrument, and says so
+    words = " ".join(page.text)
+    assert "Simulation." in words and "answers simulated from the instrument" in words
+
+
+def test_report_drill_plants_among_the_surveys_own_respondents(service, survey):
+    _screened_survey(service, n=300)
+    reply = service.client.get("/v1/surveys/pulse/report", headers=service.auth(service.analyst))
+    page = _parse(reply.text)
+    words = " ".join(page.text)
+    assert "What this questionnaire can catch" in words and "Simulation." in words
+    assert "300 of this survey's respondents" in words
+    kinds = [row[0] for row in page.rows if row and row[0] in KINDS]
+    assert kinds == list(KINDS)
+    assert "Meade, A. W., & Craig, S. B. (2012)" in words
 
 
 def test_report_needs_an_analyst_key_and_a_known_survey(service, survey):
