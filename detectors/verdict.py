@@ -133,10 +133,18 @@ def rank_tables(
 
 
 def _percentiles(scores: np.ndarray, table: list[float]) -> np.ndarray:
+    """Mid-rank percentiles of ``scores`` in a sorted table: one binary search per score, the
+    count of equal table values read from the table's own runs (half the work of searching
+    from both sides)."""
     grid = np.asarray(table, dtype=np.float64)
+    size = len(grid)
     below = np.searchsorted(grid, scores, side="left")
-    at_or_below = np.searchsorted(grid, scores, side="right")
-    out = (below + at_or_below) / (2.0 * len(grid))
+    # end of the run of equal values starting at each table position
+    run_end = np.searchsorted(grid, grid, side="right")
+    at = np.minimum(below, size - 1)
+    equal = (below < size) & (grid[at] == scores)
+    at_or_below = np.where(equal, run_end[at], below)
+    out = (below + at_or_below) / (2.0 * size)
     out[~np.isfinite(scores)] = np.nan
     return out
 
