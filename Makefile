@@ -22,9 +22,10 @@ screen-demo: $(STAMP)
 	$(BIN)/heedful lint demo/instrument.json
 	$(BIN)/heedful screen demo/responses.csv --instrument demo/instrument.json --out demo/screened.csv
 
+# Slow checks included; the tests run on up to four processes (two on a 2-core machine).
 test: $(STAMP)
 	$(BIN)/ruff check detectors service tests
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n auto --maxprocesses 4 --dist worksteal
 
 bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_detectors.py
