@@ -209,6 +209,11 @@ class Detector:
     #: The evidence entry that states the cut-off in the reader's units (rewritten when the
     #: cut-off is calibrated), or None.
     cutoff_evidence: ClassVar[str | None] = None
+    #: The most suspect score the index can take, or None. A calibrated cut-off never lies
+    #: above it: a block of respondents tied at the most extreme value possible (agreeing with
+    #: both sides of every opposite pair) is a careless kind filling the tail, not ordinary
+    #: answering, and must not push the cut-off out of reach.
+    score_maximum: ClassVar[float | None] = None
     parameter_constraints: ClassVar[dict[str, Interval | Options]] = {}
 
     # Settings ---------------------------------------------------------------------------------

@@ -95,6 +95,8 @@ disagreed with both in 1; mean answer 0.62 points above the midpoint'
     )
     calibration = "reference"
     cutoff_setting = cutoff_evidence = "share_cutoff"
+    #: agreeing with both sides of every answered pair (on bfi, 8 of 2,800 respondents)
+    score_maximum = 1.0
     parameter_constraints = {
         "share_cutoff": Interval(float, 0, 1, closed="right"),
         "min_pairs": Interval(int, 1, None),

@@ -234,6 +234,9 @@ def calibrate(
                 assessed = result.states == State.ASSESSED
                 reference = result.scores[sample & assessed]
                 cutoff = upper_cutoff(reference, tail)
+                highest = getattr(models.get(name), "score_maximum", None) if models else None
+                if highest is not None:
+                    cutoff = min(cutoff, highest)
                 if kinds[name] == "reference_within_own" and models and name in models:
                     modelled = models[name].model_cutoff(result, sample & assessed, tail)
                     if modelled is not None:

@@ -103,6 +103,8 @@ answered items) (flagged at SD 0.5 or less)"
     )
     calibration = "reference"
     cutoff_setting = cutoff_evidence = "sd_cutoff"
+    #: minus an SD of 0: one answer on every item
+    score_maximum = 0.0
     parameter_constraints = {
         "sd_cutoff": Interval(float, 0, None),
         "min_items": Interval(int, 2, None),
