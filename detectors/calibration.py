@@ -96,16 +96,13 @@ class Calibration:
 
     ``cutoffs`` maps a detector to its score cut-off; ``rates`` to the upper-tail share of the
     cleaned reference beyond that cut-off (the index's own expected false-alarm rate);
-    ``family_rates`` maps a family to its share of the review budget; ``cleaned`` maps a
-    family to a boolean mask of the reference respondents kept in its cleaned sample, and
-    ``unflagged`` marks the reference respondents no counted family flags at the calibrated
+    ``family_rates`` maps a family to its share of the review budget; ``unflagged`` marks the reference respondents no counted family flags at the calibrated
     cut-offs (the sample the careless score's percentile tables are read from).
     """
 
     cutoffs: dict[str, float]
     rates: dict[str, float]
     family_rates: dict[str, float]
-    cleaned: dict[str, np.ndarray]
     unflagged: np.ndarray | None = None
 
     def to_json(self) -> dict[str, Any]:
@@ -120,7 +117,6 @@ class Calibration:
             {k: v for k, v in self.cutoffs.items() if k in names},
             {k: v for k, v in self.rates.items() if k in names},
             self.family_rates,
-            self.cleaned,
             self.unflagged,
         )
 
@@ -132,7 +128,6 @@ class Calibration:
             cutoffs={k: float(v["cutoff"]) for k, v in entries.items()},
             rates={k: float(v["rate"]) for k, v in entries.items()},
             family_rates={k: float(v) for k, v in families.items()},
-            cleaned={},
         )
 
 
@@ -252,7 +247,7 @@ def calibrate(
             for f in families
         }
     unflagged = ~np.logical_or.reduce([flags_by_family[g] for g in counted])
-    return Calibration(cutoffs, rates, family_rates, keep, unflagged)
+    return Calibration(cutoffs, rates, family_rates, unflagged)
 
 
 def _related(family: str, other: str) -> bool:
