@@ -49,7 +49,7 @@ data. Journal of Experimental Social Psychology, 66, 4-19.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -230,7 +230,6 @@ def drill(
     seed: int = 1,
     n_simulated: int = 2000,
     overrides: Mapping[str, Mapping[str, Any]] | None = None,
-    screen_function: Callable[..., Any] | None = None,
 ) -> Drill:
     """Plant ``careless_share`` careless respondents (split evenly over ``kinds``) among the
     ordinary ones, screen them all together (the mixture is its own reference sample, as a new
@@ -287,7 +286,7 @@ def drill(
         answers=_codes(values),
         durations=durations,
     )
-    screening = (screen_function or screen)(instrument, mixture, overrides=overrides)
+    screening = screen(instrument, mixture, overrides=overrides)
     verdicts = screening.verdicts
     score = verdicts.careless_score
     not_ok = verdicts.verdict != "ok"
