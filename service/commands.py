@@ -1,7 +1,7 @@
 """The service's subcommands of ``heedful``: serve, db, keys, survey, rescreen, nightly, report,
 openapi.
 
-Only argument parsing and printing live here; the work is done by ``store`` and ``jobs``.
+Only argument parsing and printing live here; the work is done by ``store`` and the use cases (``ingest``, ``rescreen``, ``registration``).
 """
 
 from __future__ import annotations
@@ -170,24 +170,18 @@ def cmd_keys_revoke(args: argparse.Namespace) -> int:
 
 
 def register_document(database: Any, document: Any) -> dict[str, Any]:
-    """Register an instrument document; the reply the API gives (lint warnings, secret)."""
-    from detectors import lint, parse_instrument
+    """Register an instrument document (``registration.register_survey``); the reply the API
+    gives (lint warnings as text, secret)."""
+    from .registration import register_survey
 
-    from . import store
-
-    instrument = parse_instrument(document)
-    notes = lint(instrument)
-    with database.write() as session:
-        registered = store.register_version(
-            session, instrument.model_dump(mode="json"), instrument.title
-        )
-        return {
-            "survey": registered.survey.survey,
-            "version": registered.version.number,
-            "new_version": registered.new_version,
-            "lint": [str(note) for note in notes],
-            "webhook_secret": registered.survey.webhook_secret,
-        }
+    registered = register_survey(database, document)
+    return {
+        "survey": registered.survey,
+        "version": registered.version,
+        "new_version": registered.new_version,
+        "lint": [str(note) for note in registered.lint],
+        "webhook_secret": registered.webhook_secret,
+    }
 
 
 def cmd_survey_register(args: argparse.Namespace) -> int:
@@ -273,7 +267,8 @@ def cmd_survey_set(args: argparse.Namespace) -> int:
 
 
 def cmd_rescreen(args: argparse.Namespace) -> int:
-    from . import jobs, store
+    from . import store
+    from .rescreen import rescreen
 
     settings = settings_from(args)
     database = _database(args)
@@ -282,7 +277,7 @@ def cmd_rescreen(args: argparse.Namespace) -> int:
             survey = store.get_survey(session, args.survey)
             if survey is None:
                 raise unknown_survey(args, args.survey)
-            reply = jobs.rescreen(session, survey, settings)
+            reply = rescreen(session, survey, settings).reply()
     finally:
         database.dispose()
     print(f"re-screened {reply['respondents']} respondent(s) of {reply['survey']!r}")

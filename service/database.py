@@ -5,6 +5,7 @@ from __future__ import annotations
 import threading
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
+from typing import Any
 
 from sqlalchemy import Engine, event, text
 from sqlalchemy.orm import Session
@@ -21,6 +22,10 @@ class Database:
     def __init__(self, engine: Engine):
         self.engine = engine
         self._writer = writer(engine)
+        #: Things built once from rows that never change (survey versions' screeners, reference
+        #: samples), kept per database; every session opened here carries it as
+        #: ``session.info["memo"]`` (see ``service.screeners``).
+        self.memo: dict[str, Any] = {}
         # SQLite has one writer at a time. Queueing this process's writers on a lock keeps them
         # out of SQLite's busy handler, which sleeps in steps of up to 100 ms; other processes
         # still wait through the busy timeout.
@@ -53,14 +58,17 @@ class Database:
 
     @contextmanager
     def read(self) -> Iterator[Session]:
-        with Session(self.engine, expire_on_commit=False) as session, session.begin():
+        with (
+            Session(self.engine, expire_on_commit=False, info={"memo": self.memo}) as session,
+            session.begin(),
+        ):
             yield session
 
     @contextmanager
     def write(self) -> Iterator[Session]:
         with (
             self._write_lock or nullcontext(),
-            Session(self._writer, expire_on_commit=False) as session,
+            Session(self._writer, expire_on_commit=False, info={"memo": self.memo}) as session,
             session.begin(),
         ):
             yield session

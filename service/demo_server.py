@@ -49,11 +49,11 @@ def prepare_demo(out: str | Path, database_url: str | None = None) -> dict[str, 
     Returns the database URL, the survey id, the keys by role and the webhook secret.
     """
     from . import store
-    from .commands import register_document
     from .database import Database
     from .db import make_engine, upgrade
     from .demo import demo_instrument, demo_responses, write_demo
     from .models import Role
+    from .registration import register_survey
 
     out = Path(out)
     write_demo(out)
@@ -69,7 +69,7 @@ def prepare_demo(out: str | Path, database_url: str | None = None) -> dict[str, 
     engine = make_engine(database_url)
     upgrade(engine)
     database = Database(engine)
-    reply = register_document(database, instrument)
+    registered = register_survey(database, instrument)
     keys = {}
     with database.write() as session:
         for role in ROLES:
@@ -80,12 +80,12 @@ def prepare_demo(out: str | Path, database_url: str | None = None) -> dict[str, 
     database.dispose()
     for role, token in keys.items():
         _write_secret(out / f"{role}.key", token)
-    _write_secret(out / "webhook_secret.txt", reply["webhook_secret"])
+    _write_secret(out / "webhook_secret.txt", registered.webhook_secret)
     return {
         "database_url": database_url,
-        "survey": reply["survey"],
+        "survey": registered.survey,
         "keys": keys,
-        "webhook_secret": reply["webhook_secret"],
+        "webhook_secret": registered.webhook_secret,
     }
 
 

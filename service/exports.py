@@ -44,9 +44,7 @@ from sqlalchemy import (
     Integer,
     String,
     Text,
-    case,
     cast,
-    literal,
     literal_column,
     or_,
     select,
@@ -54,12 +52,15 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, REGISTRY, ResponseMatrix, State
+from detectors import MISSING, REGISTRY, ResponseMatrix
 from detectors.scales import scale_scores
 
-from . import jobs, store
+from . import store
 from .files import write_atomic
-from .models import Decision, DetectorOutcome, Respondent, Survey, Verdict
+from .models import Decision, Respondent, Survey, Verdict
+from .outcomes import assessed_scores
+from .rescreen import answer_codes
+from .screeners import Screener, screener_for
 from .stat_files import STAT_FORMATS, statistical_names, unique_names, write_labelled
 
 __all__ = [
@@ -129,7 +130,7 @@ class ExportLayout:
     items: list[str]
     detectors: list[str]
     scale_columns: list[str]
-    screeners: dict[int, jobs.Screener]
+    screeners: dict[int, Screener]
     numbers: dict[int, int]
     #: Renamed column to the item, detector column or scale column it stands for, when an
     #: item id clashed with another column's name.
@@ -172,7 +173,7 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
     """The export's columns for a survey: items of every version, detectors, scales."""
     versions = store.versions_of(session, survey.id)
     numbers = {v.id: v.number for v in versions}
-    screeners = {v.id: jobs.screener_for(session, v.id) for v in versions}
+    screeners = {v.id: screener_for(session, v.id) for v in versions}
     # The current version first, then earlier ones, newest first.
     order = sorted(versions, key=lambda v: (v.id != survey.current_version_id, -v.number))
     item_source: dict[str, tuple[Any, Any]] = {}
@@ -319,55 +320,6 @@ def _times(values: Sequence[Any]) -> pd.Series:
     return out.astype("datetime64[us, UTC]")
 
 
-#: Outcome rows converted to numbers per step (bounds the memory of one chunk's results).
-OUTCOME_BATCH = 250_000
-
-
-def _outcomes(
-    session: Session, detectors: Sequence[str], pks: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, int]:
-    """Scores and flags (float, NaN unless assessed) of ``pks`` (sorted), shape
-    (n, detectors), and the number of results of detectors not in ``detectors``.
-
-    Only assessed results are read (the others are empty in the export). The detector's name
-    comes back as its number (a CASE in the query), so every row converts to numbers at once
-    and is put in place with array indexing (bench_export.py).
-    """
-    n, d = len(pks), len(detectors)
-    scores = np.full((n, d), np.nan)
-    flags = np.full((n, d), np.nan)
-    unknown = 0
-    if n == 0:
-        return scores, flags, unknown
-    code = case(
-        {name: number for number, name in enumerate(detectors)},
-        value=DetectorOutcome.detector, else_=-1,
-    ) if d else literal(-1)
-    result = session.connection().execute(
-        select(DetectorOutcome.respondent_pk, code, DetectorOutcome.score, DetectorOutcome.flagged)
-        .where(
-            DetectorOutcome.respondent_pk.between(int(pks[0]), int(pks[-1])),
-            DetectorOutcome.state == int(State.ASSESSED),
-        )
-    )
-    # Every column is a plain number, so the driver's tuples are used as they come: row
-    # objects would cost more than the query (bench_export.py).
-    cursor = result.cursor
-    while part := cursor.fetchmany(OUTCOME_BATCH):
-        values = np.array(part, dtype=np.float64).reshape(len(part), 4)
-        found = values[:, 0].astype(np.int64)
-        position = np.searchsorted(pks, found)
-        # The range may hold other surveys' respondents: keep this chunk's.
-        mine = (position < n) & (pks[np.minimum(position, n - 1)] == found)
-        number = values[:, 1].astype(np.int64)
-        unknown += int((mine & (number < 0)).sum())
-        mine &= number >= 0
-        scores[position[mine], number[mine]] = values[mine, 2]
-        flags[position[mine], number[mine]] = values[mine, 3]
-    result.close()
-    return scores, flags, unknown
-
-
 def _nullable_int8(values: np.ndarray, missing: np.ndarray) -> pd.arrays.IntegerArray:
     data = np.where(missing, 0, values).astype(np.int8)
     return pd.arrays.IntegerArray(data, missing.copy())
@@ -379,8 +331,8 @@ def _chunk_frame(session: Session, layout: ExportLayout, rows: Sequence[Any]) ->
     n = len(pks)
     pk_array = np.array(pks, dtype=np.int64)
     version_array = np.array(version_ids, dtype=np.int64)
-    answers = jobs.answer_codes(texts, tuple(layout.items))
-    scores, flags, unknown = _outcomes(session, layout.detectors, pk_array)
+    answers = answer_codes(texts, tuple(layout.items))
+    scores, flags, unknown = assessed_scores(session, layout.detectors, pk_array)
     layout.unregistered_results += unknown
     data: dict[str, Any] = {}
     columns = iter(layout.columns)

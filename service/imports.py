@@ -1,6 +1,6 @@
 """Importing a responses file into a stored survey.
 
-The file's rows go through the same use case as the webhook (``jobs.ingest``), in batches, so
+The file's rows go through the same use case as the webhook (``ingest.ingest``), in batches, so
 an import is checked, screened, stored and de-duplicated exactly like posted responses: the same
 respondent with the same answers is a duplicate, other answers under a stored respondent id are
 a conflict unless ``replace`` is given.
@@ -21,8 +21,10 @@ import pandas as pd
 
 from detectors import ResponseDataError, ResponseProblem
 
-from . import jobs, store
-from .problems import Problem
+from . import store
+from .errors import CONFLICT_REASON, RespondentConflict
+from .ingest import IngestOptions, ingest
+from .screeners import screener_for
 from .settings import Settings
 
 __all__ = ["IMPORT_BATCH", "ImportReport", "ImportRefused", "posted_rows", "import_table"]
@@ -133,7 +135,7 @@ def import_table(
     partial: bool = False,
     batch_size: int = IMPORT_BATCH,
 ) -> ImportReport:
-    """Post a table's rows into a stored survey through ``jobs.ingest``, in one transaction.
+    """Post a table's rows into a stored survey through ``ingest.ingest``, in one transaction.
 
     Raises ``LookupError`` for an unknown survey, ``ResponseDataError`` when a column is
     missing, and :class:`ImportRefused` (nothing stored) when rows are invalid or conflict
@@ -147,7 +149,7 @@ def import_table(
             raise LookupError(f"no survey {survey_id!r} is registered")
         if survey.current_version_id is None:
             raise LookupError(f"survey {survey_id!r} has no registered version")
-        screener = jobs.screener_for(session, survey.current_version_id)
+        screener = screener_for(session, survey.current_version_id)
         items = list(screener.instrument.item_ids)
         columns = [str(c) for c in frame.columns]
         missing = [
@@ -177,7 +179,7 @@ def import_table(
                  "problems": [{"item": id_column, "reason": reason}]}
             )
         file_rows = [r for r in range(len(frame)) if r not in duplicated]
-        options = jobs.IngestOptions(replace=replace, partial=partial)
+        options = IngestOptions(replace=replace, partial=partial)
         for start in range(0, len(file_rows), batch_size):
             # Rows become posted dicts a batch at a time (a million at once would not fit).
             batch = posted_rows(
@@ -190,28 +192,35 @@ def import_table(
                 return None if position is None else file_rows[start + position - 1] + 1
 
             try:
-                reply = jobs.ingest(session, survey, batch, options, settings)
+                reply = ingest(session, survey, batch, options, settings)
             except ResponseDataError as error:
                 problems += [
                     ResponseProblem(file_row(p.row), p.respondent_id, p.column, p.reason)
                     for p in error.problems
                 ]
                 continue
-            except Problem as error:  # respondents stored with other answers (409)
-                for entry in error.errors or []:
+            except RespondentConflict as error:  # respondents stored with other answers
+                for conflict in error.conflicts:
                     problems.append(
                         ResponseProblem(
-                            file_row(entry.get("row")), entry.get("respondent_id"),
-                            "respondent_id", entry["detail"],
+                            file_row(conflict.row), conflict.respondent_id, "respondent_id",
+                            CONFLICT_REASON,
                         )
                     )
                     conflicts += 1
                 continue
-            report.stored += reply["stored"]
-            report.replaced += reply["replaced"]
-            report.duplicates += reply["duplicates"]
+            report.stored += reply.stored
+            report.replaced += reply.replaced
+            report.duplicates += reply.duplicates
             report.rejected += [
-                {**entry, "row": file_row(entry["row"])} for entry in reply["rejected"]
+                {
+                    "row": file_row(entry.row),
+                    "respondent_id": entry.respondent_id,
+                    "problems": [
+                        {"item": item, "reason": reason} for item, reason in entry.problems
+                    ],
+                }
+                for entry in reply.rejected
             ]
         if problems:
             problems.sort(key=lambda p: p.row or 0)

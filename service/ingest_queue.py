@@ -2,7 +2,7 @@
 
 Posts that arrive while a transaction is being written wait in a queue; one writer thread then
 takes all of them (up to a bound), screens their respondents together and writes them in one
-transaction (``jobs.ingest_many``). Each post is answered only after that commit. Under load
+transaction (``ingest.ingest_many``). Each post is answered only after that commit. Under load
 this spreads the fixed cost of a screening call and of a commit over many posts; a lone post is
 written at once. A post refused for its own reasons (bad rows, conflict, signature) does not
 affect the others of its group.
@@ -20,8 +20,9 @@ from dataclasses import dataclass
 
 from sqlalchemy.exc import DBAPIError, IntegrityError
 
-from . import jobs, store
+from . import store
 from .database import Database
+from .ingest import DEFERRED, Submission, ingest_many
 from .settings import Settings
 
 __all__ = ["IngestQueue"]
@@ -39,7 +40,7 @@ PRUNE_EVERY_SECONDS = 60.0
 
 @dataclass
 class _Job:
-    submission: jobs.Submission
+    submission: Submission
     future: Future
 
 
@@ -54,7 +55,7 @@ class IngestQueue:
         self._lock = threading.Lock()
         self._pruned_at = time.monotonic()
 
-    def submit(self, submission: jobs.Submission) -> Future:
+    def submit(self, submission: Submission) -> Future:
         future: Future = Future()
         self._ensure_started()
         self._queue.put(_Job(submission, future))
@@ -128,7 +129,7 @@ class IngestQueue:
                 return
             waiting = []
             for job, result in zip(pending, results, strict=True):
-                if result is jobs.DEFERRED:
+                if result is DEFERRED:
                     waiting.append(job)
                 elif isinstance(result, BaseException):
                     job.future.set_exception(result)
@@ -140,9 +141,9 @@ class IngestQueue:
         for job in pending:
             self._one_at_a_time(job)
 
-    def _write(self, submissions: list[jobs.Submission]) -> list:
+    def _write(self, submissions: list[Submission]) -> list:
         with self.database.write() as session:
-            return jobs.ingest_many(session, submissions, self.settings)
+            return ingest_many(session, submissions, self.settings)
 
     def _one_at_a_time(self, job: _Job) -> None:
         for attempt in range(2):

@@ -6,7 +6,7 @@ For each survey (every registered one by default), one after the other:
 
 1. **Screeners.** Each stored respondent is screened with its survey version's screener, or
    with the current version's when its answers fit the current version unchanged (the same
-   items in the same order with the same answer ranges; see ``jobs.answers_fit``), e.g. after
+   items in the same order with the same answer ranges; see ``screeners.answers_fit``), e.g. after
    a new version only changed a cut-off. Such respondents move to the current version.
 2. **Reference sample.** For a screener whose detectors use one, a new reference sample is
    estimated from all the respondents screened with it when there are at least
@@ -26,13 +26,13 @@ For each survey (every registered one by default), one after the other:
      detector added, removed or given a new version makes every result stale (as does a
      result stored before fingerprints were kept).
 
-   Stale respondents are re-screened with ``jobs.rescreen_rows``, the code ``heedful
+   Stale respondents are re-screened with ``rescreen.rescreen_rows``, the code ``heedful
    rescreen`` uses, in chunks of ``NIGHTLY_CHUNK`` respondents, each chunk its own
    transaction. An interrupted run leaves whole chunks done; the next run finds the rest
    still stale and finishes them. Where only the reference changed, only the results of the
    detectors that use it are rewritten (the others depend on the answers and the screener
    alone). A result that changed is kept in the screening history first (see
-   ``jobs.rescreen_rows``).
+   ``rescreen.rescreen_rows``).
 4. **Files**, in ``DIR/<date>/<survey>/`` (the run's local date): the survey's export
    (``<survey>.sav`` by default, without the respondents reviewed as ``exclude``), the
    screening report ``report.html`` and ``nightly.json`` (what the run did). Each file is
@@ -56,11 +56,13 @@ import numpy as np
 
 from detectors import fit_references
 
-from . import exports, jobs, reports, store
+from . import exports, reports, store
+from . import rescreen as jobs_rescreen
 from .database import Database
 from .db import utcnow
 from .files import write_atomic
 from .models import Survey
+from .screeners import reference_data, uses_reference
 from .settings import Settings
 
 __all__ = [
@@ -115,7 +117,7 @@ class SurveyRun:
     survey: str
     respondents: int = 0
     stale: int = 0
-    counts: jobs.RescreenCount = field(default_factory=jobs.RescreenCount)
+    counts: jobs_rescreen.RescreenCount = field(default_factory=jobs_rescreen.RescreenCount)
     references: list[dict[str, Any]] = field(default_factory=list)
     files: list[Path] = field(default_factory=list)
     error: str | None = None
@@ -214,10 +216,10 @@ class Progress:
 
 
 def needs_new_reference(
-    target: jobs.Target, latest: Any, settings: Settings, share: float = REFERENCE_REFRESH_SHARE
+    target: jobs_rescreen.Target, latest: Any, settings: Settings, share: float = REFERENCE_REFRESH_SHARE
 ) -> bool:
     """Whether to estimate a new reference sample for ``target`` (see the module docstring)."""
-    if not jobs.uses_reference(target.screener):
+    if not uses_reference(target.screener):
         return False
     if target.respondents < settings.reference_min_respondents:
         return False
@@ -228,12 +230,12 @@ def needs_new_reference(
 
 @dataclass
 class _Plan:
-    target: jobs.Target
+    target: jobs_rescreen.Target
     reference_id: int | None
     renew: bool = False
     reference: Any = None
     new_reference: dict[str, Any] | None = None
-    stored: jobs.Stored | None = None
+    stored: jobs_rescreen.Stored | None = None
 
 
 def nightly_survey(
@@ -260,11 +262,11 @@ def nightly_survey(
             raise LookupError(f"no survey {name!r} is registered")
         survey_id, current_version = survey.id, survey.current_version_id
         run.respondents = store.count_respondents(session, survey_id)
-        for target in jobs.screening_targets(session, survey):
+        for target in jobs_rescreen.screening_targets(session, survey):
             screener = target.screener
             latest = store.latest_reference(session, screener.version_id)
             renew = needs_new_reference(target, latest, settings)
-            keep = latest is not None and jobs.uses_reference(screener) and not renew
+            keep = latest is not None and uses_reference(screener) and not renew
             plan = _Plan(target, latest.id if keep else None, renew)
             if not renew and not store.count_stale(
                 session, survey_id, target.sources, screener.version_id, plan.reference_id,
@@ -274,7 +276,7 @@ def nightly_survey(
                 continue
             if progress is not None:
                 progress.start(f"{name}: reading version {screener.number}", target.respondents)
-            plan.stored = jobs.read_stored(
+            plan.stored = jobs_rescreen.read_stored(
                 session, survey_id, target,
                 progress=None if progress is None else progress.update,
             )
@@ -283,7 +285,7 @@ def nightly_survey(
             if renew:
                 plan.reference = fit_references(screener.instrument, plan.stored.matrix)
             elif plan.reference_id is not None:
-                plan.reference = jobs.reference_data(session, plan.reference_id)
+                plan.reference = reference_data(session, plan.reference_id)
             plans.append(plan)
 
     # New reference samples, and the one arrivals are screened against, in one transaction.
@@ -293,7 +295,7 @@ def nightly_survey(
             screener = plan.target.screener
             if plan.renew and plan.stored is not None:
                 n = len(plan.stored)
-                sample = jobs.save_reference(session, screener, n, plan.reference, now)
+                sample = jobs_rescreen.save_reference(session, screener, n, plan.reference, now)
                 plan.reference_id = sample.id
                 plan.new_reference = {
                     "id": sample.id, "version": screener.number, "respondents": n,
@@ -316,7 +318,7 @@ def nightly_survey(
         for start in range(0, len(positions), chunk):
             part = positions[start : start + chunk]
             with database.write() as session:
-                counts = jobs.rescreen_rows(
+                counts = jobs_rescreen.rescreen_rows(
                     session, screener, stored, part, plan.reference_id, plan.reference, now,
                     rescore=rescore[part],
                 )

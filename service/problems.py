@@ -22,7 +22,18 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from detectors import HeedfulError, InstrumentError, ResponseDataError, SettingError
 
-__all__ = ["Problem", "install", "PROBLEM_JSON", "problem_schema", "field_error"]
+from .errors import (
+    CONFLICT_REASON,
+    NoVersion,
+    RespondentConflict,
+    ServiceError,
+    SignatureRefused,
+    UnknownSurvey,
+)
+
+__all__ = [
+    "Problem", "install", "PROBLEM_JSON", "problem_schema", "field_error", "from_service",
+]
 
 PROBLEM_JSON = "application/problem+json"
 log = logging.getLogger("heedful.service")
@@ -134,6 +145,30 @@ def from_library(error: HeedfulError) -> Problem:
     return Problem(422, str(error), kind="invalid-input")
 
 
+def from_service(error: ServiceError) -> Problem:
+    """The one place where the use cases' domain errors become problems."""
+    if isinstance(error, UnknownSurvey):
+        return Problem(404, str(error), kind="unknown-survey")
+    if isinstance(error, NoVersion):
+        return Problem(409, str(error), kind="no-version")
+    if isinstance(error, RespondentConflict):
+        return Problem(
+            409,
+            str(error),
+            kind="respondent-conflict",
+            errors=[
+                field_error(
+                    f"#/responses/{c.position}/respondent_id", CONFLICT_REASON,
+                    row=c.row, respondent_id=c.respondent_id,
+                )
+                for c in error.conflicts
+            ],
+        )
+    if isinstance(error, SignatureRefused):
+        return Problem(401, str(error), kind="bad-signature")
+    return Problem(422, str(error), kind="invalid-input")
+
+
 def _respond(request: Request, problem: Problem) -> JSONResponse:
     return JSONResponse(
         problem.document(request.url.path),
@@ -158,6 +193,10 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(Problem)
     async def _problem(request: Request, error: Problem) -> JSONResponse:
         return _respond(request, error)
+
+    @app.exception_handler(ServiceError)
+    async def _service(request: Request, error: ServiceError) -> JSONResponse:
+        return _respond(request, from_service(error))
 
     @app.exception_handler(HeedfulError)
     async def _library(request: Request, error: HeedfulError) -> JSONResponse:

@@ -32,9 +32,11 @@ from sqlalchemy.orm import Session
 from detectors import REGISTRY, State, lint
 from detectors.reliability import scale_statistics
 
-from . import jobs, store
+from . import outcomes, store
 from .db import utcnow
 from .models import Decision, ReferenceSample, Respondent, Survey
+from .rescreen import Target, read_stored
+from .screeners import Screener, screener_for
 
 __all__ = [
     "build_report",
@@ -204,28 +206,12 @@ def _sample_step(total: int) -> int:
     return max(1, -(-total // DISTRIBUTION_SAMPLE))
 
 
-#: Respondents whose results are read per query (bounds memory).
-READ_RESPONDENTS = 50_000
-
-
 def _detector_data(session: Session, survey_id: int, pks: np.ndarray, step: int
                    ) -> dict[str, _DetectorData]:
     """Every detector's counts (exact, read along the results' primary key a range of
     respondents at a time) and the assessed scores of every ``step``-th respondent."""
-    tallies: dict[str, Counter] = {}
-    samples: dict[str, list[tuple]] = {}
-    for start in range(0, len(pks), READ_RESPONDENTS):
-        low, high = int(pks[start]), int(pks[min(start + READ_RESPONDENTS, len(pks)) - 1])
-        in_range = session.scalar(select(func.count()).where(Respondent.id.between(low, high)))
-        # Without other surveys' respondents in the range, no row needs checking.
-        only = None if in_range == min(READ_RESPONDENTS, len(pks) - start) else survey_id
-        for name, state, flagged, n in store.outcome_tallies(session, only, low, high):
-            tally = tallies.setdefault(name, Counter())
-            tally[int(state)] += int(n)
-            if flagged:
-                tally["flagged"] += int(n)
-    for name, flagged, score, cutoff in store.outcome_sample(session, pks[::step].tolist()):
-        samples.setdefault(name, []).append((score, flagged, cutoff))
+    tallies = outcomes.detector_tallies(session, survey_id, pks)
+    samples = outcomes.assessed_sample(session, pks[::step])
     out = {}
     for name, tally in tallies.items():
         rows = samples.get(name, [])
@@ -236,10 +222,10 @@ def _detector_data(session: Session, survey_id: int, pks: np.ndarray, step: int
         out[name] = _DetectorData(
             name=name,
             summary=detector.summary if detector is not None else "a detector no longer run",
-            assessed=tally[int(State.ASSESSED)],
+            assessed=tally[State.ASSESSED],
             flagged=tally["flagged"],
-            not_assessed=tally[int(State.NOT_ASSESSED)],
-            not_applicable=tally[int(State.NOT_APPLICABLE)],
+            not_assessed=tally[State.NOT_ASSESSED],
+            not_applicable=tally[State.NOT_APPLICABLE],
             scores=scores[keep],
             flags=flags[keep].astype(bool),
             cutoffs=cutoffs[keep],
@@ -251,13 +237,8 @@ def _co_occurrence(session: Session, survey_id: int, names: Sequence[str]) -> np
     """(detectors x detectors) counts of respondents flagged by both (diagonal: by each)."""
     index = {name: i for i, name in enumerate(names)}
     counts = np.zeros((len(names), len(names)), dtype=np.int64)
-    rows = session.execute(
-        select(Respondent.flags, func.count())
-        .where(Respondent.survey_id == survey_id, Respondent.flag_count > 0)
-        .group_by(Respondent.flags)
-    )
-    for flags, n in rows:
-        members = [index[f] for f in flags.split(",") if f in index]
+    for flags, n in outcomes.flag_set_counts(session, survey_id):
+        members = [index[f] for f in flags if f in index]
         for a in members:
             for b in members:
                 counts[a, b] += int(n)
@@ -439,7 +420,7 @@ def _table(header: Sequence[str], rows: Iterable[Sequence[Any]], names: int = 1)
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def _pattern_section(session: Session, survey: Survey, screener: jobs.Screener) -> str:
+def _pattern_section(session: Session, survey: Survey, screener: Screener) -> str:
     current = Respondent.survey_version_id == screener.version_id
     mine = Respondent.survey_id == survey.id
     flagged_pks = session.scalars(
@@ -493,11 +474,11 @@ def _pattern_section(session: Session, survey: Survey, screener: jobs.Screener) 
     )
 
 
-def _scale_section(session: Session, survey: Survey, screener: jobs.Screener) -> str:
+def _scale_section(session: Session, survey: Survey, screener: Screener) -> str:
     instrument = screener.instrument
     if not instrument.scales:
         return '<p class="note">The instrument defines no scales.</p>'
-    stored = jobs.read_stored(session, survey.id, jobs.Target(screener, [screener.version_id]))
+    stored = read_stored(session, survey.id, Target(screener, [screener.version_id]))
     if len(stored) == 0:
         return '<p class="note">No respondents of the current version yet.</p>'
     mine = Respondent.survey_id == survey.id
@@ -546,7 +527,7 @@ def _scale_section(session: Session, survey: Survey, screener: jobs.Screener) ->
     )
 
 
-def _drill_section(session: Session, survey: Survey, screener: jobs.Screener) -> str:
+def _drill_section(session: Session, survey: Survey, screener: Screener) -> str:
     """What this questionnaire can catch: careless respondents planted among the survey's own
     respondents (or simulated ones), screened, and counted. Labelled as a simulation."""
     from detectors import ResponseMatrix
@@ -643,7 +624,7 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
         {"day": str(day), "respondents": int(n), "flagged_any": int(flagged)}
         for day, n, flagged in store.arrivals_by_day(session, survey.id)
     ]
-    screener = jobs.screener_for(session, survey.current_version_id)
+    screener = screener_for(session, survey.current_version_id)
     instrument = screener.instrument
     numbers = store.version_numbers(session, survey.id)
     verdicts = dict(

@@ -100,6 +100,7 @@ __all__ = [
     "screening_history_of",
     "outcome_tallies",
     "outcome_sample",
+    "flag_set_counts",
     "arrivals_by_day",
     "survey_flags",
     "respondent_answers",
@@ -702,7 +703,7 @@ def count_stale(
     fingerprint: str,
 ) -> int:
     """How many respondents of these versions were not screened with the target version, the
-    reference sample ``reference_id`` and the screener ``fingerprint`` (see ``jobs.Stored``)."""
+    reference sample ``reference_id`` and the screener ``fingerprint`` (see ``rescreen.Stored``)."""
     return int(
         session.scalar(
             select(func.count()).where(
@@ -850,6 +851,17 @@ def outcome_sample(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
             )
         )
     return out
+
+
+def flag_set_counts(session: Session, survey_id: int) -> list[Row[Any]]:
+    """(stored flag set, respondents) of the survey's flagged respondents."""
+    return list(
+        session.execute(
+            select(Respondent.flags, func.count())
+            .where(Respondent.survey_id == survey_id, Respondent.flag_count > 0)
+            .group_by(Respondent.flags)
+        )
+    )
 
 
 def arrivals_by_day(session: Session, survey_id: int) -> list[Row[Any]]:

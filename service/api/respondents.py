@@ -10,9 +10,9 @@ from urllib.parse import urlencode
 from fastapi import APIRouter, Query, Request, Response
 from pydantic import AwareDatetime
 
-from detectors import REGISTRY, State
+from detectors import REGISTRY
 
-from .. import store
+from .. import outcomes, store
 from ..models import Decision
 from ..problems import Problem
 from ..schemas import (
@@ -43,7 +43,7 @@ Sort = Literal[
 
 
 def _split(flags: str) -> list[str]:
-    return flags.split(",") if flags else []
+    return list(outcomes.flag_set(flags))
 
 
 def _wants_csv(request: Request) -> bool:
@@ -202,10 +202,7 @@ def get_respondent(
         found_survey = survey_or_404(session, survey)
         found = _respondent_or_404(session, found_survey.id, survey, respondent)
         numbers = store.version_numbers(session, found_survey.id)
-        order = {name: i for i, name in enumerate(REGISTRY)}
-        outcomes = sorted(
-            store.outcomes_of(session, found.id), key=lambda o: order.get(o.detector, len(order))
-        )
+        results = outcomes.results_of(session, found.id)
         return RespondentDetail(
             respondent_id=found.respondent_id,
             version=numbers[found.survey_version_id],
@@ -223,11 +220,11 @@ def get_respondent(
             results=[
                 OutcomeOut(
                     detector=o.detector, detector_version=o.detector_version,
-                    state=State(o.state).label, reason=o.reason, score=o.score, cutoff=o.cutoff,
+                    state=o.state.label, reason=o.reason, score=o.score, cutoff=o.cutoff,
                     flagged=o.flagged, evidence=o.evidence, sentence=o.sentence,
                     reference_id=o.reference_id,
                 )
-                for o in outcomes
+                for o in results
             ],
             reviews=[
                 ReviewOut(

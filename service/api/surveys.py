@@ -8,12 +8,13 @@ from typing import Any
 from fastapi import APIRouter, Request, Response
 from starlette.concurrency import run_in_threadpool
 
-from detectors import Instrument, lint, parse_instrument
+from detectors import Instrument
 from detectors.screening import reference_detectors
 
-from .. import jobs, store
+from .. import registration, store
 from ..models import Role, Survey
 from ..problems import Problem
+from ..rescreen import rescreen
 from ..schemas import (
     DayTally,
     DetectorTally,
@@ -101,19 +102,18 @@ async def register_survey(
 
 
 def _register(database: Any, document: Any) -> SurveyRegistered:
-    instrument = parse_instrument(document)
-    notes = lint(instrument)
-    stored_document = instrument.model_dump(mode="json")
-    with database.write() as session:
-        registered = store.register_version(session, stored_document, instrument.title)
-        return SurveyRegistered(
-            survey=registered.survey.survey,
-            title=registered.survey.title,
-            version=registered.version.number,
-            new_version=registered.new_version,
-            lint=[LintWarning(code=n.code, location=n.location, message=n.message) for n in notes],
-            webhook_secret=registered.survey.webhook_secret,
-        )
+    registered = registration.register_survey(database, document)
+    return SurveyRegistered(
+        survey=registered.survey,
+        title=registered.title,
+        version=registered.version,
+        new_version=registered.new_version,
+        lint=[
+            LintWarning(code=n.code, location=n.location, message=n.message)
+            for n in registered.lint
+        ],
+        webhook_secret=registered.webhook_secret,
+    )
 
 
 @router.get(
@@ -252,7 +252,7 @@ def rescreen_survey(
 ) -> RescreenReply:
     with database.write() as session:
         found = survey_or_404(session, survey)
-        return RescreenReply.model_validate(jobs.rescreen(session, found, settings))
+        return RescreenReply.model_validate(rescreen(session, found, settings).reply())
 
 
 @router.get(

@@ -5,7 +5,7 @@ Phases, each in its own process so each peak memory figure (resident set) is its
 1. ``generate``: register a 50-item instrument and bulk-insert the respondents (50,000 rows per
    insert, a bounded loop), as stored answers that were never screened (not timed as nightly).
    Then the stored answers are read into a matrix both ways (one row at a time, and as
-   ``jobs.read_stored`` does: chunks, column-wise parsing), and the times compared.
+   ``rescreen.read_stored`` does: chunks, column-wise parsing), and the times compared.
 2. ``first``: the first nightly run: every result is stale (never screened), so every detector
    runs on everyone and every result is written; then the export (.sav) and the report.
 3. 1% new respondents are posted through the ingest use case (screened on arrival, not
@@ -115,7 +115,7 @@ def generate(url: str, n: int) -> None:
 
 
 def arrivals(url: str, n: int) -> None:
-    from service import jobs, store
+    from service import ingest, store
     from service.database import Database
     from service.db import make_engine
     from service.settings import Settings
@@ -134,18 +134,18 @@ def arrivals(url: str, n: int) -> None:
     database = Database(make_engine(url))
     for first in range(0, n, 10_000):
         with database.write() as session:
-            jobs.ingest(session, store.get_survey(session, "bench"), rows[first : first + 10_000],
-                        jobs.IngestOptions(), settings)
+            ingest.ingest(session, store.get_survey(session, "bench"), rows[first : first + 10_000],
+                        ingest.IngestOptions(), settings)
     database.dispose()
 
 
 def compare_read(url: str) -> dict:
     """Stored answers to a matrix: one row at a time (parse each JSON document, look every item
-    up) against ``jobs.read_stored`` (chunks, Arrow's column-wise JSON reader)."""
+    up) against ``rescreen.read_stored`` (chunks, Arrow's column-wise JSON reader)."""
     from sqlalchemy import select
 
     from detectors import MISSING
-    from service import jobs, store
+    from service import rescreen, store
     from service.database import Database
     from service.db import make_engine
     from service.models import Respondent
@@ -153,7 +153,7 @@ def compare_read(url: str) -> dict:
     database = Database(make_engine(url))
     with database.read() as session:
         survey = store.get_survey(session, "bench")
-        [target] = jobs.screening_targets(session, survey)
+        [target] = rescreen.screening_targets(session, survey)
         items = target.screener.instrument.item_ids
         t0 = time.perf_counter()
         rows = session.execute(
@@ -167,7 +167,7 @@ def compare_read(url: str) -> dict:
         by_row = time.perf_counter() - t0
         del rows, values
         t0 = time.perf_counter()
-        stored = jobs.read_stored(session, survey.id, target)
+        stored = rescreen.read_stored(session, survey.id, target)
         by_column = time.perf_counter() - t0
         assert (stored.matrix.answers == one_by_one).all()
     database.dispose()

@@ -32,7 +32,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from service import jobs, store  # noqa: E402
+from service import ingest, store  # noqa: E402
 from service.database import Database  # noqa: E402
 from service.db import make_engine, upgrade  # noqa: E402
 from service.demo import demo_instrument  # noqa: E402
@@ -261,7 +261,7 @@ def seed(database: Database, settings: Settings, item_ids: list[str], n: int) ->
         ]
         with database.write() as session:
             survey = store.get_survey(session, "orchard-volunteers-2027")
-            jobs.ingest(session, survey, rows, jobs.IngestOptions(), settings)
+            ingest.ingest(session, survey, rows, ingest.IngestOptions(), settings)
         print(f"\r  seeded {first + len(rows):,} respondents", end="", file=sys.stderr, flush=True)
     print(file=sys.stderr)
     return time.perf_counter() - start

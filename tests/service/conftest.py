@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from sqlalchemy import create_engine
 
-from service import jobs, store
+from service import store
 from service.app import create_app
 from service.models import Role
 from service.security import sign_webhook
@@ -88,7 +88,6 @@ class Service:
 
 @pytest.fixture
 def service(settings) -> Iterator[Service]:
-    jobs.clear_caches()
     app = create_app(settings)
     with app.state.database.write() as session:
         admin = store.create_key(session, "admin-key", Role.ADMIN)
@@ -96,7 +95,6 @@ def service(settings) -> Iterator[Service]:
         analyst = store.create_key(session, "analyst-key", Role.ANALYST)
     with TestClient(app, raise_server_exceptions=False) as client:
         yield Service(app, client, admin, ingest, analyst)
-    jobs.clear_caches()
 
 
 def make_document(n_items: int = 8, points: int = 5, survey: str = "pulse", **extra) -> dict:

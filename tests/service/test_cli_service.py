@@ -58,14 +58,14 @@ def test_survey_register_list_show_and_rescreen(database_url, tmp_path, capsys):
     assert shown["version"] == 1 and shown["webhook_secret"].startswith("whsec_")
 
     # Store respondents through the use case the API uses, then re-screen from the CLI.
-    from service import jobs, store
+    from service import ingest, store
     from service.settings import Settings
 
     settings = Settings(database_url=database_url, reference_min_respondents=50)
     database = Database(make_engine(database_url))
     with database.write() as session:
-        jobs.ingest(session, store.get_survey(session, "pulse"), random_rows(80),
-                    jobs.IngestOptions(), settings)
+        ingest.ingest(session, store.get_survey(session, "pulse"), random_rows(80),
+                    ingest.IngestOptions(), settings)
     database.dispose()
     code, out, _ = _run(capsys, "rescreen", "--survey", "pulse", "--database", database_url)
     assert code == 0 and "re-screened 80 respondent(s)" in out

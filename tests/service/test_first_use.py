@@ -10,7 +10,7 @@ import stat
 
 import pytest
 
-from service import jobs, nightly
+from service import ingest, nightly
 from service.cli import main
 from service.db import make_engine
 
@@ -126,7 +126,7 @@ def test_ingest_replies_carry_the_caution_and_can_leave_out_verdict_and_score(se
                                 headers=service.auth(service.ingest))
     assert reply.status_code == 201
     body = reply.json()
-    assert body["caution"] == jobs.INGEST_CAUTION
+    assert body["caution"] == ingest.INGEST_CAUTION
     assert {"verdict", "careless_score"} <= set(body["results"][0])
 
     change = service.client.patch(BASE, json={"verdict_in_replies": False},
@@ -144,7 +144,7 @@ def test_ingest_replies_carry_the_caution_and_can_leave_out_verdict_and_score(se
     assert reply.status_code == 201
     result = reply.json()["results"][0]
     assert "verdict" not in result and "careless_score" not in result
-    assert "flags" in result and reply.json()["caution"] == jobs.INGEST_CAUTION
+    assert "flags" in result and reply.json()["caution"] == ingest.INGEST_CAUTION
     # Analysts still see everything.
     detail = service.client.get(f"{BASE}/respondents/r2", headers=service.auth(service.analyst))
     assert detail.json()["verdict"] in ("ok", "review", "likely_careless")

@@ -9,12 +9,20 @@ import numpy as np
 from sqlalchemy import func, select
 
 from detectors import ResponseDataError, ResponseMatrix, parse_instrument, screen
-from service import jobs
+from service import ingest, outcomes, store
+from service.database import Database
+from service.db import make_engine, upgrade
+from service.errors import RespondentConflict, UnknownSurvey
 from service.ingest_queue import IngestQueue
 from service.models import Respondent
-from service.problems import Problem
+from service.problems import from_service
+from service.registration import register_survey
+from service.screeners import screener_for
 
-from .conftest import make_document, random_rows
+from .conftest import body_of, make_document, random_rows, signed_headers
+
+URL = "/v1/surveys/pulse/responses"
+JSON = "application/json"
 
 
 def test_ingest_many_keeps_each_posts_outcome(service, survey, settings):
@@ -22,25 +30,26 @@ def test_ingest_many_keeps_each_posts_outcome(service, survey, settings):
     changed = {**rows[0], "answers": {k: 1 for k in rows[0]["answers"]}}
     bad = {**rows[2], "answers": {**rows[2]["answers"], "q01": 9}}
     submissions = [
-        jobs.Submission("pulse", [rows[0]], jobs.IngestOptions(webhook_id="m1")),
-        jobs.Submission("pulse", [rows[0]]),  # same respondent: waits for the first
-        jobs.Submission("pulse", [bad]),  # invalid: refused alone
-        jobs.Submission("pulse", [rows[1]], jobs.IngestOptions(webhook_id="m1")),  # same id
-        jobs.Submission("nowhere", [rows[3]]),
-        jobs.Submission("pulse", [changed]),  # other answers: waits, then conflicts
+        ingest.Submission("pulse", [rows[0]], ingest.IngestOptions(webhook_id="m1")),
+        ingest.Submission("pulse", [rows[0]]),  # same respondent: waits for the first
+        ingest.Submission("pulse", [bad]),  # invalid: refused alone
+        ingest.Submission("pulse", [rows[1]], ingest.IngestOptions(webhook_id="m1")),  # same id
+        ingest.Submission("nowhere", [rows[3]]),
+        ingest.Submission("pulse", [changed]),  # other answers: waits, then conflicts
     ]
     with service.database.write() as session:
-        results = jobs.ingest_many(session, submissions, settings)
-    assert results[0]["stored"] == 1
-    assert results[1] is jobs.DEFERRED and results[3] is jobs.DEFERRED
-    assert results[5] is jobs.DEFERRED
+        results = ingest.ingest_many(session, submissions, settings)
+    assert results[0].stored == 1
+    assert results[1] is ingest.DEFERRED and results[3] is ingest.DEFERRED
+    assert results[5] is ingest.DEFERRED
     assert isinstance(results[2], ResponseDataError)
-    assert isinstance(results[4], Problem) and results[4].status == 404
+    assert isinstance(results[4], UnknownSurvey) and from_service(results[4]).status == 404
     with service.database.write() as session:
-        again = jobs.ingest_many(session, [submissions[i] for i in (1, 3, 5)], settings)
-    assert again[0]["results"][0]["status"] == "duplicate"
-    assert again[1]["replayed_delivery"] is True  # m1 was accepted in the first round
-    assert isinstance(again[2], Problem) and again[2].status == 409
+        again = ingest.ingest_many(session, [submissions[i] for i in (1, 3, 5)], settings)
+    assert again[0].results[0].status == "duplicate"
+    assert again[1].replayed_delivery is True  # m1 was accepted in the first round
+    assert isinstance(again[2], RespondentConflict)
+    assert from_service(again[2]).status == 409
     with service.database.read() as session:
         assert session.scalar(select(func.count()).select_from(Respondent)) == 1
 
@@ -52,7 +61,7 @@ def test_queue_answers_concurrent_posts_after_commit(service, survey, settings):
     lock = threading.Lock()
 
     def post(row):
-        future = queue.submit(jobs.Submission("pulse", [row]))
+        future = queue.submit(ingest.Submission("pulse", [row]))
         with lock:
             futures.append(future)
 
@@ -63,7 +72,7 @@ def test_queue_answers_concurrent_posts_after_commit(service, survey, settings):
         thread.join(timeout=30)
     replies = [future.result(timeout=60) for future in futures]
     queue.close()
-    statuses = [reply["results"][0]["status"] for reply in replies]
+    statuses = [reply.results[0].status for reply in replies]
     assert statuses.count("stored") == 60 and statuses.count("duplicate") == 10
     with service.database.read() as session:
         assert session.scalar(select(func.count()).select_from(Respondent)) == 60
@@ -78,11 +87,11 @@ def test_stored_evidence_and_sentences_are_the_engines():
     matrix = ResponseMatrix.from_arrays(instrument, values)
     screening = screen(instrument, matrix)
     for name, result in screening.results.items():
-        columns = jobs._evidence_columns(result)
+        columns = outcomes.evidence_columns(result)
         for i in range(len(result)):
             assert columns[i] == result.evidence_for(i), (name, i)
     # The rows the service would insert for these results.
-    stored = jobs.Screened(
+    stored = outcomes.Screened(
         names=list(screening.results),
         versions=[r.version for r in screening.results.values()],
         results=dict(screening.results),
@@ -91,8 +100,56 @@ def test_stored_evidence_and_sentences_are_the_engines():
         sample_names=set(),
         verdicts=screening.verdicts,
     )
-    rows = jobs.outcome_rows(stored, list(range(200)), None)
-    by_key = {(row[1], row[0]): row for row in rows}
+    rows = outcomes.outcome_rows(stored, list(range(200)), None)
+    by_key = {(row.detector, row.respondent_pk): row for row in rows}
     for name, result in screening.results.items():
         for i in range(len(result)):
-            assert by_key[(name, i)][9] == result.sentence_for(i), (name, i)
+            assert by_key[(name, i)].sentence == result.sentence_for(i), (name, i)
+
+
+def test_refused_signatures_and_keys_never_reach_the_writer(service, survey, monkeypatch):
+    submitted = []
+    queue = service.app.state.ingest_queue
+    real_submit = queue.submit
+    monkeypatch.setattr(
+        queue, "submit", lambda submission: submitted.append(submission) or real_submit(submission)
+    )
+    body = body_of(random_rows(1)[0])
+    other = "whsec_" + "QUFBQUFBQUFBQUFBQUFBQUFBQUFBQUFBQUFBQUFBQUE="
+    forged = service.client.post(URL, content=body, headers=signed_headers(other, body))
+    assert forged.status_code == 401 and forged.json()["type"] == "/problems/bad-signature"
+    unknown = service.client.post(
+        "/v1/surveys/nowhere/responses", content=body,
+        headers=signed_headers(survey["webhook_secret"], body),
+    )
+    assert unknown.status_code == 404 and unknown.json()["type"] == "/problems/unknown-survey"
+    analyst = service.client.post(
+        URL, content=body, headers={**service.auth(service.analyst), "content-type": JSON}
+    )
+    assert analyst.status_code == 403
+    assert submitted == []
+    signed = service.client.post(
+        URL, content=body, headers=signed_headers(survey["webhook_secret"], body)
+    )
+    assert signed.status_code == 201 and len(submitted) == 1
+
+
+def test_screeners_belong_to_their_database(tmp_path):
+    # Two databases whose first survey version has the same id but other items.
+    databases = []
+    for n_items in (8, 10):
+        engine = make_engine(f"sqlite:///{tmp_path / f'{n_items}.db'}")
+        upgrade(engine)
+        database = Database(engine)
+        register_survey(database, make_document(n_items=n_items))
+        databases.append(database)
+    try:
+        for database, n_items in zip(databases, (8, 10), strict=True):
+            with database.read() as session:
+                survey = store.get_survey(session, "pulse")
+                screener = screener_for(session, survey.current_version_id)
+                assert len(screener.instrument.item_ids) == n_items
+                assert screener_for(session, survey.current_version_id) is screener
+    finally:
+        for database in databases:
+            database.dispose()

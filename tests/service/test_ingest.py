@@ -9,8 +9,8 @@ import numpy as np
 from sqlalchemy import func, select
 
 from detectors import REGISTRY, ResponseMatrix, parse_instrument, screen
-from service.jobs import NO_REFERENCE
 from service.models import DetectorOutcome, Respondent, ResponseHistory, WebhookDelivery
+from service.outcomes import NO_REFERENCE
 
 from .conftest import body_of, make_document, random_rows, respondent, signed_headers
 

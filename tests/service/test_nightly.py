@@ -13,10 +13,11 @@ import pytest
 from sqlalchemy import text
 
 from detectors import REGISTRY
-from service import jobs, nightly, store
+from service import ingest, nightly, rescreen, store
 from service.cli import main
 from service.database import Database
 from service.db import make_engine, upgrade
+from service.screeners import screener_for
 from service.settings import Settings
 from service.stat_files import read_labelled
 
@@ -40,7 +41,7 @@ def _register(database: Database, document: dict) -> None:
 
 def _ingest(database: Database, settings: Settings, survey: str, rows: list[dict]) -> None:
     with database.write() as session:
-        jobs.ingest(session, store.get_survey(session, survey), rows, jobs.IngestOptions(),
+        ingest.ingest(session, store.get_survey(session, survey), rows, ingest.IngestOptions(),
                     settings)
 
 
@@ -66,7 +67,6 @@ def _state(database: Database, times: bool = True) -> dict[str, list[tuple]]:
 def two_surveys(database_url):
     """A database with two surveys: 'pulse' (8 items, 150 respondents) and 'other' (10
     items, 90 respondents), screened on arrival without a reference sample."""
-    jobs.clear_caches()
     settings = Settings(database_url=database_url, reference_min_respondents=50)
     database = _database(database_url)
     _register(database, make_document(survey="pulse"))
@@ -75,7 +75,6 @@ def two_surveys(database_url):
     _ingest(database, settings, "other", random_rows(90, n_items=10, seed=2, prefix="o"))
     yield database, settings
     database.dispose()
-    jobs.clear_caches()
 
 
 def _run(database, settings, out, **options):
@@ -105,7 +104,7 @@ def test_nightly_rescreens_stale_results_and_writes_files(two_surveys, tmp_path)
             survey = store.get_survey(session, name)
             reference = store.latest_reference(session, survey.current_version_id)
             assert survey.current_reference_id == reference.id
-            screener = jobs.screener_for(session, survey.current_version_id)
+            screener = screener_for(session, survey.current_version_id)
             assert store.count_stale(
                 session, survey.id, [survey.current_version_id], survey.current_version_id,
                 reference.id, screener.fingerprint,
@@ -160,7 +159,7 @@ def test_a_new_detector_version_makes_every_result_stale(two_surveys, tmp_path, 
     database, settings = two_surveys
     _run(database, settings, tmp_path)
     monkeypatch.setattr(REGISTRY["long_string"], "version", "999")
-    jobs.clear_caches()
+    database.memo.clear()  # screeners built afresh, as by a process running the new code
     runs = _run(database, settings, tmp_path)
     assert runs["pulse"].stale == 150 and runs["other"].stale == 90
     assert runs["pulse"].references == []  # the respondents did not change
@@ -179,7 +178,6 @@ def test_respondents_move_to_a_new_version_their_answers_fit(two_surveys, tmp_pa
     _register(database, make_document(survey="pulse", screening={"long_string": {"run_cutoff": 3}}))
     # More items: answers of 'other' do not fit; its respondents stay on version 1.
     _register(database, make_document(n_items=12, survey="other"))
-    jobs.clear_caches()
     runs = _run(database, settings, tmp_path)
     assert runs["pulse"].stale == 150 and runs["other"].stale == 0
     with database.read() as session:
@@ -202,7 +200,6 @@ def test_respondents_move_to_a_new_version_their_answers_fit(two_surveys, tmp_pa
 
 def test_an_interrupted_run_finishes_on_the_next_one(tmp_path, monkeypatch):
     # SQLite files, so the same starting state can be copied.
-    jobs.clear_caches()
     first = tmp_path / "a.db"
     settings = Settings(database_url=f"sqlite:///{first}", reference_min_respondents=50)
     database = _database(settings.database_url)
@@ -217,7 +214,6 @@ def test_an_interrupted_run_finishes_on_the_next_one(tmp_path, monkeypatch):
     expected = _state(whole, times=False)
     whole.dispose()
 
-    jobs.clear_caches()
     broken = _database(f"sqlite:///{second}")
     chunks = []
 
@@ -231,7 +227,7 @@ def test_an_interrupted_run_finishes_on_the_next_one(tmp_path, monkeypatch):
     assert chunks == [40]
     with broken.read() as session:
         survey = store.get_survey(session, "pulse")
-        screener = jobs.screener_for(session, survey.current_version_id)
+        screener = screener_for(session, survey.current_version_id)
         left = store.count_stale(
             session, survey.id, [survey.current_version_id], survey.current_version_id,
             survey.current_reference_id, screener.fingerprint,
@@ -255,7 +251,6 @@ def test_a_failing_survey_exits_non_zero_while_the_others_complete(two_surveys, 
             {"doc": json.dumps({"survey": "other", "response_format": {"points": 5},
                                 "items": []})},
         )
-    jobs.clear_caches()
     code = main(["nightly", "--out", str(tmp_path), "--database", database_url])
     captured = capsys.readouterr()
     assert code == 1
@@ -303,14 +298,14 @@ def test_a_respondent_replaced_during_the_run_is_left_alone(two_surveys, tmp_pat
     database, settings = two_surveys
     with database.read() as session:
         survey = store.get_survey(session, "pulse")
-        [target] = jobs.screening_targets(session, survey)
-        stored = jobs.read_stored(session, survey.id, target)
+        [target] = rescreen.screening_targets(session, survey)
+        stored = rescreen.read_stored(session, survey.id, target)
     new = random_rows(1, seed=77, prefix="r")[0]  # same id as the first, other answers
     with database.write() as session:
-        jobs.ingest(session, store.get_survey(session, "pulse"), [new],
-                    jobs.IngestOptions(replace=True), settings)
+        ingest.ingest(session, store.get_survey(session, "pulse"), [new],
+                    ingest.IngestOptions(replace=True), settings)
     with database.write() as session:
-        count = jobs.rescreen_rows(
+        count = rescreen.rescreen_rows(
             session, target.screener, stored, np.arange(len(stored)), None, None,
             dt.datetime.now(dt.UTC),
         )
@@ -323,8 +318,8 @@ def test_stored_matrix_matches_the_posted_answers(two_surveys):
     rows = random_rows(150, seed=1)
     with database.read() as session:
         survey = store.get_survey(session, "pulse")
-        [target] = jobs.screening_targets(session, survey)
-        stored = jobs.read_stored(session, survey.id, target, chunk=33)
+        [target] = rescreen.screening_targets(session, survey)
+        stored = rescreen.read_stored(session, survey.id, target, chunk=33)
     items = [f"q{i + 1:02d}" for i in range(8)]
     expected = np.array(
         [[-128 if r["answers"][q] is None else r["answers"][q] for q in items] for r in rows]

@@ -12,7 +12,7 @@ from sqlalchemy import text
 from detectors import REGISTRY, matrix_from_frame, parse_instrument
 from detectors.planting import KINDS
 from detectors.reliability import cronbach_alpha, keyed_answers
-from service import jobs, store
+from service import rescreen, store
 from service.cli import main
 from service.reports import CAUTION_HEAD
 
@@ -271,8 +271,8 @@ def test_alpha_of_stored_answers_equals_alpha_of_posted_ones(service, survey, mi
     service.client.post(URL, json={"responses": rows}, headers=service.auth(service.ingest))
     with service.database.read() as session:
         found = store.get_survey(session, "pulse")
-        [target] = jobs.screening_targets(session, found)
-        stored = jobs.read_stored(session, found.id, target)
+        [target] = rescreen.screening_targets(session, found)
+        stored = rescreen.read_stored(session, found.id, target)
     posted = np.array(
         [[np.nan if v is None else v for v in r["answers"].values()] for r in rows], dtype=float
     )

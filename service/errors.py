@@ -1,0 +1,75 @@
+"""The service's domain errors: what a use case refuses, in the use case's words.
+
+Use cases (``service.ingest``, ``service.rescreen``, ``service.registration``) raise these;
+``service.problems`` alone turns them into RFC 9457 problem documents at the web edge, and
+the command line prints them. ::
+
+    ServiceError
+     ├── UnknownSurvey        no survey registered under this id
+     ├── NoVersion            the survey has no registered version
+     ├── RespondentConflict   respondents already stored with other answers (no replace)
+     └── SignatureRefused     a webhook signature that does not verify
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+__all__ = [
+    "ServiceError",
+    "UnknownSurvey",
+    "NoVersion",
+    "RespondentConflict",
+    "Conflict",
+    "SignatureRefused",
+    "CONFLICT_REASON",
+]
+
+#: Why a respondent of a post was refused as a conflict (the reply's and the problem's words).
+CONFLICT_REASON = (
+    "respondent already stored with different answers; post again with ?replace=true to "
+    "replace them (the earlier answers are kept in history)"
+)
+
+
+class ServiceError(Exception):
+    """Base of the service's domain errors."""
+
+
+class UnknownSurvey(ServiceError):
+    def __init__(self, survey: str):
+        self.survey = survey
+        super().__init__(f"No survey {survey!r} is registered.")
+
+
+class NoVersion(ServiceError):
+    def __init__(self, survey: str):
+        self.survey = survey
+        super().__init__("The survey has no registered version.")
+
+
+@dataclass(frozen=True)
+class Conflict:
+    """One respondent of a post already stored with other answers."""
+
+    position: int  # 0-based position in the post
+    respondent_id: str
+
+    @property
+    def row(self) -> int:
+        return self.position + 1
+
+
+class RespondentConflict(ServiceError):
+    def __init__(self, conflicts: list[Conflict]):
+        self.conflicts = conflicts
+        super().__init__(
+            f"{len(conflicts)} respondent(s) are already stored with different answers; "
+            "nothing was stored."
+        )
+
+
+class SignatureRefused(ServiceError):
+    def __init__(self, reason: str):
+        self.reason = reason
+        super().__init__(f"The webhook signature was refused: {reason}.")

@@ -1,0 +1,622 @@
+"""Ingesting posted responses: the use case behind the webhook, the file import and the demo.
+
+A post's rows are checked against the schema and the survey version's items (problems name
+the row, the respondent and the item), screened together with the other posts of the same
+transaction (``ingest_many``; see ``service.ingest_queue``) and written in bulk. Signatures and
+keys are checked before a post is queued for the writer (:func:`admit_signed`, the routes'
+key check), so a refused post never occupies it. The use case returns :class:`Ingested` and
+raises domain errors (``service.errors``); only the web edge turns them into problems.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from pydantic import TypeAdapter, ValidationError
+from sqlalchemy.orm import Session
+
+from detectors import MISSING, ResponseDataError, ResponseMatrix, ResponseProblem
+
+from . import store
+from .db import utcnow
+from .errors import (
+    CONFLICT_REASON,
+    Conflict,
+    NoVersion,
+    RespondentConflict,
+    ServiceError,
+    SignatureRefused,
+    UnknownSurvey,
+)
+from .models import Survey
+from .outcomes import Summary, outcome_rows, screen_matrix
+from .schemas import ResponseIn
+from .screeners import Screener, reference_data, screener_for
+from .security import WebhookRejected, verify_webhook
+from .settings import Settings
+
+__all__ = [
+    "BodyFieldProblem",
+    "INGEST_CAUTION",
+    "Checked",
+    "check_rows",
+    "seconds_taken",
+    "answers_digest",
+    "IngestOptions",
+    "Submission",
+    "DEFERRED",
+    "Ingested",
+    "RespondentOutcome",
+    "RejectedRow",
+    "ingest",
+    "ingest_many",
+    "admit_signed",
+]
+
+_ROWS = TypeAdapter(list[ResponseIn])
+_ROW = TypeAdapter(ResponseIn)
+
+
+# Checking posted rows ----------------------------------------------------------------------------
+
+
+@dataclass
+class Checked:
+    """The valid rows of a post as a matrix, and the problems of the others."""
+
+    rows: list[ResponseIn]
+    positions: list[int]  # 0-based position in the post of each valid row
+    matrix: ResponseMatrix
+    problems: list[ResponseProblem]
+    bad_positions: set[int] = field(default_factory=set)
+
+
+@dataclass(frozen=True)
+class BodyFieldProblem(ResponseProblem):
+    """A problem with a top-level field of a posted response (not an item of ``answers``),
+    so that its JSON pointer names the field itself."""
+
+
+def _schema_problems(
+    raw_rows: Sequence[Any],
+) -> tuple[dict[int, ResponseIn], list[ResponseProblem]]:
+    try:
+        return dict(enumerate(_ROWS.validate_python(raw_rows))), []
+    except ValidationError:
+        pass
+    good: dict[int, ResponseIn] = {}
+    problems: list[ResponseProblem] = []
+    for position, raw in enumerate(raw_rows):
+        try:
+            good[position] = _ROW.validate_python(raw)
+        except ValidationError as error:
+            rid = raw.get("respondent_id") if isinstance(raw, dict) else None
+            rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
+            for entry in error.errors():
+                loc = [str(p) for p in entry["loc"]]
+                if loc and loc[0] == "answers" and len(loc) > 1:
+                    problems.append(ResponseProblem(position + 1, rid, loc[1], entry["msg"]))
+                else:
+                    column = loc[0] if loc else None
+                    problems.append(BodyFieldProblem(position + 1, rid, column, entry["msg"]))
+    return good, problems
+
+
+def _answer_problems(
+    screener: Screener, position: int, respondent_id: str | None, answers: dict[str, Any]
+) -> list[ResponseProblem]:
+    """Unknown items and answers out of range in one row's answers (its type errors are
+    reported by the schema), so that a row failing the schema still has every problem listed."""
+    index, instrument = screener.item_index, screener.instrument
+    problems = []
+    for item, value in answers.items():
+        if item not in index:
+            problems.append(
+                ResponseProblem(
+                    position + 1, respondent_id, item,
+                    f"unknown item: not in version {screener.number} of survey "
+                    f"{instrument.survey!r}",
+                )
+            )
+            continue
+        j = index[item]
+        if isinstance(value, int) and not isinstance(value, bool) and not (
+            instrument.lowest[j] <= value <= instrument.highest[j]
+        ):
+            problems.append(
+                ResponseProblem(
+                    position + 1, respondent_id, item,
+                    f"{value:g} is outside the answer range "
+                    f"{instrument.lowest[j]}..{instrument.highest[j]}",
+                )
+            )
+    return problems
+
+
+def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int) -> Checked:
+    """Validate posted rows against the schema and the survey version's items; build the matrix
+    of the valid ones. Problems name the row (1-based), the respondent and the item."""
+    parsed, problems = _schema_problems(raw_rows)
+    instrument = screener.instrument
+    for position, raw in enumerate(raw_rows):
+        if position in parsed or not isinstance(raw, dict):
+            continue
+        answers = raw.get("answers")
+        if isinstance(answers, dict):
+            rid = raw.get("respondent_id")
+            rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
+            problems.extend(
+                _answer_problems(screener, position, rid, {str(k): v for k, v in answers.items()})
+            )
+    seen: dict[str, int] = {}
+    for position, row in parsed.items():
+        unknown = dict.fromkeys(sorted(row.answers.keys() - screener.item_index.keys()))
+        problems.extend(_answer_problems(screener, position, row.respondent_id, unknown))
+        if row.meta is not None and max_meta_bytes >= 0:
+            size = len(json.dumps(row.meta, separators=(",", ":")).encode("utf-8"))
+            if size > max_meta_bytes:
+                problems.append(
+                    ResponseProblem(
+                        position + 1, row.respondent_id, "meta",
+                        f"meta is {size} bytes as JSON; at most {max_meta_bytes} are accepted",
+                    )
+                )
+        if row.respondent_id in seen:
+            first = seen[row.respondent_id]
+            for where in (first, position):
+                problems.append(
+                    ResponseProblem(
+                        where + 1, row.respondent_id, "respondent_id",
+                        f"respondent id appears more than once in this post (rows {first + 1} "
+                        f"and {position + 1})",
+                    )
+                )
+        else:
+            seen[row.respondent_id] = position
+    positions = sorted(parsed)
+    rows = [parsed[p] for p in positions]
+    items = instrument.item_ids
+    values = np.array(
+        [[row.answers.get(item) for item in items] for row in rows], dtype=np.float64
+    ).reshape(len(rows), len(items))
+    present = ~np.isnan(values)
+    outside = present & ((values < instrument.lowest) | (values > instrument.highest))
+    for r, j in zip(*np.nonzero(outside), strict=True):
+        problems.append(
+            ResponseProblem(
+                positions[r] + 1,
+                rows[r].respondent_id,
+                items[j],
+                f"{values[r, j]:g} is outside the answer range "
+                f"{instrument.lowest[j]}..{instrument.highest[j]}",
+            )
+        )
+    values[~present | outside] = MISSING
+    bad = {p.row - 1 for p in problems if p.row is not None}
+    keep = np.array([p not in bad for p in positions], dtype=bool)
+    durations = np.array([seconds_taken(row) for row in rows], dtype=np.float64)
+    matrix = ResponseMatrix(
+        respondent_ids=np.array([row.respondent_id for row in rows], dtype=object)[keep],
+        answers=values.astype(np.int8)[keep],
+        durations=durations[keep],
+    )
+    problems.sort(key=lambda p: (p.row or 0))
+    return Checked(
+        rows=[row for row, k in zip(rows, keep.tolist(), strict=True) if k],
+        positions=[p for p, k in zip(positions, keep.tolist(), strict=True) if k],
+        matrix=matrix,
+        problems=problems,
+        bad_positions=bad,
+    )
+
+
+def seconds_taken(row: Any) -> float:
+    """The response's duration: ``duration_seconds`` when given, else ``submitted_at -
+    started_at`` when both are known (NaN when neither, or when the difference is negative)."""
+    if row.duration_seconds is not None:
+        return row.duration_seconds
+    if row.started_at is None or row.submitted_at is None:
+        return np.nan
+    seconds = (row.submitted_at - row.started_at).total_seconds()
+    return seconds if seconds >= 0 else np.nan
+
+
+def answers_digest(answers: Mapping[str, int | None]) -> str:
+    """Digest of the answered items only: an explicit null and an absent item are the same."""
+    return store.canonical_digest({k: v for k, v in answers.items() if v is not None})
+
+
+# Ingestion -------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class IngestOptions:
+    replace: bool = False
+    partial: bool = False
+    webhook_id: str | None = None
+
+
+@dataclass
+class Submission:
+    """One post to ingest: the survey id, its decoded rows and options. Keys and signatures are
+    checked before a submission is made (see :func:`admit_signed`)."""
+
+    survey: str
+    rows: Sequence[Any]
+    options: IngestOptions = field(default_factory=IngestOptions)
+
+
+class Deferred:
+    """Result of a submission that touches a respondent claimed by an earlier submission of the
+    same call: process it again after the others are committed."""
+
+
+DEFERRED = Deferred()
+
+
+@dataclass(frozen=True, slots=True)
+class RespondentOutcome:
+    """What happened to one respondent of a post."""
+
+    respondent_id: str
+    status: str  # stored, replaced or duplicate
+    summary: Summary | None  # None: a duplicate of a delivery whose respondent is gone
+    not_assessed: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class RejectedRow:
+    """A row left out of a partial post, with every problem found in it."""
+
+    row: int  # 1-based position in the post
+    respondent_id: str | None
+    problems: tuple[tuple[str | None, str], ...]  # (item or field, reason)
+
+
+#: Carried by every ingest reply: the survey platform reads it, and it is the component most
+#: likely to act on a reply without a person (cancel a complete, withhold an incentive).
+INGEST_CAUTION = (
+    "Flags, verdicts and careless scores are evidence for a human reviewer's decision, not a "
+    "verdict on a person. Do not cancel a complete, withhold an incentive or exclude anyone "
+    "automatically on this reply; have a person read the evidence and record a review."
+)
+
+
+@dataclass
+class Ingested:
+    """What one post did."""
+
+    survey: str
+    version: int
+    received: int
+    stored: int
+    replaced: int
+    duplicates: int
+    replayed_delivery: bool
+    rejected: list[RejectedRow]
+    results: list[RespondentOutcome]
+    #: Whether the reply carries verdicts and careless scores (the survey's setting).
+    verdict_in_replies: bool = True
+
+    def reply(self) -> dict[str, Any]:
+        """The reply in the documented shape (``schemas.IngestReply``)."""
+        results = []
+        for outcome in self.results:
+            summary = outcome.summary
+            flags = list(summary.flags) if summary is not None else []
+            result: dict[str, Any] = {
+                "respondent_id": outcome.respondent_id, "status": outcome.status,
+                "flag_count": len(flags), "flags": flags,
+            }
+            if self.verdict_in_replies:
+                result["verdict"] = None if summary is None else summary.verdict.value
+                result["careless_score"] = None if summary is None else summary.careless_score
+            result["not_assessed"] = list(outcome.not_assessed)
+            results.append(result)
+        return {
+            "caution": INGEST_CAUTION,
+            "survey": self.survey,
+            "version": self.version,
+            "received": self.received,
+            "stored": self.stored,
+            "replaced": self.replaced,
+            "duplicates": self.duplicates,
+            "replayed_delivery": self.replayed_delivery,
+            "rejected": [
+                {
+                    "row": r.row,
+                    "respondent_id": r.respondent_id,
+                    "problems": [{"item": item, "reason": reason} for item, reason in r.problems],
+                }
+                for r in self.rejected
+            ],
+            "results": results,
+        }
+
+
+@dataclass
+class _Plan:
+    index: int
+    survey: Survey
+    screener: Screener
+    checked: Checked
+    options: IngestOptions
+    ids: list[str]
+    digests: list[str]
+    replayed: bool = False
+    new: list[int] = field(default_factory=list)
+    replaced: list[int] = field(default_factory=list)
+    duplicates: list[int] = field(default_factory=list)
+    rejected: list[RejectedRow] = field(default_factory=list)
+    outcome: dict[int, RespondentOutcome] = field(default_factory=dict)
+
+
+def admit_signed(
+    session: Session,
+    survey: str,
+    signature: tuple[str | None, str | None, str | None],
+    body: bytes,
+    settings: Settings,
+) -> Survey:
+    """The survey of a signed delivery whose Standard Webhooks signature (``webhook-id``,
+    ``webhook-timestamp``, ``webhook-signature``) verifies under its secret, or its previous
+    one within the rotation's grace period. Raises ``UnknownSurvey`` or ``SignatureRefused``."""
+    found = store.get_survey(session, survey)
+    if found is None:
+        raise UnknownSurvey(survey)
+    candidates = [found.webhook_secret]
+    now = dt.datetime.now(dt.UTC)
+    if found.previous_webhook_secret and found.previous_secret_until and (
+        found.previous_secret_until > now
+    ):
+        candidates.append(found.previous_webhook_secret)
+    try:
+        verify_webhook(candidates, *signature, body, settings.webhook_tolerance_seconds)
+    except WebhookRejected as error:
+        raise SignatureRefused(error.reason) from None
+    return found
+
+
+def ingest(
+    session: Session,
+    survey: Survey,
+    raw_rows: Sequence[Any],
+    options: IngestOptions,
+    settings: Settings,
+) -> Ingested:
+    """Check, screen and store one post's responses.
+
+    Raises ``ResponseDataError`` (any invalid row of an all-or-nothing post) or
+    ``RespondentConflict`` (a respondent already stored with other answers, without
+    ``replace``). The caller commits; nothing is written when this raises.
+    """
+    [result] = ingest_many(session, [Submission(survey.survey, raw_rows, options)], settings)
+    if isinstance(result, BaseException):
+        raise result
+    assert isinstance(result, Ingested)
+    return result
+
+
+def ingest_many(
+    session: Session, submissions: Sequence[Submission], settings: Settings
+) -> list[Ingested | BaseException | Deferred]:
+    """Ingest several posts in the caller's transaction, screening their respondents together.
+
+    Returns, per submission, what it did, the exception that refused it (a ``ServiceError``
+    or a ``ResponseDataError``; a refused submission writes nothing), or :data:`DEFERRED`.
+    Everything is checked before anything is written, so committing stores exactly the
+    accepted submissions.
+    """
+    results: list[Ingested | BaseException | Deferred] = [DEFERRED] * len(submissions)
+    surveys: dict[str, Survey | None] = {}
+    plans: list[_Plan] = []
+    for index, submission in enumerate(submissions):
+        try:
+            if submission.survey not in surveys:
+                surveys[submission.survey] = store.get_survey(session, submission.survey)
+            survey = surveys[submission.survey]
+            if survey is None:
+                raise UnknownSurvey(submission.survey)
+            if survey.current_version_id is None:
+                raise NoVersion(submission.survey)
+            screener = screener_for(session, survey.current_version_id)
+            checked = check_rows(screener, submission.rows, settings.max_meta_bytes)
+            if checked.problems and not submission.options.partial:
+                raise ResponseDataError(checked.problems)
+        except (ServiceError, ResponseDataError) as error:
+            results[index] = error
+            continue
+        ids = [row.respondent_id for row in checked.rows]
+        plans.append(
+            _Plan(
+                index=index, survey=survey, screener=screener, checked=checked,
+                options=submission.options, ids=ids,
+                digests=[answers_digest(row.answers) for row in checked.rows],
+            )
+        )
+
+    # Replayed webhook ids and stored respondents, one query per survey.
+    seen_deliveries: dict[int, set[str]] = {}
+    existing: dict[int, dict[str, Any]] = {}
+    for survey_id in {plan.survey.id for plan in plans}:
+        mine = [plan for plan in plans if plan.survey.id == survey_id]
+        webhook_ids = [p.options.webhook_id for p in mine if p.options.webhook_id is not None]
+        seen_deliveries[survey_id] = store.deliveries_seen(session, survey_id, webhook_ids)
+        existing[survey_id] = store.existing_respondents(
+            session, survey_id, sorted({rid for p in mine for rid in p.ids})
+        )
+
+    claimed: set[tuple[int, str]] = set()
+    claimed_deliveries: set[tuple[int, str]] = set()
+    accepted: list[_Plan] = []
+    for plan in plans:
+        survey_id = plan.survey.id
+        webhook_id = plan.options.webhook_id
+        if webhook_id is not None and (survey_id, webhook_id) in claimed_deliveries:
+            continue  # the same delivery twice in one call: the second waits (a replay)
+        if any((survey_id, rid) in claimed for rid in plan.ids):
+            continue  # deferred until the earlier submission is committed
+        plan.replayed = webhook_id is not None and webhook_id in seen_deliveries[survey_id]
+        stored_rows = existing[survey_id]
+        conflicts = []
+        for i, (rid, digest) in enumerate(zip(plan.ids, plan.digests, strict=True)):
+            stored = stored_rows.get(rid)
+            if stored is None:
+                (plan.duplicates if plan.replayed else plan.new).append(i)
+            elif plan.replayed or stored.answers_digest == digest:
+                plan.duplicates.append(i)
+            elif plan.options.replace:
+                plan.replaced.append(i)
+            else:
+                conflicts.append(i)
+        plan.rejected = _rejected_rows(plan.checked)
+        if conflicts:
+            positions = plan.checked.positions
+            if not plan.options.partial:
+                results[plan.index] = RespondentConflict(
+                    [Conflict(positions[i], plan.ids[i]) for i in conflicts]
+                )
+                continue
+            plan.rejected.extend(
+                RejectedRow(positions[i] + 1, plan.ids[i], (("respondent_id", CONFLICT_REASON),))
+                for i in conflicts
+            )
+            plan.rejected.sort(key=lambda r: r.row)
+        claimed.update((survey_id, plan.ids[i]) for i in plan.new + plan.replaced)
+        if webhook_id is not None:
+            claimed_deliveries.add((survey_id, webhook_id))
+        accepted.append(plan)
+
+    now = utcnow()
+    by_version: dict[tuple[int, int], list[_Plan]] = {}
+    for plan in accepted:
+        by_version.setdefault((plan.survey.id, plan.screener.version_id), []).append(plan)
+    for group in by_version.values():
+        _store_group(session, group, existing[group[0].survey.id], now)
+
+    waiting_pks = [
+        existing[plan.survey.id][plan.ids[i]].id
+        for plan in accepted
+        for i in plan.duplicates
+        if plan.ids[i] in existing[plan.survey.id]
+    ]
+    waiting = store.not_assessed_of(session, waiting_pks) if waiting_pks else {}
+    deliveries = []
+    for plan in accepted:
+        stored_rows = existing[plan.survey.id]
+        for i in plan.duplicates:
+            stored = stored_rows.get(plan.ids[i])
+            plan.outcome[i] = RespondentOutcome(
+                plan.ids[i],
+                "duplicate",
+                None if stored is None else Summary.stored(
+                    stored.flags, stored.verdict, stored.careless_score
+                ),
+                () if stored is None else tuple(waiting.get(stored.id, [])),
+            )
+        if plan.options.webhook_id is not None and not plan.replayed:
+            deliveries.append(
+                {"survey_id": plan.survey.id, "webhook_id": plan.options.webhook_id,
+                 "received_at": now}
+            )
+        results[plan.index] = _ingested(plan, len(submissions[plan.index].rows))
+    store.record_deliveries(session, deliveries)
+    return results
+
+
+def _store_group(
+    session: Session, plans: list[_Plan], stored_rows: dict[str, Any], now: dt.datetime
+) -> None:
+    """Screen the new and replaced respondents of plans sharing a survey version, together,
+    and write them in bulk."""
+    parts = [(plan, sorted(plan.new + plan.replaced)) for plan in plans]
+    parts = [(plan, rows) for plan, rows in parts if rows]
+    if not parts:
+        return
+    survey, screener = parts[0][0].survey, parts[0][0].screener
+    reference_id = survey.current_reference_id
+    reference = reference_data(session, reference_id)
+    used_reference = reference_id if reference is not None else None
+    matrices = [plan.checked.matrix.take(np.array(rows, dtype=np.intp)) for plan, rows in parts]
+    matrix = ResponseMatrix(
+        respondent_ids=np.concatenate([m.respondent_ids for m in matrices]),
+        answers=np.concatenate([m.answers for m in matrices]),
+        durations=np.concatenate([m.durations for m in matrices]),
+    )
+    screened = screen_matrix(screener, matrix, reference)
+    new_values, old_values, pks_in_order = [], [], []
+    new_positions = []
+    k = 0
+    for plan, rows in parts:
+        replaced = set(plan.replaced)
+        for i in rows:
+            row = plan.checked.rows[i]
+            summary = screened.summary(k)
+            values = {
+                "survey_version_id": screener.version_id,
+                "answers": row.answers,
+                "answers_digest": plan.digests[i],
+                "started_at": row.started_at,
+                "submitted_at": row.submitted_at,
+                "duration_seconds": row.duration_seconds,
+                "meta": row.meta,
+                "received_at": now,
+                "screened_at": now,
+                "reference_id": used_reference,
+                "screened_with": screener.fingerprint,
+                **summary.columns(),
+            }
+            if i in replaced:
+                pk = stored_rows[plan.ids[i]].id
+                old_values.append({"pk": pk, **values})
+                pks_in_order.append(pk)
+            else:
+                new_values.append(
+                    {"survey_id": survey.id, "respondent_id": row.respondent_id, **values}
+                )
+                new_positions.append(len(pks_in_order))
+                pks_in_order.append(None)
+            plan.outcome[i] = RespondentOutcome(
+                plan.ids[i],
+                "replaced" if i in replaced else "stored",
+                summary,
+                tuple(screened.not_assessed(k)),
+            )
+            k += 1
+    for position, pk in zip(
+        new_positions, store.insert_respondents(session, new_values), strict=True
+    ):
+        pks_in_order[position] = pk
+    store.replace_respondents(session, old_values, now)
+    store.insert_outcomes(session, outcome_rows(screened, pks_in_order, used_reference))
+
+
+def _ingested(plan: _Plan, received: int) -> Ingested:
+    return Ingested(
+        survey=plan.survey.survey,
+        version=plan.screener.number,
+        received=received,
+        stored=len(plan.new),
+        replaced=len(plan.replaced),
+        duplicates=len(plan.duplicates),
+        replayed_delivery=plan.replayed,
+        rejected=plan.rejected,
+        results=[plan.outcome[i] for i in sorted(plan.outcome)],
+        verdict_in_replies=plan.survey.verdict_in_replies,
+    )
+
+
+def _rejected_rows(checked: Checked) -> list[RejectedRow]:
+    by_row: dict[int, tuple[str | None, list[tuple[str | None, str]]]] = {}
+    for p in checked.problems:
+        assert p.row is not None
+        entry = by_row.setdefault(p.row, (p.respondent_id, []))
+        entry[1].append((p.column, p.reason))
+    return [
+        RejectedRow(row, by_row[row][0], tuple(by_row[row][1])) for row in sorted(by_row)
+    ]

@@ -1,0 +1,556 @@
+"""Re-screening stored respondents: ``heedful rescreen`` and the nightly job.
+
+One code path for ``heedful rescreen`` (everyone, a new reference, one transaction) and the
+nightly job (only stale respondents, each chunk its own transaction): both find the screener
+each respondent belongs to (``screening_targets``), read the stored answers in chunks into one
+matrix (``read_stored``) and re-screen and write a chunk with ``rescreen_rows``; the stored
+shape of a result is ``service.outcomes``'.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import io
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from sqlalchemy.orm import Session
+
+from detectors import MISSING, ResponseMatrix, State, fit_references
+from detectors.screening import reference_detectors
+
+from . import store
+from .db import utcnow
+from .ingest import seconds_taken
+from .models import ReferenceSample, Survey
+from .outcomes import Summary, outcome_rows, screen_matrix
+from .screeners import Screener, answers_fit, screener_for, uses_reference
+from .settings import Settings
+
+__all__ = [
+    "RESCREEN_CHUNK",
+    "READ_CHUNK",
+    "Target",
+    "screening_targets",
+    "save_reference",
+    "Stored",
+    "answer_codes",
+    "read_stored",
+    "RescreenCount",
+    "rescreen_rows",
+    "NewReference",
+    "Rescreened",
+    "rescreen",
+]
+
+#: Respondents screened and written per step of a re-screen (bounds memory).
+RESCREEN_CHUNK = 50_000
+#: Respondents read from storage per query while building a matrix (bounds memory).
+READ_CHUNK = 50_000
+
+
+@dataclass
+class Target:
+    """A screener and the survey versions whose respondents are (re-)screened with it: the
+    version itself and older versions whose answers fit it (see :func:`answers_fit`)."""
+
+    screener: Screener
+    sources: list[int] = field(default_factory=list)
+    respondents: int = 0
+    latest_arrival: dt.datetime | None = None
+
+
+def screening_targets(session: Session, survey: Survey) -> list[Target]:
+    """The screeners that the survey's stored respondents are to be screened with now: the
+    current version's for respondents of the current version and of older versions whose
+    answers fit it, the respondent's own version's otherwise."""
+    counts = store.respondent_counts(session, survey.id)
+    current = (
+        screener_for(session, survey.current_version_id)
+        if survey.current_version_id is not None
+        else None
+    )
+    targets: dict[int, Target] = {}
+    for version_id in sorted(counts):
+        screener = screener_for(session, version_id)
+        if current is not None and answers_fit(screener.instrument, current.instrument):
+            screener = current
+        target = targets.setdefault(screener.version_id, Target(screener))
+        n, latest = counts[version_id]
+        target.sources.append(version_id)
+        target.respondents += n
+        if target.latest_arrival is None or (latest is not None and latest > target.latest_arrival):
+            target.latest_arrival = latest
+    return [targets[version_id] for version_id in sorted(targets)]
+
+
+def save_reference(
+    session: Session, screener: Screener, respondents: int, data: dict[str, Any],
+    now: dt.datetime,
+) -> ReferenceSample:
+    sample = ReferenceSample(
+        survey_version_id=screener.version_id, respondents=respondents, data=data, created_at=now
+    )
+    session.add(sample)
+    session.flush()
+    return sample
+
+
+@dataclass(frozen=True, eq=False)
+class Stored:
+    """A target's stored respondents, by id: their answers as a matrix and what their stored
+    results were produced with."""
+
+    pks: np.ndarray  # int64, ascending
+    matrix: ResponseMatrix
+    digests: np.ndarray  # object: answers_digest
+    version_ids: np.ndarray  # int64: survey_version_id
+    reference_ids: np.ndarray  # int64: reference_id, -1 for none
+    screened_with: np.ndarray  # object: fingerprint, None before fingerprints were kept
+
+    def __len__(self) -> int:
+        return len(self.pks)
+
+    def stale(self, screener: Screener, reference_id: int | None) -> tuple[np.ndarray, np.ndarray]:
+        """(stale, rescore): which respondents' results are stale, and which of those were
+        produced by another screener (so every detector's result is rewritten).
+
+        A result is stale when the respondent belongs to an older survey version that the
+        screener's version replaces, when it was produced with another reference sample than
+        ``reference_id`` (or with none), or when its fingerprint differs from the screener's.
+        """
+        rescore = (self.version_ids != screener.version_id) | (
+            self.screened_with != screener.fingerprint
+        )
+        wanted = -1 if reference_id is None else reference_id
+        return rescore | (self.reference_ids != wanted), rescore
+
+
+def answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
+    """int8 answer codes (rows x items) from the stored JSON texts of answers, parsed in one
+    vectorised pass (Arrow's JSON reader); null or absent answers become ``MISSING``."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.json as pa_json
+
+    codes = np.full((len(texts), len(items)), MISSING, dtype=np.int8)
+    if not texts:
+        return codes
+    joined = "\n".join(texts)
+    if joined.count("\n") != len(texts) - 1:  # a document stored over several lines
+        joined = "\n".join(" ".join(text.splitlines()) for text in texts)
+    schema = pa.schema([(item, pa.int64()) for item in items])
+    table = pa_json.read_json(
+        io.BytesIO(joined.encode("utf-8")),
+        read_options=pa_json.ReadOptions(block_size=16 << 20),
+        parse_options=pa_json.ParseOptions(
+            explicit_schema=schema, unexpected_field_behavior="ignore"
+        ),
+    )
+    if table.num_rows != len(texts):
+        raise ValueError(f"{len(texts)} stored answer records gave {table.num_rows} rows")
+    for j, item in enumerate(items):
+        codes[:, j] = pc.fill_null(table.column(item), int(MISSING)).to_numpy()
+    return codes
+
+
+def read_stored(
+    session: Session,
+    survey_id: int,
+    target: Target,
+    chunk: int = READ_CHUNK,
+    progress: Callable[[int], None] | None = None,
+) -> Stored:
+    """Read the target's stored respondents ``chunk`` at a time into one matrix (answers parsed
+    column-wise, durations as ``_seconds_taken`` gives them); ``progress(rows_read)``."""
+    items = target.screener.instrument.item_ids
+    pks, ids, versions, digests, references, withs, durations, answers = ([] for _ in range(8))
+    last = 0
+    while True:
+        rows = store.stored_answer_rows(session, survey_id, target.sources, last, chunk)
+        if not rows:
+            break
+        pk, rid, version, text, digest, seconds, reference, screened_with = zip(*rows, strict=True)
+        block_pks = np.fromiter(pk, dtype=np.int64, count=len(rows))
+        try:
+            answers.append(answer_codes(text, items))
+        except (ValueError, TypeError) as error:  # Arrow's parse errors are ValueErrors
+            raise ValueError(
+                f"the stored answers of respondents {rid[0]!r} to {rid[-1]!r} cannot be read "
+                f"as answer records: {error}"
+            ) from error
+        block_seconds = np.array(seconds, dtype=np.float64)
+        if np.isnan(block_seconds).any():
+            for row in store.timed_rows(session, survey_id, int(block_pks[0]), int(block_pks[-1])):
+                at = np.searchsorted(block_pks, row.id)
+                if at < len(block_pks) and block_pks[at] == row.id:
+                    block_seconds[at] = seconds_taken(row)
+        pks.append(block_pks)
+        ids.extend(rid)
+        versions.append(np.fromiter(version, dtype=np.int64, count=len(rows)))
+        digests.extend(digest)
+        references.append(
+            np.fromiter((-1 if r is None else r for r in reference), np.int64, len(rows))
+        )
+        withs.extend(screened_with)
+        durations.append(block_seconds)
+        last = int(block_pks[-1])
+        if progress is not None:
+            progress(len(ids))
+
+    def stacked(parts: list[np.ndarray], dtype: Any) -> np.ndarray:
+        return np.concatenate(parts) if parts else np.zeros(0, dtype=dtype)
+
+    matrix = ResponseMatrix(
+        respondent_ids=np.array(ids, dtype=object),
+        answers=(
+            np.concatenate(answers) if answers else np.zeros((0, len(items)), dtype=np.int8)
+        ),
+        durations=stacked(durations, np.float64),
+    )
+    return Stored(
+        pks=stacked(pks, np.int64),
+        matrix=matrix,
+        digests=np.array(digests, dtype=object),
+        version_ids=stacked(versions, np.int64),
+        reference_ids=stacked(references, np.int64),
+        screened_with=np.array(withs, dtype=object),
+    )
+
+
+@dataclass
+class RescreenCount:
+    """What re-screening some respondents did."""
+
+    rescreened: int = 0
+    #: Respondents whose result changed (an earlier result kept in the screening history).
+    changed: int = 0
+    #: Respondents left alone: erased, or given new answers, since their answers were read.
+    skipped: int = 0
+    #: Detector results written.
+    results_written: int = 0
+
+    def add(self, other: RescreenCount) -> None:
+        self.rescreened += other.rescreened
+        self.changed += other.changed
+        self.skipped += other.skipped
+        self.results_written += other.results_written
+
+
+@dataclass
+class _Earlier:
+    """One detector's stored results for a chunk of respondents (aligned with the chunk)."""
+
+    present: np.ndarray
+    version: np.ndarray
+    state: np.ndarray
+    flagged: np.ndarray
+    score: np.ndarray
+    cutoff: np.ndarray
+
+
+def _empty_earlier(n: int) -> _Earlier:
+    return _Earlier(
+        present=np.zeros(n, dtype=bool),
+        version=np.full(n, None, dtype=object),
+        state=np.full(n, -1, dtype=np.int8),
+        flagged=np.zeros(n, dtype=bool),
+        score=np.full(n, np.nan),
+        cutoff=np.full(n, np.nan),
+    )
+
+
+def _place(earlier: _Earlier, pks: np.ndarray, rows: Sequence[Sequence[Any]]) -> None:
+    """Put stored results (respondent_pk, version, state, flagged, score, cutoff) at the
+    positions of their respondents in the ascending ``pks``."""
+    if not rows:
+        return
+    pk, version, state, flagged, score, cutoff = zip(*rows, strict=True)
+    found = np.fromiter(pk, dtype=np.int64, count=len(rows))
+    at = np.minimum(np.searchsorted(pks, found), len(pks) - 1)
+    hit = pks[at] == found  # rows of respondents outside the chunk are ignored
+    where = at[hit]
+    earlier.present[where] = True
+    earlier.version[where] = np.array(version, dtype=object)[hit]
+    earlier.state[where] = np.array(state, dtype=np.int8)[hit]
+    earlier.flagged[where] = np.array(flagged, dtype=bool)[hit]
+    earlier.score[where] = np.array(score, dtype=np.float64)[hit]
+    earlier.cutoff[where] = np.array(cutoff, dtype=np.float64)[hit]
+
+
+def _earlier_results(
+    session: Session, pks: np.ndarray, names: Sequence[str]
+) -> dict[str, _Earlier]:
+    """The named detectors' stored results for the (ascending) respondent ``pks``, read as
+    columns along the chunk's id range."""
+    low, high = int(pks[0]), int(pks[-1])
+    out = {}
+    for name in names:
+        out[name] = _empty_earlier(len(pks))
+        _place(out[name], pks, store.outcome_values(session, name, low, high))
+    return out
+
+
+def _earlier_of_some(
+    session: Session, pks: np.ndarray, some: np.ndarray, names: Sequence[str]
+) -> dict[str, _Earlier]:
+    """As :func:`_earlier_results` (aligned with all of ``pks``), filled in only at the
+    positions ``some``: read by id when they are few, along the id range otherwise."""
+    if len(some) * 4 >= len(pks):
+        return _earlier_results(session, pks, names)
+    wanted = pks[some]
+    few = {name: _empty_earlier(len(wanted)) for name in names}
+    by_detector: dict[str, list[tuple]] = {}
+    for row in store.outcome_values_of(session, wanted.tolist(), names):
+        by_detector.setdefault(row[1], []).append((row[0], *row[2:]))
+    for name, rows in by_detector.items():
+        _place(few[name], wanted, rows)
+    out = {}
+    for name, part in few.items():
+        out[name] = _empty_earlier(len(pks))
+        for column in ("present", "version", "state", "flagged", "score", "cutoff"):
+            getattr(out[name], column)[some] = getattr(part, column)
+    return out
+
+
+def rescreen_rows(
+    session: Session,
+    screener: Screener,
+    stored: Stored,
+    positions: np.ndarray,
+    reference_id: int | None,
+    reference: Mapping[str, Any] | None,
+    now: dt.datetime,
+    rescore: np.ndarray | None = None,
+) -> RescreenCount:
+    """Re-screen the stored respondents at ``positions`` (ascending) with ``screener`` against
+    the reference sample ``reference_id``, and write the results in the caller's transaction.
+
+    Every detector's result is rewritten for respondents in ``rescore`` (produced by another
+    screener; by default as ``Stored.stale`` finds). For the others (stale only because of
+    the reference sample) only the reference-based detectors' results are rewritten: the other
+    detectors' results depend only on the answers and the screener, which did not change. As a
+    check, a respondent whose other detectors now raise different flags than stored is
+    rewritten whole. The respondent's summary (flags, verdict, careless score), reference,
+    survey version, screener fingerprint and screening time are always updated. When the
+    result changed (the flags raised, the verdict, or the state of a detector judged both
+    times), the earlier one is kept in the screening history first. Respondents erased or
+    given new answers since ``stored`` was read are left alone.
+    """
+    count = RescreenCount()
+    positions = np.asarray(positions, dtype=np.intp)
+    if rescore is None:
+        rescore = stored.stale(screener, reference_id)[1][positions]
+    pks = stored.pks[positions]
+    summaries_before = store.screening_rows(session, pks.tolist())
+    summary_before = {
+        pk: Summary.stored(row.flags, row.verdict, row.careless_score)
+        for pk, row in summaries_before.items()
+    }
+    unchanged = np.array(
+        [
+            (row := summaries_before.get(pk)) is not None and row.answers_digest == digest
+            for pk, digest in zip(pks.tolist(), stored.digests[positions].tolist(), strict=True)
+        ],
+        dtype=bool,
+    )
+    count.skipped = int((~unchanged).sum())
+    positions, pks, rescore = positions[unchanged], pks[unchanged], rescore[unchanged]
+    n = len(positions)
+    if n == 0:
+        return count
+    screened = screen_matrix(screener, stored.matrix.take(positions), reference)
+    names = screened.names
+    sample = {name for name in names if name in screened.sample_names}
+    # A detector that uses no reference gives a result that depends only on the answers and
+    # the screener, so for a respondent stale only by its reference it is unchanged and stays
+    # stored. As a check, the flags such detectors raise now are compared with the stored
+    # ones; a respondent where they differ is rewritten whole.
+    others = [d for d, name in enumerate(names) if name not in sample]
+    for k in np.flatnonzero(~rescore).tolist():
+        now_flagged = [names[d] for d in others if screened.flags[d, k]]
+        stored_flags = summary_before[int(pks[k])].flags
+        was_flagged = [f for f in stored_flags if f not in sample]
+        if now_flagged != was_flagged:
+            rescore[k] = True
+    earlier = _earlier_results(session, pks, [name for name in names if name in sample])
+    if rescore.any():  # results of the other detectors, where they are rewritten too
+        earlier.update(
+            _earlier_of_some(
+                session, pks, np.flatnonzero(rescore),
+                [name for name in names if name not in sample],
+            )
+        )
+    had_results = ~rescore.copy()
+    state_changed = np.zeros(n, dtype=bool)
+    write: dict[str, np.ndarray] = {}
+    replace_single: list[dict[str, Any]] = []
+    for d, name in enumerate(names):
+        old = earlier.get(name)
+        if old is not None:
+            had_results |= old.present
+            state_changed |= old.present & (old.state != screened.states[d])
+        if name in sample:
+            write[name] = np.arange(n)
+            single = np.flatnonzero(~rescore & old.present)
+            replace_single.extend({"pk": pk, "detector": name} for pk in pks[single].tolist())
+        else:
+            write[name] = np.flatnonzero(rescore)
+    summaries = [screened.summary(k) for k in range(n)]
+    changed = [
+        k for k, pk in enumerate(pks.tolist())
+        if had_results[k] and (
+            state_changed[k]
+            or summary_before[pk].flags != summaries[k].flags
+            or summary_before[pk].verdict != summaries[k].verdict
+        )
+    ]
+    # The history keeps every detector's earlier result; read those not read yet.
+    unread = np.array([k for k in changed if not rescore[k]], dtype=np.intp)
+    if len(unread):
+        other_names = [name for name in names if name not in sample]
+        extra = _earlier_of_some(session, pks, unread, other_names)
+        for name in other_names:
+            if name not in earlier:
+                earlier[name] = extra[name]
+                continue
+            for column in ("present", "version", "state", "flagged", "score", "cutoff"):
+                getattr(earlier[name], column)[unread] = getattr(extra[name], column)[unread]
+    history = []
+    for k in changed:
+        pk = int(pks[k])
+        before = summaries_before[pk]
+        history.append(
+            {
+                "respondent_pk": pk,
+                "survey_version_id": before.survey_version_id,
+                "reference_id": before.reference_id,
+                "screened_at": before.screened_at,
+                "replaced_at": now,
+                **summary_before[pk].columns(),
+                "results": {
+                    name: {
+                        "version": earlier[name].version[k],
+                        "state": State(int(earlier[name].state[k])).label,
+                        "score": (
+                            None if np.isnan(earlier[name].score[k])
+                            else float(earlier[name].score[k])
+                        ),
+                        "flagged": bool(earlier[name].flagged[k]),
+                    }
+                    for name in names
+                    if name in earlier and earlier[name].present[k]
+                },
+            }
+        )
+    store.insert_screening_history(session, history)
+    store.delete_outcomes(session, pks[rescore & had_results].tolist())
+    store.delete_outcome_rows(session, replace_single)
+    rows = outcome_rows(screened, pks.tolist(), reference_id, only=write)
+    store.insert_outcomes(session, rows)
+    store.update_screening(
+        session,
+        [
+            {
+                "pk": pk, **summaries[k].columns(), "reference_id": reference_id,
+                "screened_at": now, "survey_version_id": screener.version_id,
+                "screened_with": screener.fingerprint,
+            }
+            for k, pk in enumerate(pks.tolist())
+        ],
+    )
+    count.rescreened = n
+    count.changed = len(history)
+    count.results_written = len(rows)
+    return count
+
+
+@dataclass(frozen=True)
+class NewReference:
+    """A reference sample estimated by a re-screen."""
+
+    id: int
+    version: int
+    respondents: int
+    detectors: list[str]
+    created_at: dt.datetime
+
+
+@dataclass
+class Rescreened:
+    """What ``rescreen`` did to a survey."""
+
+    survey: str
+    respondents: int
+    references: list[NewReference]
+    #: Version number to why it has no new reference sample.
+    without_reference: dict[str, str]
+
+    def reply(self) -> dict[str, Any]:
+        """The reply in the documented shape (``schemas.RescreenReply``)."""
+        return {
+            "survey": self.survey,
+            "respondents": self.respondents,
+            "references": [
+                {
+                    "id": r.id, "version": r.version, "respondents": r.respondents,
+                    "detectors": list(r.detectors), "created_at": r.created_at,
+                }
+                for r in self.references
+            ],
+            "without_reference": dict(self.without_reference),
+        }
+
+
+def rescreen(session: Session, survey: Survey, settings: Settings) -> Rescreened:
+    """Estimate each screener's reference sample from its stored respondents (when there are
+    enough), then re-score every stored respondent and record the reference it used.
+
+    Respondents of an older survey version whose answers fit the current version (see
+    :func:`answers_fit`) are re-screened with the current version and move to it.
+    """
+    references: list[NewReference] = []
+    without: dict[str, str] = {}
+    total = 0
+    now = utcnow()
+    targets = screening_targets(session, survey)
+    for target in targets:
+        screener = target.screener
+        stored = read_stored(session, survey.id, target)
+        n = len(stored)
+        total += n
+        reference_id: int | None = None
+        reference: Mapping[str, Any] | None = None
+        if uses_reference(screener):
+            if n >= settings.reference_min_respondents:
+                data = fit_references(screener.instrument, stored.matrix)
+                sample = save_reference(session, screener, n, data, now)
+                reference_id, reference = sample.id, data
+                references.append(
+                    NewReference(
+                        sample.id, screener.number, n, reference_detectors(data), now
+                    )
+                )
+            else:
+                without[str(screener.number)] = (
+                    f"{n} stored respondent(s); a reference sample needs at least "
+                    f"{settings.reference_min_respondents} (HEEDFUL_REFERENCE_MIN_RESPONDENTS)"
+                )
+                latest = store.latest_reference(session, screener.version_id)
+                if latest is not None:
+                    reference_id, reference = latest.id, latest.data
+        if screener.version_id == survey.current_version_id:
+            survey.current_reference_id = reference_id
+        everyone = np.arange(n)
+        for start in range(0, n, RESCREEN_CHUNK):
+            part = everyone[start : start + RESCREEN_CHUNK]
+            rescreen_rows(
+                session, screener, stored, part, reference_id, reference, now,
+                rescore=np.ones(len(part), dtype=bool),
+            )
+    if survey.current_version_id not in {t.screener.version_id for t in targets}:
+        survey.current_reference_id = None
+    session.flush()
+    return Rescreened(survey.survey, total, references, without)
