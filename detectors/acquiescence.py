@@ -6,8 +6,6 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
@@ -176,6 +174,9 @@ def _pair_groups(instrument: Instrument, pairs: np.ndarray) -> list[tuple[np.nda
     other): counting all pairs costs a few sums per item instead of one product per pair.
     Connected items that do not form such a group are split into groups of one pair.
     """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
     columns, local = np.unique(pairs, return_inverse=True)
     local = local.reshape(pairs.shape)
     u = len(columns)

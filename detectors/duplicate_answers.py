@@ -6,7 +6,6 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from .instrument import Instrument
@@ -20,6 +19,8 @@ LISTED_RESPONDENTS = 5
 
 def _row_hashes(rows: np.ndarray) -> np.ndarray:
     """A 64-bit hash of each row of an int8 array (equal rows, equal hashes)."""
+    import pandas as pd
+
     width = -(-rows.shape[1] // 8) * 8
     padded = np.zeros((rows.shape[0], width), dtype=np.int8)
     padded[:, : rows.shape[1]] = rows
@@ -38,6 +39,8 @@ def identical_row_groups(rows: np.ndarray) -> np.ndarray:
     n = rows.shape[0]
     if n == 0:
         return np.zeros(0, dtype=np.int64)
+    import pandas as pd
+
     codes, uniques = pd.factorize(_row_hashes(rows))
     codes = codes.astype(np.int64)
     # factorize numbers hashes in order of first appearance: a row opens a new group exactly

@@ -8,7 +8,6 @@ from collections.abc import Iterator, Mapping
 from typing import Any
 
 import numpy as np
-from scipy import special, stats
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states
@@ -484,6 +483,8 @@ class Mahalanobis(Detector):
     def _cutoff_table(self, p: int, n: int) -> np.ndarray:
         """Cut-off by degrees of freedom 0..p (NaN for 0) under the chosen law, for a
         reference estimated on n respondents."""
+        from scipy import stats
+
         df = np.arange(1, p + 1, dtype=np.float64)
         table = np.full(p + 1, np.nan)
         if self.distribution == "chi2":
@@ -497,6 +498,8 @@ class Mahalanobis(Detector):
     def _p_values(
         self, distance: np.ndarray, df: np.ndarray, p: int, n: int
     ) -> np.ndarray:
+        from scipy import special, stats
+
         if self.distribution == "chi2":
             return special.chdtrc(df, distance)  # chi2.sf without the argument checks
         out = stats.f.sf(distance * n * (n - df) / (df * (n - 1) * (n + 1)), df, n - df)

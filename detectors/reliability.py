@@ -25,15 +25,17 @@ Cronbach, L. J. (1951). Coefficient alpha and the internal structure of tests. P
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
-import pandas as pd
 
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 from .scales import MIN_ANSWERED_SHARE, scale_column, scale_scores
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = [
     "MISSING_HANDLING",
@@ -208,6 +210,8 @@ def scale_statistics(
     Alpha is computed on the item answers of the kept respondents, not on the scale scores, so
     respondents without a scale score still count where they answered items (pairwise).
     """
+    import pandas as pd
+
     _check_missing(missing)
     if keep is not None:
         keep = np.asarray(keep, dtype=bool)

@@ -10,12 +10,15 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from functools import cached_property
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
 from .errors import ResponseDataError, ResponseProblem
 from .instrument import Instrument
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = ["MISSING", "ResponseMatrix", "CheckedResponses", "matrix_from_frame"]
 
@@ -83,6 +86,8 @@ class ResponseMatrix:
         durations: np.ndarray | None = None,
     ) -> ResponseMatrix:
         """Build a matrix from a numeric array (NaN = missing), checking codes against the items."""
+        import pandas as pd
+
         values = np.asarray(answers, dtype=np.float64)
         if values.ndim != 2 or values.shape[1] != len(instrument.items):
             raise ValueError(
@@ -139,6 +144,8 @@ def matrix_from_frame(
     CheckedResponses
         The matrix of valid rows, and the rejected rows with their reasons.
     """
+    import pandas as pd
+
     table_problems: list[ResponseProblem] = []
     columns = [str(c) for c in frame.columns]
     if id_column not in columns:

@@ -34,13 +34,16 @@ in scale development. Journal of Applied Psychology, 67(5), 555-561.
 from __future__ import annotations
 
 import re
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = ["scale_scores", "acquiescence_index", "scale_column"]
 
@@ -121,6 +124,8 @@ def scale_scores(
     (Keyed answers 5, 2, 5 average 4.0; the raw mean over the pair, 4.5, is 1.5 above the
     midpoint; centred answers 3.5, 2.5, 3.5 keyed become 3.5, 3.5, 3.5.)
     """
+    import pandas as pd
+
     if not (isinstance(min_answered_share, int | float) and 0 < min_answered_share <= 1):
         raise SettingError(
             "scales", "min_answered_share",

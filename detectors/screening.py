@@ -5,10 +5,9 @@ from __future__ import annotations
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from ._base import DetectorResult, State
 from ._registry import REGISTRY, get_detector
@@ -17,6 +16,9 @@ from .instrument import Instrument
 from .responses import ResponseMatrix
 from .scales import scale_scores
 from .verdict import RANKS_KEY, VERDICTS, Verdicts, assess, rank_tables
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = [
     "Screening",
@@ -168,6 +170,8 @@ class Screening:
 
         A flag is 1 or 0 where the respondent was assessed and empty (<NA>) otherwise.
         """
+        import pandas as pd
+
         columns: dict[str, Any] = {"respondent_id": self.respondent_ids}
         for name, result in self.results.items():
             columns[f"{name}_score"] = result.scores
@@ -190,6 +194,8 @@ class Screening:
 
     def summary(self) -> dict[str, Any]:
         """Counts per detector: flagged, assessed, not assessed and not applicable with reasons."""
+        import pandas as pd
+
         detectors = {}
         for name, result in self.results.items():
             reasons = pd.Series(result.reasons[result.states != State.ASSESSED])

@@ -10,11 +10,10 @@ import argparse
 import json
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from pydantic import ValidationError
-
-from .settings import Settings
+if TYPE_CHECKING:
+    from .settings import Settings
 
 __all__ = ["register", "settings_from", "CommandFailed", "unknown_survey"]
 
@@ -26,6 +25,8 @@ DEFAULT_OPENAPI = Path("openapi") / "openapi.json"
 
 def settings_from(args: argparse.Namespace, **overrides: Any) -> Settings:
     """The environment's settings, with ``--database`` (and other flags) taking precedence."""
+    from .settings import Settings
+
     values = dict(overrides)
     if getattr(args, "database", None):
         values["database_url"] = args.database
@@ -363,6 +364,8 @@ def cmd_openapi(args: argparse.Namespace) -> int:
 
 def _new_sqlite_file(args: argparse.Namespace) -> Path | None:
     """The SQLite file this command would create, when it does not exist yet."""
+    from pydantic import ValidationError
+
     from .db import sqlite_path
 
     try:
@@ -382,6 +385,8 @@ def _guard(func: Any) -> Any:
     that fails leaves no database file behind that it created."""
 
     def run(args: argparse.Namespace) -> int:
+        from pydantic import ValidationError
+
         fresh = _new_sqlite_file(args) if hasattr(args, "database") else None
         code = EXIT_FAILED
         try:
