@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gc
+import importlib
 import json
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -21,6 +22,11 @@ from .schemas import ProblemOut
 from .settings import Settings, get_settings
 
 __all__ = ["create_app", "openapi_document", "prepare_process"]
+
+#: Modules the library imports only where it uses them (so that commands start fast), loaded by
+#: the service before it serves: the first posts do not wait for them, and the collector's
+#: freeze below covers their objects.
+SCREENING_MODULES = ("pandas", "scipy.special", "scipy.stats", "scipy.sparse.csgraph")
 
 DESCRIPTION = """\
 Heedful screens Likert-type survey responses for careless answering and response styles while a
@@ -92,6 +98,8 @@ def prepare_process() -> None:
     out of every later collection; a larger first-generation threshold makes the young
     collections rarer (requests make many short-lived objects).
     """
+    for name in SCREENING_MODULES:
+        importlib.import_module(name)
     gc.collect()
     gc.freeze()
     gc.set_threshold(20_000, 20, 20)
