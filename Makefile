@@ -31,6 +31,7 @@ bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_detectors.py
 	$(BIN)/python tests/benchmarks/bench_screen_cli.py
 	$(BIN)/python tests/benchmarks/bench_service.py
+	$(BIN)/python tests/benchmarks/bench_startup.py
 
 openapi: $(STAMP)
 	$(BIN)/heedful openapi --out openapi/openapi.json
