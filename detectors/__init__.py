@@ -4,6 +4,7 @@ No web or database code lives here; the service and the CLI build on this packag
 """
 
 from ._base import FAMILIES, Detector, DetectorResult, Interval, Options, State
+from ._parsing import load_instrument, parse_instrument
 from ._registry import REGISTRY, get_detector
 from .errors import (
     HeedfulError,
@@ -12,7 +13,7 @@ from .errors import (
     ResponseProblem,
     SettingError,
 )
-from .instrument import Instrument, Item, ResponseFormat, load_instrument, parse_instrument
+from .instrument import Instrument, Item, ResponseFormat
 from .lint import LintNote, lint
 from .responses import MISSING, CheckedResponses, ResponseMatrix, matrix_from_frame
 from .screening import Screening, build_detectors, fit_references, screen

@@ -15,7 +15,7 @@ An instrument is a JSON document of Heedful's own format::
       "screening": {"long_string": {"run_cutoff": 12}}
     }
 
-``Instrument.model_validate`` (or :func:`load_instrument`) checks it and raises
+``Instrument.model_validate`` (or :func:`detectors.load_instrument`) checks it and raises
 :class:`~detectors.errors.InstrumentError` naming every offending field or item.
 Derived per-item arrays (lowest and highest answer, midpoint, keying) are computed once and
 cached, so detectors can work on whole response matrices.
@@ -23,24 +23,18 @@ cached, so detectors can work on whole response matrices.
 
 from __future__ import annotations
 
-import json
 from functools import cached_property
 from itertools import product
-from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
-
-from .errors import FieldProblem, InstrumentError
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 __all__ = [
     "Instrument",
     "Item",
     "ResponseFormat",
     "VerdictPolicy",
-    "load_instrument",
-    "parse_instrument",
 ]
 
 #: Likert items have 2 to 10 points (common practice, no source).
@@ -303,46 +297,3 @@ class Instrument(BaseModel):
     def settings_for(self, detector: str) -> dict[str, Any]:
         """The instrument's own settings for one detector (empty when none)."""
         return dict(self.screening.get(detector, {}))
-
-
-def _field_problems(error: ValidationError) -> list[FieldProblem]:
-    problems = []
-    for entry in error.errors():
-        location = ""
-        for part in entry["loc"]:
-            location += f"[{part}]" if isinstance(part, int) else (f".{part}" if location else str(part))
-        message = entry["msg"].removeprefix("Value error, ")
-        if entry["type"] == "value_error" and not location:
-            # The whole-document check lists "location: message" lines.
-            for line in message.split("\n"):
-                where, _, text = line.partition(": ")
-                problems.append(FieldProblem(where, text) if text else FieldProblem("", line))
-            continue
-        problems.append(FieldProblem(location, message))
-    return problems
-
-
-def parse_instrument(document: Any) -> Instrument:
-    """Validate a decoded JSON document as an instrument; raise InstrumentError on problems."""
-    try:
-        instrument = Instrument.model_validate(document)
-    except ValidationError as error:
-        raise InstrumentError(_field_problems(error)) from None
-    from ._registry import check_screening_section  # late: the registry imports detectors
-
-    check_screening_section(instrument)
-    return instrument
-
-
-def load_instrument(path: str | Path) -> Instrument:
-    """Read and validate an instrument JSON file."""
-    path = Path(path)
-    try:
-        document = json.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise InstrumentError([FieldProblem("", f"no such file: {path}")]) from None
-    except json.JSONDecodeError as error:
-        raise InstrumentError(
-            [FieldProblem("", f"{path} is not valid JSON (line {error.lineno}, column {error.colno}): {error.msg}")]
-        ) from None
-    return parse_instrument(document)

@@ -11,6 +11,8 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
+from .command_support import help_of
+
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 #: ``files.OUTPUT_FORMATS``, repeated so that building the parser imports neither the engine
 #: nor pandas: commands that only touch the database start in a fraction of the time (a test
@@ -342,16 +344,6 @@ def build_parser() -> argparse.ArgumentParser:
 
         service_commands.register(commands)
     return parser
-
-
-def help_of(parser: argparse.ArgumentParser) -> Any:
-    """What a command group does when no command is given: list the commands (exit 2)."""
-
-    def show(_args: argparse.Namespace) -> int:
-        sys.stdout.write(parser.format_help())
-        return EXIT_BAD_INPUT
-
-    return show
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -10,77 +10,26 @@ import argparse
 import json
 import sys
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
-if TYPE_CHECKING:
-    from .settings import Settings
+from .command_support import (
+    EXIT_FAILED,
+    EXIT_OK,
+    CommandFailed,
+    add_database_option,
+    database_named,
+    guard,
+    help_of,
+    open_database,
+    print_error,
+    settings_from,
+    unknown_survey,
+)
 
-__all__ = ["register", "settings_from", "CommandFailed", "unknown_survey"]
-
-EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
+__all__ = ["register", "register_document", "settings_from", "CommandFailed", "unknown_survey"]
 #: Exit code after Ctrl-C (128 + SIGINT, as shells report it).
 EXIT_INTERRUPTED = 130
 DEFAULT_OPENAPI = Path("openapi") / "openapi.json"
-
-
-def settings_from(args: argparse.Namespace, **overrides: Any) -> Settings:
-    """The environment's settings, with ``--database`` (and other flags) taking precedence."""
-    from .settings import Settings
-
-    values = dict(overrides)
-    if getattr(args, "database", None):
-        values["database_url"] = args.database
-    return Settings(**values)
-
-
-class CommandFailed(Exception):
-    """A command cannot go on; the message says why (exit code 2)."""
-
-
-def database_named(args: argparse.Namespace) -> str:
-    """The database a command reads, as messages name it."""
-    from .db import describe_url
-
-    return describe_url(settings_from(args).database_url)
-
-
-def unknown_survey(args: argparse.Namespace, survey: str) -> CommandFailed:
-    return CommandFailed(
-        f"no survey {survey!r} is registered in the database {database_named(args)}; "
-        "`heedful survey list` shows the registered ones, --database URL names another database"
-    )
-
-
-def _database(args: argparse.Namespace, *, create: bool = False):
-    """The database of ``--database`` (else HEEDFUL_DATABASE_URL, else ./heedful.db), at the
-    newest schema. Commands that only read or change stored surveys refuse a SQLite file that
-    is not there instead of creating an empty one."""
-    from .database import Database
-    from .db import make_engine, sqlite_path, upgrade
-
-    url = settings_from(args).database_url
-    path = sqlite_path(url)
-    if not create and path is not None and not path.exists():
-        raise CommandFailed(
-            f"no database at {path} (database URL {url}): name the database with --database "
-            "URL or HEEDFUL_DATABASE_URL (the demo's is sqlite:///demo/heedful.db), or create "
-            "one with `heedful db upgrade`"
-        )
-    engine = make_engine(url)
-    upgrade(engine)
-    return Database(engine)
-
-
-def _add_database(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "--database", metavar="URL",
-        help="database URL (default: HEEDFUL_DATABASE_URL, else sqlite:///./heedful.db)",
-    )
-
-
-def _error(message: str) -> int:
-    print(f"error: {message}", file=sys.stderr)
-    return EXIT_BAD_INPUT
 
 
 # serve / db ---------------------------------------------------------------------------------------
@@ -127,12 +76,12 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
     from . import store
     from .models import Role
 
-    database = _database(args, create=True)
+    database = open_database(args, create=True)
     try:
         with database.write() as session:
             token = store.create_key(session, args.name, Role(args.role))
     except IntegrityError:
-        return _error(f"a key named {args.name!r} already exists")
+        return print_error(f"a key named {args.name!r} already exists")
     finally:
         database.dispose()
     print(f"Created {args.role} key {args.name!r}. The token is shown once; store it now:")
@@ -143,7 +92,7 @@ def cmd_keys_create(args: argparse.Namespace) -> int:
 def cmd_keys_list(args: argparse.Namespace) -> int:
     from . import store
 
-    database = _database(args)
+    database = open_database(args)
     with database.read() as session:
         keys = store.list_keys(session)
     database.dispose()
@@ -157,12 +106,12 @@ def cmd_keys_list(args: argparse.Namespace) -> int:
 def cmd_keys_revoke(args: argparse.Namespace) -> int:
     from . import store
 
-    database = _database(args)
+    database = open_database(args)
     with database.write() as session:
         found = store.revoke_key(session, args.name)
     database.dispose()
     if not found:
-        return _error(f"no key named {args.name!r}")
+        return print_error(f"no key named {args.name!r}")
     print(f"revoked key {args.name!r}")
     return EXIT_OK
 
@@ -190,13 +139,13 @@ def cmd_survey_register(args: argparse.Namespace) -> int:
     try:
         document = json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
-        return _error(f"no such file: {path}")
+        return print_error(f"no such file: {path}")
     except json.JSONDecodeError as error:
-        return _error(f"{path} is not valid JSON (line {error.lineno}): {error.msg}")
+        return print_error(f"{path} is not valid JSON (line {error.lineno}): {error.msg}")
     from detectors import parse_instrument
 
     parse_instrument(document)  # an invalid document fails before any database is touched
-    database = _database(args, create=True)
+    database = open_database(args, create=True)
     try:
         reply = register_document(database, document)
     finally:
@@ -212,7 +161,7 @@ def cmd_survey_register(args: argparse.Namespace) -> int:
 def cmd_survey_list(args: argparse.Namespace) -> int:
     from . import store
 
-    database = _database(args)
+    database = open_database(args)
     with database.read() as session:
         rows = store.list_surveys(session)
     database.dispose()
@@ -225,7 +174,7 @@ def cmd_survey_list(args: argparse.Namespace) -> int:
 def cmd_survey_show(args: argparse.Namespace) -> int:
     from . import store
 
-    database = _database(args)
+    database = open_database(args)
     with database.read() as session:
         survey = store.get_survey(session, args.survey)
         if survey is None:
@@ -252,7 +201,7 @@ def cmd_survey_show(args: argparse.Namespace) -> int:
 def cmd_survey_set(args: argparse.Namespace) -> int:
     from . import store
 
-    database = _database(args)
+    database = open_database(args)
     try:
         with database.write() as session:
             survey = store.get_survey(session, args.survey)
@@ -272,7 +221,7 @@ def cmd_rescreen(args: argparse.Namespace) -> int:
     from .rescreen import rescreen
 
     settings = settings_from(args)
-    database = _database(args)
+    database = open_database(args)
     try:
         with database.write() as session:
             survey = store.get_survey(session, args.survey)
@@ -307,7 +256,7 @@ def cmd_nightly(args: argparse.Namespace) -> int:
             )
         print(f"warning: {WITHOUT_FLAGGED_CAUTION}", file=sys.stderr, flush=True)
     settings = settings_from(args)
-    database = _database(args)
+    database = open_database(args)
 
     def report(run: Any) -> None:
         print(run.line(), file=sys.stderr if run.failed else sys.stdout, flush=True)
@@ -337,7 +286,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     from .files import write_atomic
     from .reports import build_report
 
-    database = _database(args)
+    database = open_database(args)
     try:
         with database.read() as session:
             survey = store.get_survey(session, args.survey)
@@ -362,70 +311,24 @@ def cmd_openapi(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _new_sqlite_file(args: argparse.Namespace) -> Path | None:
-    """The SQLite file this command would create, when it does not exist yet."""
-    from pydantic import ValidationError
-
-    from .db import sqlite_path
-
-    try:
-        path = sqlite_path(settings_from(args).database_url)
-    except ValidationError:
-        return None
-    return path if path is not None and not path.exists() else None
-
-
-def _remove_database_files(path: Path) -> None:
-    for suffix in ("", "-wal", "-shm", "-journal"):
-        Path(f"{path}{suffix}").unlink(missing_ok=True)
-
-
-def _guard(func: Any) -> Any:
-    """Bad settings (e.g. an unsupported database URL) are bad input: exit code 2. A command
-    that fails leaves no database file behind that it created."""
-
-    def run(args: argparse.Namespace) -> int:
-        from pydantic import ValidationError
-
-        fresh = _new_sqlite_file(args) if hasattr(args, "database") else None
-        code = EXIT_FAILED
-        try:
-            code = func(args)
-            return code
-        except ValidationError as error:
-            first = error.errors()[0]
-            where = ".".join(str(p) for p in first["loc"])
-            code = _error(f"invalid setting {where}: {first['msg']}")
-            return code
-        except CommandFailed as error:
-            code = _error(str(error))
-            return code
-        finally:
-            if fresh is not None and code != EXIT_OK:
-                _remove_database_files(fresh)
-
-    return run
-
-
 # the parsers ------------------------------------------------------------------------------------
 
 
 def register(subparsers: Any) -> None:
     """Add the service's subcommands to ``heedful``'s argument parser."""
-    from .cli import help_of
     p = subparsers.add_parser("serve", help="run the screening web service")
     p.add_argument("--host", help="address to listen on (default: HEEDFUL_HOST, else 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default: HEEDFUL_PORT, else 8000)")
     p.add_argument("--access-log", action="store_true", help="log every request line")
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_serve))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_serve))
 
     p = subparsers.add_parser("db", help="manage the service's database")
     db = p.add_subparsers(dest="db_command", metavar="ACTION")
     p.set_defaults(func=help_of(p))
     q = db.add_parser("upgrade", help="create or upgrade the schema (Alembic migrations)")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_db_upgrade))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_db_upgrade))
 
     p = subparsers.add_parser("keys", help="manage API keys")
     keys = p.add_subparsers(dest="keys_command", metavar="ACTION")
@@ -433,30 +336,30 @@ def register(subparsers: Any) -> None:
     q = keys.add_parser("create", help="create a key and print its token once")
     q.add_argument("--role", required=True, choices=["ingest", "analyst", "admin"])
     q.add_argument("--name", required=True, help="unique name, recorded with reviews")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_keys_create))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_keys_create))
     q = keys.add_parser("list", help="list keys (never their tokens)")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_keys_list))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_keys_list))
     q = keys.add_parser("revoke", help="revoke a key by name")
     q.add_argument("name")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_keys_revoke))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_keys_revoke))
 
     p = subparsers.add_parser("survey", help="register and inspect surveys")
     survey = p.add_subparsers(dest="survey_command", metavar="ACTION")
     p.set_defaults(func=help_of(p))
     q = survey.add_parser("register", help="register an instrument (JSON file)")
     q.add_argument("file")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_survey_register))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_survey_register))
     q = survey.add_parser("list", help="list registered surveys")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_survey_list))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_survey_list))
     q = survey.add_parser("show", help="show a survey (with its webhook secret)")
     q.add_argument("survey")
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_survey_show))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_survey_show))
     q = survey.add_parser("set", help="change a survey's settings")
     q.add_argument("survey")
     q.add_argument(
@@ -464,15 +367,15 @@ def register(subparsers: Any) -> None:
         help="whether replies to posted responses carry the verdict and careless score "
         "(no: only flags, for platforms that should not act on them)",
     )
-    _add_database(q)
-    q.set_defaults(func=_guard(cmd_survey_set))
+    add_database_option(q)
+    q.set_defaults(func=guard(cmd_survey_set))
 
     p = subparsers.add_parser(
         "rescreen", help="re-estimate the reference sample and re-score a survey's respondents"
     )
     p.add_argument("--survey", required=True)
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_rescreen))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_rescreen))
 
     from .file_commands import EXPORT_FORMATS, WITHOUT_CHOICES  # light: no storage imports
 
@@ -498,14 +401,14 @@ def register(subparsers: Any) -> None:
         help="confirm that --without flagged should drop flagged respondents without review "
         "(a warning is printed and recorded in nightly.json)",
     )
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_nightly))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_nightly))
 
     p = subparsers.add_parser("report", help="write a survey's screening report (HTML)")
     p.add_argument("--survey", required=True)
     p.add_argument("--out", required=True, metavar="FILE", help="the HTML file to write")
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_report))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_report))
 
     from .file_commands import register_file_commands
 
@@ -515,4 +418,4 @@ def register(subparsers: Any) -> None:
     p.add_argument(
         "--out", default=str(DEFAULT_OPENAPI), help="output file (default: %(default)s)"
     )
-    p.set_defaults(func=_guard(cmd_openapi))
+    p.set_defaults(func=guard(cmd_openapi))

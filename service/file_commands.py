@@ -12,9 +12,20 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from .command_support import (
+    EXIT_BAD_INPUT,
+    EXIT_OK,
+    add_database_option,
+    database_named,
+    guard,
+    open_database,
+    print_error,
+    settings_from,
+    unknown_survey,
+)
+
 __all__ = ["register_file_commands"]
 
-EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 #: Problems printed before "... and N more".
 SHOW_PROBLEMS = 20
 CAUTION = "Flags are evidence for a reviewer's decision, not a verdict on a respondent."
@@ -22,11 +33,6 @@ CAUTION = "Flags are evidence for a reviewer's decision, not a verdict on a resp
 #: parser does not import the export machinery (a test keeps them equal).
 EXPORT_FORMATS = ("csv", "parquet", "sav", "dta")
 WITHOUT_CHOICES = ("excluded", "flagged")
-
-
-def _error(message: str) -> int:
-    print(f"error: {message}", file=sys.stderr)
-    return EXIT_BAD_INPUT
 
 
 def _format_from(out: str, given: str | None) -> str | None:
@@ -41,17 +47,16 @@ def _format_from(out: str, given: str | None) -> str | None:
 
 def cmd_export(args: argparse.Namespace) -> int:
     from . import store
-    from .commands import _database, unknown_survey
     from .exports import write_export
 
     fmt = _format_from(args.out, args.format)
     if fmt is None:
-        return _error(
+        return print_error(
             f"cannot tell the format from {args.out!r}: give --format "
             f"({', '.join(EXPORT_FORMATS)}) or an --out file ending in .csv, .parquet, .sav "
             "or .dta"
         )
-    database = _database(args)
+    database = open_database(args)
     try:
         with database.read() as session:
             survey = store.get_survey(session, args.survey)
@@ -102,16 +107,15 @@ def _print_problems(problems: list[Any], stream: Any) -> None:
 def cmd_import(args: argparse.Namespace) -> int:
     from detectors import ResponseProblem
 
-    from .commands import _database, database_named, settings_from
     from .files import read_table
     from .imports import IMPORT_BATCH, ImportRefused, import_table
 
     batch_size = IMPORT_BATCH if args.batch_size is None else args.batch_size
     if batch_size < 1:
-        return _error("--batch-size must be at least 1")
+        return print_error("--batch-size must be at least 1")
     frame = read_table(args.file, id_column=args.id_column)
     settings = settings_from(args)
-    database = _database(args)
+    database = open_database(args)
     try:
         report = import_table(
             database, args.survey, frame, settings, id_column=args.id_column,
@@ -119,7 +123,7 @@ def cmd_import(args: argparse.Namespace) -> int:
             partial=args.partial, batch_size=batch_size,
         )
     except LookupError as error:
-        return _error(f"{error.args[0]} (database {database_named(args)})")
+        return print_error(f"{error.args[0]} (database {database_named(args)})")
     except ImportRefused as refused:
         print(
             f"error: nothing was stored: {len(refused.problems)} problem(s) in {args.file}",
@@ -211,8 +215,6 @@ def cmd_instrument_from(args: argparse.Namespace) -> int:
 
 def register_file_commands(subparsers: Any) -> None:
     """Add export, import and instrument-from to ``heedful``'s argument parser."""
-    from .commands import _add_database, _guard
-
     p = subparsers.add_parser(
         "export",
         help="write a stored survey, one row per respondent, as CSV, Parquet, SPSS or Stata",
@@ -228,8 +230,8 @@ def register_file_commands(subparsers: Any) -> None:
         help="leave out respondents whose latest review is 'exclude' (excluded) or who have any "
         "flag (flagged: on evidence alone; review first); repeatable",
     )
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_export))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_export))
 
     p = subparsers.add_parser(
         "import",
@@ -247,8 +249,8 @@ def register_file_commands(subparsers: Any) -> None:
                    help="store the valid rows and report the others (default: all or nothing)")
     p.add_argument("--batch-size", type=int, default=None, metavar="N",
                    help="respondents screened and stored at a time (default: 5000)")
-    _add_database(p)
-    p.set_defaults(func=_guard(cmd_import))
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_import))
 
     p = subparsers.add_parser(
         "instrument-from",
@@ -263,4 +265,4 @@ def register_file_commands(subparsers: Any) -> None:
                    help="duration column, not an item (default: %(default)s)")
     p.add_argument("--skip", metavar="COLUMNS",
                    help="comma-separated columns that are not items (e.g. gender,education)")
-    p.set_defaults(func=_guard(cmd_instrument_from))
+    p.set_defaults(func=guard(cmd_instrument_from))
