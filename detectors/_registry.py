@@ -9,6 +9,7 @@ from __future__ import annotations
 from .acquiescence import Acquiescence
 from .antonym_consistency import AntonymConsistency
 from .attention_checks import AttentionChecks
+from .content_nonresponsivity import ContentNonresponsivity
 from .duplicate_answers import DuplicateAnswers
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
@@ -55,6 +56,7 @@ _DETECTORS = (
     GuttmanErrors,
     ResampledReliability,
     LogLikelihoodFit,
+    ContentNonresponsivity,
 )
 
 #: Detector name to class, in the order results are reported.

@@ -188,7 +188,8 @@ def calibrate(
     }
     n = next((len(r) for r in results.values() if r is not None), 0)
     families = sorted({r.family for r in calibrated.values()}, key=counted.index)
-    family_rates = {f: policy.review_rate / len(families) for f in families} if families else {}
+    family_budget = policy.review_rate * (1.0 - policy.score_review_share)
+    family_rates = {f: family_budget / len(families) for f in families} if families else {}
     # flags of detectors with fixed cut-offs count towards cleaning as they are
     fixed = {
         name: result.flags for name, result in results.items()

@@ -132,11 +132,19 @@ class VerdictPolicy(BaseModel):
         "families (default: every careless family).",
     )
     review_rate: float = Field(
-        default=0.05, gt=0, lt=0.5,
+        default=0.10, gt=0, lt=0.5,
         description="Share of ordinary respondents the policy means to send to review. It is "
         "split evenly over the counted families that hold an index calibrated from the "
         "reference sample; each such index gets its cut-off from that share "
         "(detectors.calibration).",
+    )
+
+    score_review_share: float = Field(
+        default=0.75, ge=0, lt=1,
+        description="Part of review_rate given to the careless score's own hurdle: a "
+        "respondent whose careless score lies in that upper share of the reference's unflagged "
+        "respondents goes to review even without a flag (random answering lowers many indices "
+        "a little and may pass every single cut-off). The rest is split over the families.",
     )
 
     @model_validator(mode="after")

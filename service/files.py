@@ -123,6 +123,7 @@ def screening_records(screening: Screening) -> list[dict[str, Any]]:
             "verdict": verdicts.verdict[i],
             "careless_score": careless[i],
             "flagging_families": verdicts.flagging_families(i),
+            "verdict_reason": verdicts.reason(i),
         }
         if scales is not None:
             record["scales"] = scales[i]

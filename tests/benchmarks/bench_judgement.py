@@ -7,8 +7,8 @@ recipes (one in ten of the screened set), and the set is screened as the service
 survey (it is its own reference sample). Several seeds of our own; figures are means over them
 with the range.
 
-Prints a table and, with ``--write``, writes ``docs/judgement.md`` (linked from the README)
-with the date and the commit.
+Prints a table and, with ``--write``, writes ``docs/judgement.md`` with the date and the
+commit, and the same tables into the README between its marker lines.
 
     .venv/bin/python tests/benchmarks/bench_judgement.py [--seeds 11 12 13 14 15] [--write]
 """
@@ -115,6 +115,20 @@ def main():
             "more varied, and the ordinary respondents include some careless ones.\n\n"
         )
         (ROOT / "docs" / "judgement.md").write_text(header + text + "\n")
+        write_readme_block(text, commit)
+
+
+#: The README's copy of the tables lies between these lines, so it cannot drift from the file.
+START, END = "<!-- judgement tables: written by bench_judgement.py -->", "<!-- end judgement tables -->"
+
+
+def write_readme_block(text, commit):
+    readme = ROOT / "README.md"
+    content = readme.read_text()
+    head, rest = content.split(START, 1)
+    _, tail = rest.split(END, 1)
+    stamp = f"_Measured {dt.date.today()} at commit `{commit}`._\n\n"
+    readme.write_text(f"{head}{START}\n{stamp}{text}\n{END}{tail}")
 
 
 if __name__ == "__main__":

@@ -62,16 +62,20 @@ def _instrument(make_instrument):
 
 def test_under_the_null_each_family_flags_about_its_share_of_the_budget():
     # Ordinary respondents only (answers simulated from the instrument, no careless ones):
-    # each family's flagged share is close to review_rate / F. Setting aside what the other
-    # families flag thins a family's tail a little where families are related among ordinary
-    # respondents; measured on this code's own output (seeds 1-3, 8,000 respondents): 1.00 to
-    # 1.23 times the budget per family, the whole review share 5.7-5.9% for a review_rate of
-    # 5% (fixed-rule indices such as sequence patterns add their own few). Regression bounds.
+    # each family's flagged share is close to its part of the budget, review_rate x (1 -
+    # score_review_share) / F. Setting aside what the other families flag thins a family's tail
+    # where families are related among ordinary respondents, which weighs most at the small
+    # shares of the default policy (0.625% per family); measured on this code's own output
+    # (seeds 1-3, 8,000 respondents): 1.06 to 1.84 times the budget per family, and the whole
+    # review share (families and the careless score's own hurdle) 10.9-11.5% for a review_rate
+    # of 10% (fixed-rule indices such as sequence patterns add their own few). Regression bounds.
     for seed in (1, 2, 3):
         instrument, matrix = _null_sample(n=8000, seed=seed)
         screening = screen(instrument, matrix)
         calibration = screening.calibration
-        budget = instrument.verdict.review_rate / len(calibration.family_rates)
+        policy = instrument.verdict
+        family_budget = policy.review_rate * (1 - policy.score_review_share)
+        budget = family_budget / len(calibration.family_rates)
         by_family: dict[str, np.ndarray] = {}
         for name, result in screening.results.items():
             if name in calibration.cutoffs:
@@ -80,7 +84,7 @@ def test_under_the_null_each_family_flags_about_its_share_of_the_budget():
         # binomial standard error of a share near the budget on 8,000 respondents
         error = np.sqrt(budget * (1 - budget) / matrix.n_respondents)
         for family, flags in by_family.items():
-            assert budget * 0.7 - 3 * error <= flags.mean() <= budget * 1.35 + 3 * error, family
+            assert budget * 0.7 - 3 * error <= flags.mean() <= budget * 2.0 + 3 * error, family
         not_ok = np.mean(screening.verdicts.verdict != "ok")
         assert not_ok <= instrument.verdict.review_rate * 1.25, not_ok
 

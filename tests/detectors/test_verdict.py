@@ -13,8 +13,10 @@ from detectors._base import DetectorResult
 from detectors.instrument import VerdictPolicy
 from detectors.verdict import (
     COMBINED,
+    FAMILIES_KEY,
     FAMILY_PREFIX,
     RANK_POINTS,
+    UNFLAGGED_KEY,
     _percentiles,
     assess,
     rank_tables,
@@ -107,11 +109,35 @@ def test_rank_tables_skip_style_and_unassessed_and_add_the_combined_table():
         "mahalanobis": _result("mahalanobis", "outlier", flags, [np.nan] * 4),
     }
     tables = rank_tables(VerdictPolicy(), results)
-    assert set(tables) == {"straightlining", FAMILY_PREFIX + "invariance", COMBINED}
+    assert set(tables) == {
+        "straightlining", FAMILY_PREFIX + "invariance", FAMILIES_KEY, COMBINED, UNFLAGGED_KEY,
+    }
     assert all(len(t) == RANK_POINTS for t in tables.values())
     verdicts = assess(VerdictPolicy(), results, tables, 4)
     # One family only: its percentile orders the respondents as the raw scores do.
     assert np.argsort(verdicts.careless_score).tolist() == [0, 2, 3, 1]
+
+
+def test_the_careless_score_alone_sends_the_upper_share_of_unflagged_respondents_to_review():
+    # 1,000 respondents, one index with scores 0..999 and no flags: the hurdle sits at the upper
+    # review_rate * score_review_share of them (hand computation: 10% x 0.5 = 5%, the 50
+    # highest scores), and the reason says so.
+    n = 1000
+    scores = np.arange(n, dtype=float)
+    results = {"response_variability": _result("response_variability", "invariance",
+                                               np.zeros(n), scores)}
+    policy = VerdictPolicy(review_rate=0.10, score_review_share=0.5)
+    tables = rank_tables(policy, results)
+    verdicts = assess(policy, results, tables, n)
+    sent = verdicts.verdict == "review"
+    assert 45 <= sent.sum() <= 55  # the table resolves percentiles to 1/1000
+    assert sent[-45:].all() and not sent[:940].any()
+    assert verdicts.by_score[sent].all()
+    assert "upper 5.0% of the reference's unflagged respondents" in verdicts.reason(n - 1)
+    assert verdicts.reason(0).startswith("no counted family flagged")
+    # share 0: no hurdle, the families alone decide
+    policy = VerdictPolicy(review_rate=0.10, score_review_share=0.0)
+    assert (assess(policy, results, rank_tables(policy, results), n).verdict == "ok").all()
 
 
 # The whole set on real data ------------------------------------------------------------------
