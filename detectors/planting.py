@@ -392,7 +392,7 @@ def false_alarm_rates(
     """The cut-off and stated false-alarm rate of every index on this instrument, as the
     screen would calibrate them on ``sample`` (or, without one, on answers simulated from the
     instrument, which says so). JSON-ready: ``{"simulated": bool, "review_rate": float,
-    "families": {family: share}, "indices": {name: {"family", "calibrated", "cutoff",
+    "score_share": float (the careless score's own hurdle), "families": {family: share}, "indices": {name: {"family", "calibrated", "cutoff",
     "rate"}}}``; an index with a fixed rule has ``calibrated`` False and no rate."""
     from .screening import screen
 
@@ -417,6 +417,7 @@ def false_alarm_rates(
     return {
         "simulated": simulated,
         "review_rate": instrument.verdict.review_rate,
+        "score_share": instrument.verdict.review_rate * instrument.verdict.score_review_share,
         "families": dict(calibration.family_rates) if calibration is not None else {},
         "indices": indices,
     }

@@ -76,8 +76,9 @@ def false_alarm_lines(rates: dict[str, Any]) -> list[str]:
     )
     lines = [
         f"Expected false alarms, calibrated on {source}: the verdict policy sends "
-        f"{rates['review_rate']:.1%} of ordinary respondents to review, split over "
-        f"{len(rates['families'])} families "
+        f"{rates['review_rate']:.1%} of ordinary respondents to review: "
+        f"{rates['score_share']:.1%} through the careless score's own hurdle, the rest split "
+        f"over {len(rates['families'])} families "
         + "(" + ", ".join(f"{f} {share:.2%}" for f, share in rates["families"].items()) + ")."
     ]
     width = max((len(name) for name in rates["indices"]), default=8)
