@@ -66,7 +66,7 @@ methods for p-value adjustment. New York: Wiley.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -83,6 +83,7 @@ __all__ = [
     "Verdicts",
     "rank_tables",
     "assess",
+    "explain",
 ]
 
 #: Verdict codes, from least to most suspect.
@@ -193,22 +194,42 @@ class Verdicts:
         return [self.families[f] for f in np.flatnonzero(self.family_flags[i])]
 
     def reason(self, i: int) -> str:
-        """Why respondent ``i`` has their verdict, in one sentence."""
-        families = self.flagging_families(i)
-        score = self.careless_score[i]
-        hurdle = self.by_score is not None and bool(self.by_score[i])
-        if not families and not hurdle:
-            return "no counted family flagged and the careless score is below the review hurdle"
-        parts = []
-        if families:
-            parts.append(f"flagged by {len(families)} famil{'y' if len(families) == 1 else 'ies'}"
-                         f" ({', '.join(families)})")
-        if hurdle:
-            parts.append(
-                f"careless score {score:.3f}: the combined evidence lies in the upper "
-                f"{self.score_share:.1%} of the reference's unflagged respondents"
-            )
-        return "; ".join(parts)
+        """Why respondent ``i`` has their verdict, in one sentence (:func:`explain`)."""
+        return explain(
+            str(self.verdict[i]), self.flagging_families(i), float(self.careless_score[i]),
+            self.score_share, None if self.by_score is None else bool(self.by_score[i]),
+        )
+
+
+def explain(
+    verdict: str,
+    families: Sequence[str],
+    careless_score: float | None,
+    score_share: float,
+    by_score: bool | None = None,
+) -> str:
+    """One sentence on why a respondent has ``verdict``: the counted families that flagged
+    them, and whether the careless score alone reached the review hurdle (``by_score``; when
+    unknown, as for a stored result, a verdict other than ``ok`` without a flagging family
+    can only have come from it)."""
+    if by_score is None:
+        by_score = verdict != "ok" and not families
+    if not families and not by_score:
+        return "no counted family flagged and the careless score is below the review hurdle"
+    parts = []
+    if families:
+        plural = "family" if len(families) == 1 else "families"
+        parts.append(f"flagged by {len(families)} {plural} ({', '.join(families)})")
+    if by_score:
+        shown = "unknown" if careless_score is None or careless_score != careless_score else (
+            f"{careless_score:.3f}"
+        )
+        parts.append(
+            f"careless score {shown}: the combined evidence lies in the upper {score_share:.1%} "
+            "of the reference's unflagged respondents, though no single index may reach its "
+            "cut-off"
+        )
+    return "; ".join(parts)
 
 
 def assess(
@@ -293,11 +314,14 @@ def _family_shares(
             continue
         if name == GENERAL and FAMILIES_KEY in ranks:
             continue  # the careless score's other view (:func:`_combine`)
-        share = 1.0 - _percentiles(result.scores, ranks[name])
         if REGISTRY.get(name) is not None and REGISTRY[name].calibration == "fixed":
             # a rule's score below its cut-off is no evidence (one skipped item, one grid
-            # answered alike): it counts only once the rule flags
-            share = np.where(result.flags, share, np.where(np.isnan(share), np.nan, 1.0))
+            # answered alike): it counts only once the rule flags (looked up for those alone)
+            share = np.where(np.isnan(result.scores), np.nan, 1.0)
+            flagged = np.flatnonzero(result.flags)
+            share[flagged] = 1.0 - _percentiles(result.scores[flagged], ranks[name])
+        else:
+            share = 1.0 - _percentiles(result.scores, ranks[name])
         logs.setdefault(result.family, []).append(
             np.log(np.maximum(share, 1.0 / (2 * RANK_POINTS)))
         )

@@ -562,6 +562,12 @@ class RespondentDetail(BaseModel):
     flags: list[str]
     verdict: VerdictField
     careless_score: CarelessScoreField
+    verdict_reason: str | None = Field(
+        default=None,
+        description="Why the verdict, in one sentence: the counted families that flagged the "
+        "respondent, or the careless score's own review hurdle (a verdict other than 'ok' "
+        "without any flag). Null before the respondent has a verdict.",
+    )
     review_decision: Decision | None
     results: list[OutcomeOut]
     reviews: list[ReviewOut]

@@ -9,11 +9,12 @@ from urllib.parse import urlencode
 
 from fastapi import APIRouter, Query, Request, Response
 from pydantic import AwareDatetime
+from sqlalchemy.orm import Session
 
 from detectors import REGISTRY
 
-from .. import outcomes, store
-from ..models import Decision
+from .. import outcomes, screeners, store
+from ..models import Decision, Respondent
 from ..problems import Problem
 from ..schemas import (
     EarlierResult,
@@ -216,6 +217,7 @@ def get_respondent(
             flags=_split(found.flags),
             verdict=found.verdict,
             careless_score=found.careless_score,
+            verdict_reason=_verdict_reason(session, found),
             review_decision=found.review_decision,
             results=[
                 OutcomeOut(
@@ -309,3 +311,18 @@ def erase_respondent(
 
 
 __all__ = ["router"]
+
+
+def _verdict_reason(session: Session, found: Respondent) -> str | None:
+    """Why the stored verdict, derived on read from the flags and the version's policy."""
+    from detectors.verdict import explain
+
+    if found.verdict is None:
+        return None
+    policy = screeners.screener_for(session, found.survey_version_id).instrument.verdict
+    raised = {REGISTRY[name].family for name in _split(found.flags) if name in REGISTRY}
+    families = [family for family in policy.families if family in raised]
+    return explain(
+        str(found.verdict), families, found.careless_score,
+        policy.review_rate * policy.score_review_share,
+    )

@@ -224,3 +224,16 @@ def test_verdict_and_careless_score_after_a_reference(service, filled):
     detail = service.client.get(f"{BASE}/respondents/{top}", headers=reader).json()
     assert detail["careless_score"] == rows[0]["careless_score"]
     assert detail["verdict"] == rows[0]["verdict"]
+    # Every detail says why its verdict: a review without any flag can only come from the
+    # careless score's own hurdle, and says so.
+    for row in rows:
+        detail = service.client.get(
+            f"{BASE}/respondents/{row['respondent_id']}", headers=reader
+        ).json()
+        reason = detail["verdict_reason"]
+        if row["verdict"] == "ok":
+            assert reason.startswith("no counted family flagged"), reason
+        elif not row["flags"] or all(f in ("extreme_style", "midpoint_style") for f in row["flags"]):
+            assert reason.startswith("careless score"), reason
+        else:
+            assert reason.startswith("flagged by"), reason
