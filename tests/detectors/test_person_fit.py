@@ -1,6 +1,7 @@
 """person_fit: rating scale model probabilities by hand, parameter recovery on simulated data,
 outfit/infit and Guttman errors against direct per-respondent computations (scipy's root
-finder, brute-force enumeration), disordered thresholds, states, the reference, the bfi data."""
+finder, brute-force enumeration), item difficulties against girth's Rasch estimates, disordered
+thresholds, states, the reference, the bfi data."""
 
 from __future__ import annotations
 
@@ -591,3 +592,37 @@ def test_planted_random_answerers_on_the_bfi_data(bfi_instrument, bfi_frame, cap
     assert outfit_auc > 0.8 and guttman_auc > 0.8
     assert random_rate > original_rate + 0.15
     assert np.median(result.evidence["outfit"][is_random & assessed]) > 1.4
+
+
+def test_item_difficulties_agree_with_an_independent_rasch_implementation():
+    # Reference library: girth (PyPI, a general-purpose item response theory package). On two
+    # answer options the rating scale model is the dichotomous Rasch model, so its item
+    # difficulties can be compared with girth's. Joint maximum likelihood is biased outwards;
+    # Heedful shrinks it by (L-1)/L, which approximates the consistent conditional maximum
+    # likelihood estimate (girth.rasch_conditional). Both are centred (difficulties sum to 0).
+    # The bounds are about half a standard error of these difficulties (0.05 logits here),
+    # an acceptance bound of this test, not a published figure.
+    import girth
+
+    instrument = parse_instrument({
+        "survey": "t", "response_format": {"points": 2},
+        "items": [{"id": f"q{i}", "scale": "a"} for i in range(10)],
+    })
+    rng = np.random.default_rng(0)
+    theta = rng.normal(size=(2000, 1))
+    difficulty = np.linspace(-1.5, 1.5, 10)
+    passed = rng.random((2000, 10)) < 1 / (1 + np.exp(-(theta - difficulty)))
+    answers = passed.astype(float) + 1
+    reference = PersonFit(min_answered_items=5).fit(
+        instrument, ResponseMatrix.from_arrays(instrument, answers)
+    )
+    ours = np.asarray(reference["scales"][0]["difficulties"])
+    conditional = girth.rasch_conditional(passed.T.astype(int))["Difficulty"]
+    conditional = conditional - conditional.mean()
+    assert np.abs(ours - ours.mean() - conditional).max() < 0.03
+    # Without the shrinking, Heedful's estimate is girth's joint maximum likelihood estimate
+    # (fitted on the respondents without an extreme score, as Heedful fits) to within 0.05.
+    keep = (passed.sum(axis=1) > 0) & (passed.sum(axis=1) < 10)
+    joint = girth.rasch_jml(passed[keep].T.astype(int), options={"max_iteration": 200})
+    unshrunk = ours / reference["scales"][0]["bias_correction"]
+    assert np.abs(unshrunk - unshrunk.mean() - joint["Difficulty"]).max() < 0.05
