@@ -220,11 +220,11 @@ class Detector:
 
     @classmethod
     def setting_names(cls) -> list[str]:
-        return list(_keyword_defaults(cls))
+        return list(_keyword_defaults(cls.__init__))
 
     @classmethod
     def defaults(cls) -> dict[str, Any]:
-        return dict(_keyword_defaults(cls))
+        return dict(_keyword_defaults(cls.__init__))
 
     def get_params(self) -> dict[str, Any]:
         return {name: getattr(self, name) for name in self.setting_names()}
@@ -348,9 +348,10 @@ class Detector:
 
 
 @cache
-def _keyword_defaults(cls: type) -> dict[str, Any]:
-    """Keyword-only settings of a detector class with their defaults (read once per class)."""
-    signature = inspect.signature(cls.__init__)
+def _keyword_defaults(init: Callable[..., None]) -> dict[str, Any]:
+    """Keyword-only settings of a detector class's ``__init__`` with their defaults (read once
+    per class)."""
+    signature = inspect.signature(init)
     return {p.name: p.default for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY}
 
 

@@ -80,7 +80,7 @@ def _item_list(names: list[str]) -> str:
 
 
 #: Constraints of the settings both indices share; each adds its own ``pair_threshold``.
-SHARED_CONSTRAINTS = {
+SHARED_CONSTRAINTS: dict[str, Interval | Options] = {
     "consistency_cutoff": Interval(float, -1, 1),
     "min_pairs": Interval(int, 3, None),
     "min_pair_respondents": Interval(int, 3, None),

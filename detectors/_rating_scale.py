@@ -121,7 +121,7 @@ class _Model:
 
 def _layouts(instrument: Instrument, min_items: int) -> list[tuple[_Layout | None, str, str]]:
     """Every scale of at least ``min_items`` items: (layout or None, name, why not usable)."""
-    out = []
+    out: list[tuple[_Layout | None, str, str]] = []
     for name, columns in instrument.scales.items():
         if len(columns) < min_items:
             continue
@@ -299,7 +299,9 @@ def _group_persons(
     # S + K n with 0 <= S < K. The sums are integers, exact in float32 below 2^24 (half the
     # memory traffic of float64), otherwise in float64.
     shift = int(max(model.layout.n_items * model.layout.m for model in plan.models)) + 1
-    dtype = np.float32 if shift * (int(sizes.max()) + 1) < 1 << 24 else np.float64
+    dtype: type[np.floating[Any]] = (
+        np.float32 if shift * (int(sizes.max()) + 1) < 1 << 24 else np.float64
+    )
     indicator = plan.indicator.astype(dtype)
     shift_code = np.array(shift, dtype=np.int16 if shift < 1 << 14 else np.int32)
     # One BLAS thread: the products are small and threads would only wait between them.
@@ -690,7 +692,7 @@ def _plan_or_mark(
     elif not reference.get("scales"):
         mark(states, reasons, slice(None), State.NOT_ASSESSED, str(reference.get("problem")))
     else:
-        by_name = {name: layout for layout, name, _ in layouts}
+        by_name = {name: layout for layout, name, _ in layouts if layout is not None}
         return _Plan.of([_model(by_name[e["name"]], e) for e in reference["scales"]])
     return None
 

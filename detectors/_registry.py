@@ -11,10 +11,12 @@ from .antonym_consistency import AntonymConsistency
 from .attention_checks import AttentionChecks
 from .content_nonresponsivity import ContentNonresponsivity
 from .duplicate_answers import DuplicateAnswers
+from ._base import Detector
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle
 from .guttman_errors import GuttmanErrors
+from .instrument import Instrument
 from .log_likelihood_fit import LogLikelihoodFit
 from .long_string import LongString
 from .mahalanobis import Mahalanobis
@@ -60,10 +62,10 @@ _DETECTORS = (
 )
 
 #: Detector name to class, in the order results are reported.
-REGISTRY: dict[str, type] = {cls.name: cls for cls in _DETECTORS}
+REGISTRY: dict[str, type[Detector]] = {cls.name: cls for cls in _DETECTORS}
 
 
-def get_detector(name: str) -> type:
+def get_detector(name: str) -> type[Detector]:
     try:
         return REGISTRY[name]
     except KeyError:
@@ -72,7 +74,7 @@ def get_detector(name: str) -> type:
         ) from None
 
 
-def check_screening_section(instrument) -> None:
+def check_screening_section(instrument: Instrument) -> None:
     """Check the instrument's ``screening`` settings against each detector's constraints."""
     problems = []
     for name, settings in instrument.screening.items():

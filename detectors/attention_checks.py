@@ -117,14 +117,15 @@ class AttentionChecks(Detector):
             answered_any[rows] = (matrix.answers[rows] != MISSING).any(axis=1)
 
         # Per check: the answer given (None when unanswered) and the labels of both answers.
-        given_codes = np.where(skipped, None, given.astype(object))
+        given_codes = given.astype(object)
+        given_codes[skipped] = None
         given_labels = np.full((n, c), None, dtype=object)
         asked_labels = np.full(c, None, dtype=object)
         for column, item in enumerate(items):
             fmt = instrument.format_of(item)
             if fmt.labels is None:
                 continue
-            asked_labels[column] = fmt.labels[item.instructed_answer - fmt.lowest]
+            asked_labels[column] = fmt.labels[int(asked[column]) - fmt.lowest]
             # The trailing None is what an unanswered check (index -1) reads.
             lookup = np.array([*fmt.labels, None], dtype=object)
             position = given[:, column].astype(np.int64) - fmt.lowest

@@ -61,7 +61,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 
@@ -76,6 +76,9 @@ __all__ = [
     "calibrate",
     "upper_cutoff",
 ]
+
+#: A detector's result, or None where a detector gave none: ``apply`` returns what it is given.
+_Result = TypeVar("_Result", DetectorResult, DetectorResult | None)
 
 #: Families that never clean each other's sample. ``misfit`` and ``outlier`` both compare a
 #: respondent's answers with the sample's pattern (its item ordering and model; its means and
@@ -190,6 +193,7 @@ def calibrate(
     families = sorted({r.family for r in calibrated.values()}, key=counted.index)
     family_budget = policy.review_rate * (1.0 - policy.score_review_share)
     family_rates = {f: family_budget / len(families) for f in families} if families else {}
+    family_of = {name: result.family for name, result in results.items() if result is not None}
     # flags of detectors with fixed cut-offs count towards cleaning as they are
     fixed = {
         name: result.flags for name, result in results.items()
@@ -214,7 +218,7 @@ def calibrate(
     for _ in range(CLEANING_ROUNDS):
         flags_by_family: dict[str, np.ndarray] = {f: np.zeros(n, dtype=bool) for f in counted}
         for name, flag in fixed.items():
-            flags_by_family[results[name].family] |= flag
+            flags_by_family[family_of[name]] |= flag
         for family in families:
             members = {k: r for k, r in calibrated.items() if r.family == family}
             sample = keep[family]
@@ -271,10 +275,10 @@ def _family_tail(smallest: np.ndarray, rate: float) -> float:
 
 
 def apply(
-    results: Mapping[str, DetectorResult | None],
+    results: Mapping[str, _Result],
     calibration: Calibration,
     detectors: Mapping[str, Any],
-) -> dict[str, DetectorResult | None]:
+) -> dict[str, _Result]:
     """Results with the calibrated cut-offs in place of the detectors' own (flags and the
     cut-off stated in the evidence follow)."""
     out = dict(results)

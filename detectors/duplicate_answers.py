@@ -165,15 +165,15 @@ included: b'
             highest = block.max(axis=1, initial=MISSING)
             one_answer[rows] = ((block == highest[:, None]) | ~given).all(axis=1)
         judged = (answered >= self.min_answered) & ~one_answer
-        rows = np.flatnonzero(judged)
-        group = identical_row_groups(np.ascontiguousarray(matrix.answers[rows][:, columns]))
+        judged_rows = np.flatnonzero(judged)
+        group = identical_row_groups(np.ascontiguousarray(matrix.answers[judged_rows][:, columns]))
         sizes = np.bincount(group)
         copies = np.zeros(n, dtype=np.int64)
-        copies[rows] = sizes[group] - 1
+        copies[judged_rows] = sizes[group] - 1
         listed = np.full((n, LISTED_RESPONDENTS), None, dtype=object)
-        shared = copies[rows] > 0
+        shared = copies[judged_rows] > 0
         if shared.any():
-            listed[rows[shared]] = _others(rows[shared], group[shared], matrix.respondent_ids)
+            listed[judged_rows[shared]] = _others(judged_rows[shared], group[shared], matrix.respondent_ids)
 
         if m < self.min_answered:
             mark(

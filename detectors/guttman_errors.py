@@ -340,10 +340,10 @@ class GuttmanErrors(Detector):
                 kept_rows.append(partial + rows.start)
                 kept_categories.append(category[partial].astype(np.int8))
                 kept_scores.append(score[partial])
-            rows = np.concatenate(kept_rows)
-            if len(rows):
+            partial_rows = np.concatenate(kept_rows)
+            if len(partial_rows):
                 self._count_incomplete(
-                    positions, m, rows, np.concatenate(kept_categories),
+                    positions, m, partial_rows, np.concatenate(kept_categories),
                     np.concatenate(kept_scores), errors, most,
                 )
 

@@ -93,9 +93,11 @@ class Item(BaseModel):
     response_format: ResponseFormat | None = None
 
 
+Family = Literal["invariance", "inconsistency", "misfit", "outlier", "effort", "style"]
+
 #: Families of evidence that count towards carelessness by default (``style`` does not: a response
 #: style distorts scale scores but does not make a record invalid).
-CARELESS_FAMILIES = ("invariance", "inconsistency", "misfit", "outlier", "effort")
+CARELESS_FAMILIES: tuple[Family, ...] = ("invariance", "inconsistency", "misfit", "outlier", "effort")
 
 
 class VerdictPolicy(BaseModel):
@@ -109,7 +111,7 @@ class VerdictPolicy(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    families: tuple[Literal["invariance", "inconsistency", "misfit", "outlier", "effort", "style"], ...] = Field(
+    families: tuple[Family, ...] = Field(
         default=CARELESS_FAMILIES,
         min_length=1,
         description="Families whose flags count towards the verdict and the careless score.",

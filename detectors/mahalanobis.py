@@ -389,7 +389,7 @@ class Mahalanobis(Detector):
         lowest = instrument.lowest[columns]
         sums = np.zeros(p, dtype=np.int64)
         products = np.zeros((p, p), dtype=np.int64)
-        complete_rows = []
+        complete_parts = []
         with threadpool_limits(limits=1, user_api="blas"):  # small products, as in screening
             for rows in _chunks(matrix.n_respondents):
                 answers = _content_answers(matrix, rows, columns)
@@ -399,8 +399,8 @@ class Mahalanobis(Detector):
                 shifted = (answers - lowest).astype(np.float32)
                 sums += (np.ones(len(shifted), dtype=np.float32) @ shifted).astype(np.int64)
                 products += (shifted.T @ shifted).astype(np.int64)
-                complete_rows.append(np.flatnonzero(complete) + rows.start)
-        complete_rows = np.concatenate(complete_rows)
+                complete_parts.append(np.flatnonzero(complete) + rows.start)
+        complete_rows = np.concatenate(complete_parts)
         count = len(complete_rows)
         reference["complete_respondents"] = count
         per_item = f"{self.min_respondents_per_item:g} per item"
@@ -438,10 +438,13 @@ class Mahalanobis(Detector):
                     f"respondents are needed ({per_item})"
                 )
                 return reference
-            location, covariance, details = self._robust(matrix, columns, complete_rows)
+            robust_location, robust_covariance, details = self._robust(
+                matrix, columns, complete_rows
+            )
             reference.update(details)
-            if location is None:
+            if robust_location is None or robust_covariance is None:
                 return reference
+            location, covariance = robust_location, robust_covariance
             problem, condition = _singularity(covariance, item_ids, robust=True)
         reference["location"] = location.tolist()
         reference["covariance"] = covariance.tolist()
@@ -502,7 +505,7 @@ class Mahalanobis(Detector):
 
         if self.distribution == "chi2":
             return special.chdtrc(df, distance)  # chi2.sf without the argument checks
-        out = stats.f.sf(distance * n * (n - df) / (df * (n - 1) * (n + 1)), df, n - df)
+        out = np.asarray(stats.f.sf(distance * n * (n - df) / (df * (n - 1) * (n + 1)), df, n - df))
         if self.distribution == "beta":
             complete = df == p
             out[complete] = stats.beta.sf(

@@ -260,7 +260,7 @@ def drill(
         raise ValueError(f"unknown careless kind {unknown[0]!r}; known kinds: {', '.join(KINDS)}")
     rng = np.random.default_rng(seed)
     simulated = ordinary is None
-    if simulated:
+    if ordinary is None:
         values = simulated_sample(instrument, n_simulated, rng)
         ordinary = ResponseMatrix.from_arrays(
             instrument, values, [f"ordinary-{i}" for i in range(n_simulated)]
@@ -402,16 +402,18 @@ def false_alarm_rates(
         sample = ResponseMatrix.from_arrays(instrument, values)
     screening = screen(instrument, sample)
     calibration = screening.calibration
+    cutoffs = calibration.cutoffs if calibration is not None else {}
+    rates = calibration.rates if calibration is not None else {}
     indices = {}
     for name, result in screening.results.items():
         if result.family not in instrument.verdict.families:
             continue
-        calibrated = calibration is not None and name in calibration.cutoffs
+        calibrated = name in cutoffs
         indices[name] = {
             "family": result.family,
             "calibrated": calibrated,
-            "cutoff": calibration.cutoffs[name] if calibrated else None,
-            "rate": calibration.rates[name] if calibrated else None,
+            "cutoff": cutoffs[name] if calibrated else None,
+            "rate": rates[name] if calibrated else None,
             "assessed": float((result.states == State.ASSESSED).mean()),
         }
     return {

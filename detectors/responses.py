@@ -157,10 +157,10 @@ def matrix_from_frame(
         if item_id not in columns:
             table_problems.append(ResponseProblem(None, None, item_id, "item column is missing"))
     known = set(items) | {id_column} | ({duration_column} if duration_column else set())
-    for column in columns:
-        if column not in known:
+    for name in columns:
+        if name not in known:
             table_problems.append(
-                ResponseProblem(None, None, column, "unknown column: not an item of the instrument")
+                ResponseProblem(None, None, name, "unknown column: not an item of the instrument")
             )
     if table_problems:
         raise ResponseDataError(table_problems)

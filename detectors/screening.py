@@ -151,7 +151,7 @@ class Screening:
     def flag_count(self) -> np.ndarray:
         if not self.results:
             return np.zeros(self.n_respondents, dtype=np.int64)
-        return np.sum([r.flags for r in self.results.values()], axis=0, dtype=np.int64)
+        return np.stack([r.flags for r in self.results.values()]).sum(axis=0, dtype=np.int64)
 
     @cached_property
     def verdicts(self) -> Verdicts:
