@@ -23,8 +23,10 @@ screen-demo: $(STAMP)
 	$(BIN)/heedful screen demo/responses.csv --instrument demo/instrument.json --out demo/screened.csv
 
 # Slow checks included; the tests run on up to four processes (two on a 2-core machine).
+# mypy reads its settings from pyproject.toml and keeps its cache in .mypy_cache.
 test: $(STAMP)
 	$(BIN)/ruff check detectors service tests
+	$(BIN)/mypy
 	$(BIN)/python -m pytest -q -n auto --maxprocesses 4 --dist worksteal
 
 bench: $(STAMP)
@@ -37,4 +39,4 @@ openapi: $(STAMP)
 	$(BIN)/heedful openapi --out openapi/openapi.json
 
 clean:
-	rm -rf $(VENV) demo nightly .pytest_cache
+	rm -rf $(VENV) demo nightly .pytest_cache .mypy_cache

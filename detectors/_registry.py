@@ -6,12 +6,12 @@ write its module, add it to ``_DETECTORS`` below, write its tests.
 
 from __future__ import annotations
 
+from ._base import Detector
 from .acquiescence import Acquiescence
 from .antonym_consistency import AntonymConsistency
 from .attention_checks import AttentionChecks
 from .content_nonresponsivity import ContentNonresponsivity
 from .duplicate_answers import DuplicateAnswers
-from ._base import Detector
 from .errors import FieldProblem, InstrumentError, SettingError
 from .even_odd import EvenOdd
 from .extreme_style import ExtremeStyle

@@ -14,10 +14,10 @@ import datetime as dt
 import os
 import re
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import orjson
-from sqlalchemy import DateTime, Engine, create_engine, event
+from sqlalchemy import DateTime, Engine, Table, create_engine, event
 from sqlalchemy.orm import DeclarativeBase
 from sqlalchemy.types import TypeDecorator
 
@@ -65,6 +65,9 @@ class UTCDateTime(TypeDecorator[dt.datetime]):
 
 class Base(DeclarativeBase):
     """Base of every table."""
+
+    #: Each model maps one table (the declarative base types it as any FROM clause).
+    __table__: ClassVar[Table]
 
 
 def _json_text(value: Any) -> str:

@@ -175,10 +175,10 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
     numbers = {v.id: v.number for v in versions}
     screeners = {v.id: screener_for(session, v.id) for v in versions}
     # The current version first, then earlier ones, newest first.
-    order = sorted(versions, key=lambda v: (v.id != survey.current_version_id, -v.number))
+    newest_first = sorted(versions, key=lambda v: (v.id != survey.current_version_id, -v.number))
     item_source: dict[str, tuple[Any, Any]] = {}
     scale_columns: list[str] = []
-    for version in order:
+    for version in newest_first:
         instrument = screeners[version.id].instrument
         for item in instrument.items:
             item_source.setdefault(item.id, (instrument, item))
@@ -264,10 +264,10 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
     unique = unique_names([columns[i].name for i in order], ignore_case=False)
     names = {}
     for position, name in zip(order, unique, strict=True):
-        column = columns[position]
-        if name != column.name:
-            names[name] = column.name
-            columns[position] = dataclasses.replace(column, name=name)
+        clashing = columns[position]
+        if name != clashing.name:
+            names[name] = clashing.name
+            columns[position] = dataclasses.replace(clashing, name=name)
     return ExportLayout(
         survey=survey, columns=columns, items=items, detectors=detectors,
         scale_columns=scale_columns, screeners=screeners, numbers=numbers, names=names,
@@ -423,7 +423,7 @@ def export_frame(
 def _arrow_schema(layout: ExportLayout, for_csv: bool) -> Any:
     import pyarrow as pa
 
-    types = {"text": pa.string(), "int8": pa.int8(), "int16": pa.int16(),
+    types: dict[str, pa.DataType] = {"text": pa.string(), "int8": pa.int8(), "int16": pa.int16(),
              "float": pa.float64(), "time": pa.timestamp("us", tz="UTC"), "code": pa.string()}
     if for_csv:
         types["time"] = pa.string()
@@ -434,13 +434,17 @@ def _arrow_table(frame: pd.DataFrame, layout: ExportLayout, schema: Any, for_csv
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    arrays = []
+    arrays: list[pa.Array] = []
     for column in layout.columns:
         values = frame[column.name]
+        array: pa.Array
         if column.kind == "time":
-            array = pa.array(values, type=pa.timestamp("us", tz="UTC"))
-            if for_csv:
-                array = pc.strftime(array, format="%Y-%m-%dT%H:%M:%SZ")
+            stamps = pa.array(values, type=pa.timestamp("us", tz="UTC"))
+            # pyarrow-stubs accept only time-zone-less timestamps here; Arrow takes both.
+            array = (
+                pc.strftime(stamps, format="%Y-%m-%dT%H:%M:%SZ")  # type: ignore[arg-type]
+                if for_csv else stamps
+            )
         elif column.kind == "float" and for_csv:
             array = pa.array(values.to_numpy().round(CSV_DECIMALS), type=pa.float64())
         else:

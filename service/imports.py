@@ -93,8 +93,9 @@ def posted_rows(
         raw = frame[duration_column]
         numbers = pd.to_numeric(raw, errors="coerce")
         # An unreadable duration is passed as it is, so the ingestion names it.
-        durations = numbers.astype(object).where(numbers.notna(), raw).where(raw.notna(), None)
-        durations = durations.tolist()
+        durations = (
+            numbers.astype(object).where(numbers.notna(), raw).where(raw.notna(), None).tolist()
+        )
     rows = []
     for position, values in enumerate(zip(*columns, strict=True) if columns else [()] * len(ids)):
         row: dict[str, Any] = {

@@ -267,7 +267,7 @@ def nightly_survey(
             latest = store.latest_reference(session, screener.version_id)
             renew = needs_new_reference(target, latest, settings)
             keep = latest is not None and uses_reference(screener) and not renew
-            plan = _Plan(target, latest.id if keep else None, renew)
+            plan = _Plan(target, latest.id if keep and latest is not None else None, renew)
             if not renew and not store.count_stale(
                 session, survey_id, target.sources, screener.version_id, plan.reference_id,
                 screener.fingerprint,

@@ -145,8 +145,8 @@ def screen_matrix(
     if calibration is not None:
         results = apply_calibration(results, calibration, screener.detectors)
         for d, name in enumerate(names):
-            if results[name] is not None:
-                flags[d] = results[name].flags
+            if (calibrated := results[name]) is not None:
+                flags[d] = calibrated.flags
     versions = [type(d).version for d in screener.detectors.values()]
     verdicts = assess(screener.instrument.verdict, results, reference_ranks(reference), n)
     return Screened(

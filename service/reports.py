@@ -23,7 +23,7 @@ import io
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from sqlalchemy import func, select
@@ -34,7 +34,7 @@ from detectors.reliability import scale_statistics
 
 from . import outcomes, store
 from .db import utcnow
-from .models import Decision, ReferenceSample, Respondent, Survey
+from .models import Decision, ReferenceSample, Respondent, Survey, Verdict
 from .rescreen import Target, read_stored
 from .screeners import Screener, screener_for
 
@@ -139,7 +139,11 @@ def _img(figure: Any, alt: str, name: str) -> str:
     )
 
 
-def _figure(width: float, height: float, layout: str | None = "constrained") -> Any:
+def _figure(
+    width: float,
+    height: float,
+    layout: Literal["constrained", "compressed", "tight"] | None = "constrained",
+) -> Any:
     from matplotlib.figure import Figure
 
     return Figure(figsize=(width, height), layout=layout)
@@ -280,13 +284,14 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
         hidden = int((~shown).sum())
         edges = np.linspace(bottom, top, 41)
         axes.hist(
-            [scores[shown & ~flags], scores[shown & flags]], bins=edges, stacked=True,
+            [scores[shown & ~flags], scores[shown & flags]], bins=edges.tolist(), stacked=True,
             color=[BLUE, RUST], label=["not flagged", "flagged"],
         )
+    from matplotlib.artist import Artist
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
-    handles = [Patch(color=BLUE, label="not flagged"), Patch(color=RUST, label="flagged")]
+    handles: list[Artist] = [Patch(color=BLUE, label="not flagged"), Patch(color=RUST, label="flagged")]
     title = "no cut-off"
     if common is not None:
         axes.axvline(common, color=INK, linestyle="--", linewidth=1.2)
@@ -365,8 +370,7 @@ def _patterns_picture(
 
     ramp = LinearSegmentedColormap.from_list(
         "answers", [ANSWER_LOW, ANSWER_MID, ANSWER_HIGH], N=max(2, highest - lowest + 1)
-    )
-    ramp = ramp.with_extremes(bad=ANSWER_MISSING)
+    ).with_extremes(bad=ANSWER_MISSING)
     rows = max(len(ids) for _, _, ids in groups)
     figure = _figure(max(7.4, 0.16 * len(item_ids) + 3.0), 0.2 * rows + 1.8)
     panels = figure.subplots(1, len(groups), sharey=False)
@@ -506,7 +510,7 @@ def _scale_section(session: Session, survey: Survey, screener: Screener) -> str:
     for scale, columns in instrument.scales.items():
         row: list[Any] = [scale, len(columns)]
         for table in tables.values():
-            line = table.loc[scale]
+            line = table.loc[scale].to_dict()
             row += [_n(int(line["respondents"])), _num(line["mean"]), _num(line["sd"]),
                     _num(line["alpha"], 3)]
         rows.append(row)
@@ -624,6 +628,7 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
         {"day": str(day), "respondents": int(n), "flagged_any": int(flagged)}
         for day, n, flagged in store.arrivals_by_day(session, survey.id)
     ]
+    assert survey.current_version_id is not None  # set when the survey is registered
     screener = screener_for(session, survey.current_version_id)
     instrument = screener.instrument
     numbers = store.version_numbers(session, survey.id)
@@ -666,8 +671,8 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
                 (_n(total), "respondents stored"),
                 (f"{_n(flagged_any)} ({_share(flagged_any, total)})",
                  "flagged by at least one detector"),
-                (_n(int(verdicts.get("review", 0))), "verdict: review"),
-                (_n(int(verdicts.get("likely_careless", 0))), "verdict: likely careless"),
+                (_n(int(verdicts.get(Verdict.REVIEW, 0))), "verdict: review"),
+                (_n(int(verdicts.get(Verdict.LIKELY_CARELESS, 0))), "verdict: likely careless"),
                 (_n(int(reviewed.get("exclude", 0))), "reviewed as exclude"),
                 (_n(int(reviewed.get("keep", 0))), "reviewed as keep"),
                 (_n(int(reviewed.get("none", 0))), "not reviewed yet"),

@@ -132,7 +132,6 @@ def answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
     """int8 answer codes (rows x items) from the stored JSON texts of answers, parsed in one
     vectorised pass (Arrow's JSON reader); null or absent answers become ``MISSING``."""
     import pyarrow as pa
-    import pyarrow.compute as pc
     import pyarrow.json as pa_json
 
     codes = np.full((len(texts), len(items)), MISSING, dtype=np.int8)
@@ -152,7 +151,8 @@ def answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
     if table.num_rows != len(texts):
         raise ValueError(f"{len(texts)} stored answer records gave {table.num_rows} rows")
     for j, item in enumerate(items):
-        codes[:, j] = pc.fill_null(table.column(item), int(MISSING)).to_numpy()
+        # pyarrow-stubs type the fill value as an Arrow scalar; a Python int is accepted too.
+        codes[:, j] = table.column(item).fill_null(int(MISSING)).to_numpy()  # type: ignore[arg-type]
     return codes
 
 
@@ -166,7 +166,14 @@ def read_stored(
     """Read the target's stored respondents ``chunk`` at a time into one matrix (answers parsed
     column-wise, durations as ``_seconds_taken`` gives them); ``progress(rows_read)``."""
     items = target.screener.instrument.item_ids
-    pks, ids, versions, digests, references, withs, durations, answers = ([] for _ in range(8))
+    pks: list[np.ndarray] = []
+    versions: list[np.ndarray] = []
+    references: list[np.ndarray] = []
+    durations: list[np.ndarray] = []
+    answers: list[np.ndarray] = []
+    ids: list[str] = []
+    digests: list[str] = []
+    withs: list[str | None] = []
     last = 0
     while True:
         rows = store.stored_answer_rows(session, survey_id, target.sources, last, chunk)
@@ -394,7 +401,7 @@ def rescreen_rows(
             state_changed |= old.present & (old.state != screened.states[d])
         if name in sample:
             write[name] = np.arange(n)
-            single = np.flatnonzero(~rescore & old.present)
+            single = np.flatnonzero(~rescore & earlier[name].present)
             replace_single.extend({"pk": pk, "detector": name} for pk in pks[single].tolist())
         else:
             write[name] = np.flatnonzero(rescore)

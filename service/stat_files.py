@@ -151,10 +151,10 @@ def write_labelled(
     """
     import pyreadstat
 
-    column_labels = {
+    column_labels: dict[str, str | None] = {
         name: fit_label(label, fmt) for name, label in variable_labels.items() if label
     }
-    labels = {
+    labels: dict[str, dict[int | float, str]] = {
         name: {code: fit_label(text, fmt, "value") for code, text in codes.items()}
         for name, codes in value_labels.items()
         if codes
@@ -189,7 +189,7 @@ class LabelledTable:
     #: Codes declared missing in the file, per variable (SPSS user-missing values).
     missing_codes: dict[str, set[float]]
     #: The program's display format per variable (``F8.0``, ``DATETIME20``, ``%td`` ...).
-    formats: dict[str, str]
+    formats: dict[str, str | None]
     #: ``string`` or a numeric storage type per variable.
     storage: dict[str, str]
     file_label: str
@@ -222,7 +222,7 @@ def read_labelled(path: str | Path, *, metadata_only: bool = False) -> LabelledT
         ) from None
     missing: dict[str, set[float]] = {}
     for name, ranges in (getattr(meta, "missing_ranges", None) or {}).items():
-        codes = set()
+        codes: set[float] = set()
         for entry in ranges:
             low, high = entry.get("lo"), entry.get("hi")
             if isinstance(low, int | float) and isinstance(high, int | float) and high - low < 1000:
@@ -383,21 +383,22 @@ def draft_instrument(
             or [ResponseProblem(None, None, None, f"{path.name} has no columns")]
         )
 
-    def key(fmt: dict[str, Any]) -> tuple:
+    def key(fmt: dict[str, Any] | None) -> tuple:
+        assert fmt is not None  # every column taken as an item has its format
         return fmt["points"], fmt["lowest"], tuple(fmt.get("labels") or ())
 
     counts: Counter[tuple] = Counter()
     first_seen: dict[tuple, int] = {}
     for position, column in enumerate(taken):
-        counts[key(column.response_format)] += 1  # type: ignore[arg-type]
-        first_seen.setdefault(key(column.response_format), position)  # type: ignore[arg-type]
+        counts[key(column.response_format)] += 1
+        first_seen.setdefault(key(column.response_format), position)
     # The format of most items; on a tie, the one met first.
     common_key = max(counts, key=lambda k: (counts[k], -first_seen[k]))
     common = taken[first_seen[common_key]].response_format
     items = []
     for column in taken:
         item: dict[str, Any] = {"id": column.name, "text": column.text}
-        if key(column.response_format) != common_key:  # type: ignore[arg-type]
+        if key(column.response_format) != common_key:
             item["response_format"] = column.response_format
         items.append(item)
     document = {

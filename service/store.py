@@ -15,7 +15,7 @@ import json
 import secrets
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import orjson
 from sqlalchemy import (
@@ -54,6 +54,10 @@ from .models import (
     WebhookDelivery,
 )
 from .security import new_token, new_webhook_secret
+
+if TYPE_CHECKING:
+    #: A result row of any width (SQLAlchemy types a row by its columns).
+    AnyRow = Row[*tuple[Any, ...]]
 
 __all__ = [
     "canonical_digest",
@@ -145,7 +149,7 @@ def revoke_key(session: Session, name: str) -> bool:
     return True
 
 
-def find_key(session: Session, lookup: str) -> Row[Any] | None:
+def find_key(session: Session, lookup: str) -> AnyRow | None:
     """(name, role, token_hash) of the active key with this lookup part."""
     return session.execute(
         select(ApiKey.name, ApiKey.role, ApiKey.token_hash).where(
@@ -260,10 +264,10 @@ def count_respondents(session: Session, survey_id: int) -> int:
 
 def existing_respondents(
     session: Session, survey_id: int, respondent_ids: Sequence[str]
-) -> dict[str, Row[Any]]:
+) -> dict[str, AnyRow]:
     """respondent id -> (id, respondent_id, answers_digest, flags, flag_count, verdict,
     careless_score) of stored ones."""
-    out: dict[str, Row[Any]] = {}
+    out: dict[str, AnyRow] = {}
     for chunk in _chunks(list(respondent_ids)):
         rows = session.execute(
             select(
@@ -349,7 +353,7 @@ def replace_respondents(session: Session, rows: list[dict[str, Any]], now: dt.da
             )
         )
     table = Respondent.__table__
-    values = {k: bindparam(k) for k in rows[0] if k != "pk"}
+    values: dict[str, Any] = {k: bindparam(k) for k in rows[0] if k != "pk"}
     connection.execute(update(table).where(table.c.id == bindparam("pk")).values(values), rows)
 
 
@@ -359,7 +363,7 @@ def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
     if not rows:
         return
     table = Respondent.__table__
-    values = {k: bindparam(k) for k in rows[0] if k != "pk"}
+    values: dict[str, Any] = {k: bindparam(k) for k in rows[0] if k != "pk"}
     session.connection().execute(
         update(table).where(table.c.id == bindparam("pk")).values(values), rows
     )
@@ -386,7 +390,7 @@ def json_text(value: Any) -> str:
     return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
 
 
-def insert_outcomes(session: Session, rows: list[tuple]) -> None:
+def insert_outcomes(session: Session, rows: Sequence[tuple[Any, ...]]) -> None:
     """Bulk-insert outcome tuples (``OUTCOME_COLUMNS`` order, evidence as JSON text).
 
     This is the widest write (respondents x detectors), so it goes to the driver's
@@ -495,7 +499,7 @@ class ListQuery:
 
 def list_respondents(
     session: Session, survey_id: int, query: ListQuery
-) -> tuple[list[Row[Any]], str | None]:
+) -> tuple[list[AnyRow], str | None]:
     """One page of respondents and the cursor of the next page (None on the last)."""
     descending = query.sort.startswith("-")
     column = SORTS[query.sort.lstrip("-")]
@@ -644,7 +648,7 @@ def latest_reference(session: Session, version_id: int) -> ReferenceSample | Non
 
 def stored_answer_rows(
     session: Session, survey_id: int, version_ids: Sequence[int], after_pk: int, limit: int
-) -> list[Row[Any]]:
+) -> list[AnyRow]:
     """The next ``limit`` respondents (by id, after ``after_pk``) of these survey versions:
     id, respondent_id, survey_version_id, answers as JSON text, answers_digest,
     duration_seconds, reference_id, screened_with."""
@@ -673,7 +677,7 @@ def stored_answer_rows(
     )
 
 
-def timed_rows(session: Session, survey_id: int, low: int, high: int) -> list[Row[Any]]:
+def timed_rows(session: Session, survey_id: int, low: int, high: int) -> list[AnyRow]:
     """(id, duration_seconds, started_at, submitted_at) of the respondents with ids in
     [low, high] that have no duration but both timestamps."""
     return list(
@@ -720,9 +724,9 @@ def count_stale(
     )
 
 
-def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
+def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, AnyRow]:
     """pk -> the stored screening summary of each respondent that still exists."""
-    out: dict[int, Row[Any]] = {}
+    out: dict[int, AnyRow] = {}
     for chunk in _chunks(list(pks)):
         rows = session.execute(
             select(
@@ -743,7 +747,7 @@ def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
     return out
 
 
-def outcome_values(session: Session, detector: str, low: int, high: int) -> list[Row[Any]]:
+def outcome_values(session: Session, detector: str, low: int, high: int) -> list[AnyRow]:
     """(respondent_pk, detector_version, state, flagged, score, cutoff) of one detector's
     stored results for the respondents with ids in [low, high]."""
     table = DetectorOutcome.__table__
@@ -763,11 +767,11 @@ def outcome_values(session: Session, detector: str, low: int, high: int) -> list
 
 def outcome_values_of(
     session: Session, pks: Sequence[int], detectors: Sequence[str]
-) -> list[Row[Any]]:
+) -> list[AnyRow]:
     """(respondent_pk, detector, detector_version, state, flagged, score, cutoff) of the named
     detectors' stored results for a few respondents."""
     table = DetectorOutcome.__table__
-    out: list[Row[Any]] = []
+    out: list[AnyRow] = []
     for chunk in _chunks(list(pks)):
         out.extend(
             session.connection().execute(
@@ -819,7 +823,7 @@ def _survey_rows(survey_id: int, low: int, high: int) -> Any:
 
 def outcome_tallies(
     session: Session, survey_id: int | None, low: int, high: int
-) -> list[Row[Any]]:
+) -> list[AnyRow]:
     """(detector, state, flagged, respondents) of a survey's results for the respondents with
     ids in [low, high], read along the primary key (``survey_id`` None: every respondent in
     the range is the survey's)."""
@@ -838,10 +842,10 @@ def outcome_tallies(
     )
 
 
-def outcome_sample(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
+def outcome_sample(session: Session, pks: Sequence[int]) -> list[AnyRow]:
     """(detector, flagged, score, cutoff) of the assessed results of these respondents."""
     table = DetectorOutcome.__table__
-    out: list[Row[Any]] = []
+    out: list[AnyRow] = []
     for chunk in _chunks(list(pks)):
         out.extend(
             session.connection().execute(
@@ -853,7 +857,7 @@ def outcome_sample(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
     return out
 
 
-def flag_set_counts(session: Session, survey_id: int) -> list[Row[Any]]:
+def flag_set_counts(session: Session, survey_id: int) -> list[AnyRow]:
     """(stored flag set, respondents) of the survey's flagged respondents."""
     return list(
         session.execute(
@@ -864,7 +868,7 @@ def flag_set_counts(session: Session, survey_id: int) -> list[Row[Any]]:
     )
 
 
-def arrivals_by_day(session: Session, survey_id: int) -> list[Row[Any]]:
+def arrivals_by_day(session: Session, survey_id: int) -> list[AnyRow]:
     """(day, respondents, flagged by at least one detector) per day of arrival (UTC)."""
     day = _day(session).label("day")
     flagged = func.coalesce(func.sum(case((Respondent.flag_count > 0, 1), else_=0)), 0)
@@ -878,7 +882,7 @@ def arrivals_by_day(session: Session, survey_id: int) -> list[Row[Any]]:
     )
 
 
-def survey_flags(session: Session, survey_id: int) -> list[Row[Any]]:
+def survey_flags(session: Session, survey_id: int) -> list[AnyRow]:
     """(id, survey_version_id, flag_count, verdict, careless_score, review_decision) of every
     respondent of a survey, by id."""
     return list(
@@ -897,9 +901,9 @@ def survey_flags(session: Session, survey_id: int) -> list[Row[Any]]:
     )
 
 
-def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
+def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, AnyRow]:
     """pk -> (id, respondent_id, answers) of a few respondents."""
-    out: dict[int, Row[Any]] = {}
+    out: dict[int, AnyRow] = {}
     for chunk in _chunks(list(pks)):
         for row in session.execute(
             select(Respondent.id, Respondent.respondent_id, Respondent.answers).where(

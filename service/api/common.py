@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import orjson
@@ -32,15 +33,18 @@ _DESCRIPTIONS = {
 }
 
 
-def errors(*codes: int) -> dict[int | str, dict[str, Any]]:
-    """OpenAPI responses entries for problem documents with these status codes."""
-    return {
-        code: {
+def errors(
+    *codes: int, also: Mapping[int | str, dict[str, Any]] | None = None
+) -> dict[int | str, dict[str, Any]]:
+    """OpenAPI responses entries: those of ``also`` (another success reply, say), then problem
+    documents with these status codes."""
+    entries: dict[int | str, dict[str, Any]] = dict(also or {})
+    for code in codes:
+        entries[code] = {
             "description": _DESCRIPTIONS[code],
             "content": {PROBLEM_JSON: {"schema": {"$ref": "#/components/schemas/Problem"}}},
         }
-        for code in codes
-    }
+    return entries
 
 
 async def read_body(request: Request, limit: int) -> bytes:

@@ -46,7 +46,7 @@ _EXAMPLE_CSV = (
         "evidence for a reviewer's decision, not a verdict: review before excluding anyone."
     ),
     response_class=FileResponse,
-    responses={
+    responses=errors(401, 403, 404, 422, also={
         200: {
             "description": "The file, as an attachment (`Content-Disposition`).",
             "content": {
@@ -56,8 +56,7 @@ _EXAMPLE_CSV = (
                 exports.MEDIA_TYPES["dta"]: {"schema": {"type": "string", "format": "binary"}},
             },
         }
-    }
-    | errors(401, 403, 404, 422),
+    }),
 )
 def export_survey(
     survey: str,

@@ -23,7 +23,7 @@ router = APIRouter(tags=["reports"])
         "and scale statistics with and without the flagged. " + EVIDENCE_NOTE
     ),
     response_class=HTMLResponse,
-    responses={
+    responses=errors(401, 403, 404, also={
         200: {
             "description": "An HTML page with its pictures embedded (opens offline): instrument "
             "notes, each detector's score distribution and cut-off, overlapping flags, flag "
@@ -40,8 +40,7 @@ router = APIRouter(tags=["reports"])
                 }
             },
         }
-    }
-    | errors(401, 403, 404),
+    }),
 )
 def survey_report(survey: str, caller: Reader, database: DatabaseDep) -> HTMLResponse:
     with database.read() as session:

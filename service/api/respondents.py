@@ -67,14 +67,13 @@ def _wants_csv(request: Request) -> bool:
         "Use it to find the respondents a person should look at first. " + EVIDENCE_NOTE
     ),
     response_model=RespondentPage,
-    responses={
+    responses=errors(401, 403, 404, 406, 422, also={
         200: {
             "description": "A page of respondents; `Accept: text/csv` gives the same rows as CSV "
             "(the next page's URL in the `Link` header).",
             "content": {"text/csv": {"schema": {"type": "string"}}},
         }
-    }
-    | errors(401, 403, 404, 406, 422),
+    }),
 )
 def list_respondents(
     survey: str,

@@ -45,8 +45,10 @@ _FIELDS = set(ResponseIn.model_fields)
     ),
     response_model=IngestReply,
     status_code=201,
-    responses={200: {"description": "Nothing new was stored (duplicates or a replay)"}}
-    | errors(400, 401, 403, 404, 409, 413, 415, 422),
+    responses=errors(
+        400, 401, 403, 404, 409, 413, 415, 422,
+        also={200: {"description": "Nothing new was stored (duplicates or a replay)"}},
+    ),
     openapi_extra={
         "requestBody": {
             "required": True,
@@ -61,7 +63,7 @@ _FIELDS = set(ResponseIn.model_fields)
                     "examples": {
                         "one": {
                             "summary": "One respondent, every item answered",
-                            "value": ResponseIn.model_config["json_schema_extra"]["examples"][0],
+                            "value": ResponseIn.model_json_schema()["examples"][0],
                         },
                         "batch": {
                             "summary": "A batch: an ordinary response, then one agreeing with "

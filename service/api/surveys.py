@@ -67,8 +67,10 @@ def survey_or_404(session: Any, survey: str) -> Survey:
     ),
     response_model=SurveyRegistered,
     status_code=201,
-    responses={200: {"description": "The same document was already registered"}}
-    | errors(400, 401, 403, 413, 415, 422),
+    responses=errors(
+        400, 401, 403, 413, 415, 422,
+        also={200: {"description": "The same document was already registered"}},
+    ),
     openapi_extra={
         "requestBody": {
             "required": True,

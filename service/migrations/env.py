@@ -18,7 +18,10 @@ def run_migrations_online() -> None:
         context.configure(connection=connection, target_metadata=target_metadata)
         context.run_migrations()
         return
-    engine = make_engine(config.get_main_option("sqlalchemy.url"))
+    url = config.get_main_option("sqlalchemy.url")
+    if url is None:
+        raise RuntimeError("the Alembic configuration names no sqlalchemy.url")
+    engine = make_engine(url)
     with engine.begin() as own:
         context.configure(connection=own, target_metadata=target_metadata)
         context.run_migrations()
