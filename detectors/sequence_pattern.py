@@ -273,7 +273,7 @@ class SequencePattern(Detector):
             longest_block = len(columns)
         in_runs = np.zeros(n, dtype=np.int64)
         answered = np.zeros(n, dtype=np.int64)
-        longest_stretch = np.zeros(n, dtype=np.int64)
+        has_stretch = np.zeros(n, dtype=bool)
         best_rule = np.full(n, -1, dtype=np.int64)
         best_length = np.zeros(n, dtype=np.int64)
         best_end = np.zeros(n, dtype=np.int64)
@@ -283,7 +283,7 @@ class SequencePattern(Detector):
             for rows in row_slices(n):
                 found = self._runs(instrument, matrix.answers[rows][:, columns], columns, starts)
                 (
-                    in_runs[rows], answered[rows], longest_stretch[rows],
+                    in_runs[rows], answered[rows], has_stretch[rows],
                     best_rule[rows], best_length[rows], best_end[rows], values[rows], last[rows],
                 ) = found
         if longest_block < shortest:
@@ -302,7 +302,7 @@ class SequencePattern(Detector):
         else:
             mark(states, reasons, answered == 0, State.NOT_ASSESSED, "no item answered")
             mark(
-                states, reasons, (answered > 0) & (longest_stretch < shortest),
+                states, reasons, (answered > 0) & ~has_stretch,
                 State.NOT_ASSESSED,
                 f"no {shortest} answered items in a row"
                 + ("" if cross else " within a block"),
@@ -335,11 +335,95 @@ class SequencePattern(Detector):
     ) -> tuple[np.ndarray, ...]:
         """Counted runs of one slice of respondents (raw: (rows, k) content answers).
 
-        Every run length comes from one cumulative maximum (see :func:`_in_a_row`); the work is
-        done item-major, (k, rows), so that each step runs along contiguous memory.
+        Most respondents hold no run that could count; a cheap necessary condition
+        (:meth:`_candidates`) finds the others, and only those are read run by run
+        (:meth:`_analyse`). The work is done item-major, (k, rows), so that each step runs
+        along contiguous memory.
         """
         k, rows = raw.shape[1], raw.shape[0]
-        x = np.ascontiguousarray(raw.T, dtype=np.int16)
+        x = np.ascontiguousarray(raw.T)
+        answered = x != MISSING
+        # Some stretch of the shortest counted length answered within a block.
+        shortest = min(self._min_lengths())
+        whole = _held_for(answered, shortest)
+        inside = np.zeros(k, dtype=bool)  # window ends whose window lies within one block
+        inside[shortest - 1 :] = _held_for(~starts[:, None], shortest - 1)[shortest - 1 :, 0]
+        in_runs = np.zeros(rows, dtype=np.int64)
+        best_rule = np.full(rows, -1, dtype=np.int64)
+        best_length = np.zeros(rows, dtype=np.int64)
+        best_end = np.zeros(rows, dtype=np.int64)
+        values = np.full((rows, _VALUES_SHOWN), -1, dtype=np.int64)
+        last = x[0].astype(np.int64)  # the answer at best_end (0) where no run counts
+        pick = np.flatnonzero(self._candidates(instrument, x, answered, columns))
+        if len(pick):
+            (
+                in_runs[pick], best_rule[pick], best_length[pick], best_end[pick],
+                values[pick], last[pick],
+            ) = self._analyse(instrument, x[:, pick], columns, starts)
+        has_stretch = np.asarray(whole[inside].any(axis=0))
+        return (
+            in_runs,
+            answered.sum(axis=0),
+            has_stretch,
+            best_rule,
+            best_length,
+            best_end,
+            values,
+            last,
+        )
+
+    def _candidates(
+        self, instrument: Instrument, x: np.ndarray, answered: np.ndarray, columns: np.ndarray
+    ) -> np.ndarray:
+        """Respondents (x: (k, rows) raw answers) who may hold a counted run: a necessary
+        condition, blocks ignored.
+
+        A counted run of a rule with minimum length L and period p (1 for steps) spans an
+        L-item window ending at every item from its L-th to its last; in each such window
+        the rule holds on the last L - p items (answered, one step or equal to the answer p
+        back). The run holds two neighbouring answers that differ, raw and after reverse
+        keying (else it is all one answer), and every pair of neighbours in the run lies in
+        one of those windows; so some window has the rule held and a raw difference, and
+        some window has the rule held and a keyed difference.
+        """
+        k, rows = x.shape
+        low = instrument.lowest[columns].astype(np.int16)[:, None]
+        high = instrument.highest[columns].astype(np.int16)[:, None]
+        wide = x.astype(np.int16)
+        keyed = np.where(instrument.keyed[columns][:, None] == -1, (low + high) - wide, wide)
+        differs = np.zeros((k, rows), dtype=bool)
+        differs[1:] = x[1:] != x[:-1]
+        keyed_differs = np.zeros((k, rows), dtype=bool)
+        keyed_differs[1:] = keyed[1:] != keyed[:-1]
+        candidate = np.zeros(rows, dtype=bool)
+        for period, minimum in zip((1, 2, 3), self._min_lengths(), strict=True):
+            if minimum > k:
+                continue
+            holds = np.zeros((k, rows), dtype=bool)
+            both = answered[period:] & answered[:-period]
+            if period == 1:
+                holds[1:] = both & (np.abs(wide[1:] - wide[:-1]) == 1)
+            else:
+                holds[period:] = both & (x[period:] == x[:-period])
+            window = _held_for(holds, minimum - period)
+            if not window.any():
+                continue
+            found = (window & ~_held_for(~keyed_differs, minimum - 1)).any(axis=0)
+            if period > 1:  # a step always differs raw
+                found &= (window & ~_held_for(~differs, minimum - 1)).any(axis=0)
+            candidate |= found
+        return candidate
+
+    def _analyse(
+        self, instrument: Instrument, raw_by_item: np.ndarray, columns: np.ndarray,
+        starts: np.ndarray,
+    ) -> tuple[np.ndarray, ...]:
+        """The counted runs of the given respondents (raw_by_item: (k, rows) raw answers).
+
+        Every run length comes from one cumulative maximum (see :func:`_in_a_row`).
+        """
+        k, rows = raw_by_item.shape
+        x = raw_by_item.astype(np.int16)
         answered = x != MISSING
         low = instrument.lowest[columns].astype(np.int16)[:, None]
         high = instrument.highest[columns].astype(np.int16)[:, None]
@@ -399,16 +483,7 @@ class SequencePattern(Detector):
             shown <= best_end[:, None], x[np.clip(shown, 0, k - 1), everyone[:, None]], -1
         ).astype(np.int64)
         last = x[best_end, everyone].astype(np.int64)
-        return (
-            in_runs,
-            answered.sum(axis=0),
-            stretch.max(axis=0).astype(np.int64),
-            best_rule,
-            best_length,
-            best_end,
-            values,
-            last,
-        )
+        return in_runs, best_rule, best_length, best_end, values, last
 
     @staticmethod
     def _sentence(evidence: Mapping[str, Any], item_ids: tuple[str, ...]) -> str:
@@ -451,6 +526,19 @@ def _in_a_row(condition: np.ndarray, starts: np.ndarray | None = None) -> np.nda
         np.maximum(broken[j - 1], broken[j], out=broken[j])
     # Where the condition fails, the last failure is j itself: the count is 0.
     return np.subtract(position, broken, out=broken)
+
+
+def _held_for(condition: np.ndarray, width: int) -> np.ndarray:
+    """True at each item (axis 0) where ``condition`` holds on it and the ``width - 1`` items
+    before it (False on the first ``width - 1`` items), by doubling the window."""
+    out = condition.copy()
+    have = 1
+    while have < width:
+        more = min(have, width - have)
+        out[more:] = out[more:] & out[:-more]
+        out[:more] = False
+        have += more
+    return out
 
 
 def _block_starts(instrument: Instrument, columns: np.ndarray, cross_blocks: bool) -> np.ndarray:
