@@ -156,21 +156,70 @@ def rank_tables(
     return tables
 
 
+#: Bins of the lookup that places scores among a table's values (:func:`_distinct_below`):
+#: 2^16 leaves at most one or two of a table's 1,001 values in a bin unless a long tail
+#: squeezes them together.
+_BINS = 1 << 16
+#: Table values a bin may hold before its scores are placed by binary search instead.
+_BIN_VALUES = 4
+
+
 def _percentiles(scores: np.ndarray, table: list[float]) -> np.ndarray:
-    """Mid-rank percentiles of ``scores`` in a sorted table: one binary search per score, the
-    count of equal table values read from the table's own runs (half the work of searching
-    from both sides)."""
+    """Mid-rank percentiles of ``scores`` in a sorted table, (#below + #at-or-below) / 2N.
+
+    Both counts come from the table's distinct values: with j of them below a score
+    (:func:`_distinct_below`), #below is where the (j+1)-th distinct value first appears in
+    the table, and #at-or-below where the one after it does when the score equals it."""
     grid = np.asarray(table, dtype=np.float64)
-    size = len(grid)
-    below = np.searchsorted(grid, scores, side="left")
-    # end of the run of equal values starting at each table position
-    run_end = np.searchsorted(grid, grid, side="right")
-    at = np.minimum(below, size - 1)
-    equal = (below < size) & (grid[at] == scores)
-    at_or_below = np.where(equal, run_end[at], below)
-    out = (below + at_or_below) / (2.0 * size)
-    out[~np.isfinite(scores)] = np.nan
+    values = np.asarray(scores, dtype=np.float64)
+    distinct, first = np.unique(grid, return_index=True)
+    bounds = np.append(first, len(grid))
+    below = _distinct_below(distinct, values)
+    equal = np.append(distinct, np.nan)[below] == values
+    out = (bounds[below] + bounds[below + equal]) / (2.0 * len(grid))
+    out[~np.isfinite(values)] = np.nan
     return out
+
+
+def _distinct_below(distinct: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """How many of the sorted, distinct table values lie below each value: the same as
+    ``np.searchsorted(distinct, values, side="left")``, without a binary search per value.
+
+    The table's values are spread over ``_BINS`` equal bins between the smallest and the
+    largest by one monotone mapping (shift, scale, clip, truncate), applied alike to the
+    values. A table value in a lower bin than a value lies below it and one in a higher bin
+    above it, so the count is the table values before the value's bin plus those of its own
+    bin below it, a comparison or two; a bin holding more than ``_BIN_VALUES`` table values
+    (a long tail squeezing the rest together) is searched the usual way.
+    """
+    low, high = float(distinct[0]), float(distinct[-1])
+    with np.errstate(over="ignore", divide="ignore"):
+        scale = (_BINS - 1) / (high - low) if high > low else np.inf
+    if len(values) < _BINS or not (np.isfinite(low) and np.isfinite(high) and np.isfinite(scale)):
+        return np.searchsorted(distinct, values, side="left")
+
+    def bin_of(x: np.ndarray) -> np.ndarray:
+        with np.errstate(over="ignore", invalid="ignore"):
+            position = (x - low) * scale
+        np.clip(position, 0, _BINS - 1, out=position)
+        position[np.isnan(position)] = _BINS - 1
+        return position.astype(np.intp)
+
+    starts = np.searchsorted(bin_of(distinct), np.arange(_BINS + 1), side="left")
+    held = np.diff(starts)
+    bins = bin_of(values)
+    # +inf after the table, so that looking past a bin's last value compares False; a NaN
+    # compares False throughout and counts every value before the last bin (set right below).
+    padded = np.concatenate([distinct, np.full(_BIN_VALUES, np.inf)])
+    where = starts.astype(np.int32)[bins]
+    count = where.astype(np.intp)
+    for offset in range(min(int(held.max()), _BIN_VALUES)):
+        count += padded[where + offset] < values
+    if held.max() > _BIN_VALUES:
+        crowded = np.flatnonzero(held[bins] > _BIN_VALUES)
+        count[crowded] = np.searchsorted(distinct, values[crowded], side="left")
+    count[np.isnan(values)] = len(distinct)  # NaN sorts after every number
+    return count
 
 
 @dataclass(frozen=True, eq=False)

@@ -12,11 +12,13 @@ from detectors import InstrumentError, matrix_from_frame, parse_instrument, scre
 from detectors._base import DetectorResult
 from detectors.instrument import VerdictPolicy
 from detectors.verdict import (
+    _BINS,
     COMBINED,
     FAMILIES_KEY,
     FAMILY_PREFIX,
     RANK_POINTS,
     UNFLAGGED_KEY,
+    _distinct_below,
     _percentiles,
     assess,
     rank_tables,
@@ -91,6 +93,39 @@ def test_percentiles_equal_scipys_mean_percentile_of_score():
     expected = [stats.percentileofscore(sample, p, kind="mean") / 100 for p in probes[:-1]]
     np.testing.assert_allclose(ours[:-1], expected, atol=1e-12)
     assert np.isnan(ours[-1])
+
+
+@pytest.mark.parametrize("shape", ["normal", "ties", "long tail", "one value"])
+def test_binned_placement_equals_numpys_binary_search(shape):
+    # Outside reference: numpy.searchsorted(side="left") on the distinct table values; the
+    # scores (more than the lookup's bins, so the binned path runs) include the table's own
+    # values, their floating-point neighbours, NaN and infinities.
+    rng = np.random.default_rng(7)
+    table = {
+        "normal": rng.normal(size=RANK_POINTS),
+        "ties": rng.integers(0, 20, RANK_POINTS).astype(float),
+        "long tail": np.r_[rng.normal(size=RANK_POINTS - 6), 1e6, 1e9, 1e12, 1e15, 1e300, -1e300],
+        "one value": np.full(RANK_POINTS, 2.5),
+    }[shape]
+    distinct = np.unique(table)
+    scores = np.concatenate([
+        rng.choice(distinct, 40_000), rng.normal(size=40_000) * 10, distinct,
+        np.nextafter(distinct, np.inf), np.nextafter(distinct, -np.inf),
+        [np.nan, np.inf, -np.inf, 0.0, -0.0, 1e308, -1e308],
+    ])
+    rng.shuffle(scores)
+    assert len(scores) > _BINS
+    np.testing.assert_array_equal(
+        _distinct_below(distinct, scores), np.searchsorted(distinct, scores, side="left")
+    )
+    # mid-rank percentile from two numpy binary searches, (#below + #at-or-below) / 2N
+    sorted_table = np.sort(table)
+    expected = (
+        np.searchsorted(sorted_table, scores, side="left")
+        + np.searchsorted(sorted_table, scores, side="right")
+    ) / (2.0 * len(table))
+    expected[~np.isfinite(scores)] = np.nan
+    np.testing.assert_array_equal(_percentiles(scores, list(sorted_table)), expected)
 
 
 def test_surprise_by_hand():
