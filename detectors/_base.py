@@ -19,6 +19,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from ._text import choose, concat, mapped, names_at, strings, to_objects
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import ResponseMatrix
@@ -149,6 +150,11 @@ class DetectorResult:
     evidence: Mapping[str, np.ndarray]
     item_ids: tuple[str, ...]
     describe: Callable[[Mapping[str, Any], tuple[str, ...]], str] = field(repr=False)
+    #: The same sentences for many respondents at once: evidence columns (already restricted
+    #: to the respondents wanted, all assessed) to a column of strings. None: one at a time.
+    describe_all: Callable[[Mapping[str, np.ndarray], tuple[str, ...]], np.ndarray] | None = (
+        field(default=None, repr=False)
+    )
 
     def __len__(self) -> int:
         return len(self.scores)
@@ -176,6 +182,42 @@ class DetectorResult:
         if state is not State.ASSESSED:
             return f"{self.name}: {state.label.replace('_', ' ')} ({self.reasons[i]})."
         return self.describe(self.evidence_for(i), self.item_ids)
+
+    def sentences(self, rows: np.ndarray | None = None) -> np.ndarray:
+        """The sentences of respondents ``rows`` (positions; all by default) as a numpy array
+        of strings, built for all of them at once; the same text as :meth:`sentence_for`."""
+        return to_objects(self.sentence_column(rows))
+
+    def sentence_column(self, rows: np.ndarray | None = None) -> Any:
+        """:meth:`sentences` as a text column (an Arrow string array)."""
+        rows = np.arange(len(self)) if rows is None else np.asarray(rows, dtype=np.intp)
+        states = self.states[rows]
+        assessed = states == State.ASSESSED
+        parts, order = [], []
+        if not assessed.all():
+            other = ~assessed
+            labels = [state.label.replace("_", " ") for state in State]
+            parts.append(concat(
+                f"{self.name}: ", names_at(labels, states[other]), " (",
+                mapped(self.reasons[rows[other]], str), ").",
+            ))
+            order.append(np.flatnonzero(other))
+        if assessed.any():
+            chosen = rows[assessed]
+            if self.describe_all is None:
+                text = [self.describe(self.evidence_for(i), self.item_ids) for i in chosen.tolist()]
+                parts.append(strings(np.array(text, dtype=object), len(text)))
+            else:
+                evidence = {key: values[chosen] for key, values in self.evidence.items()}
+                parts.append(strings(self.describe_all(evidence, self.item_ids), len(chosen)))
+            order.append(np.flatnonzero(assessed))
+        if not parts:
+            return strings("", 0)
+        import pyarrow as pa
+
+        where = np.empty(len(rows), dtype=np.int64)
+        where[np.concatenate(order)] = np.arange(len(rows))
+        return pa.concat_arrays(parts).take(where)
 
 
 # The base class -----------------------------------------------------------------------------------
@@ -312,6 +354,12 @@ class Detector:
     def _sentence(evidence: Mapping[str, Any], item_ids: tuple[str, ...]) -> str:
         raise NotImplementedError
 
+    #: ``_sentence`` for many respondents at once (evidence columns to a string column), the
+    #: same text word for word; None leaves bulk sentences to ``_sentence`` one at a time.
+    _sentences: ClassVar[
+        Callable[[Mapping[str, np.ndarray], tuple[str, ...]], np.ndarray] | None
+    ] = None
+
     # Helpers for subclasses -------------------------------------------------------------------
 
     def _result(
@@ -344,6 +392,7 @@ class Detector:
             evidence=dict(evidence),
             item_ids=instrument.item_ids,
             describe=self._sentence,
+            describe_all=self._sentences,
         )
 
 
@@ -377,3 +426,9 @@ def mark(
 def item_range(item_ids: tuple[str, ...], first: int, last: int) -> str:
     """'q05 to q18' (or one id) for evidence sentences."""
     return item_ids[first] if first == last else f"{item_ids[first]} to {item_ids[last]}"
+
+
+def item_ranges(item_ids: tuple[str, ...], first: np.ndarray, last: np.ndarray) -> np.ndarray:
+    """:func:`item_range` of each respondent, as a string column."""
+    first_names = names_at(item_ids, first)
+    return choose(first == last, first_names, concat(first_names, " to ", names_at(item_ids, last)))

@@ -24,6 +24,7 @@ from ._base import (
     new_states,
     row_slices,
 )
+from ._text import concat, fixed, plain
 from .even_odd import _pearson_rows
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -347,6 +348,18 @@ class ItemPairConsistency(Detector):
             f"{evidence['pair_threshold']:.2f} there) correlate {evidence['correlation']:.2f} "
             f"(expected well {'above' if alike else 'below'} 0; flagged at "
             f"{evidence['consistency_cutoff']:.2f} or {'less' if alike else 'more'})"
+        )
+
+    @classmethod
+    def _sentences(cls, evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        alike = cls.direction > 0
+        return concat(
+            "answers to ", plain(evidence["pairs_used"]), " pairs of items that the reference "
+            f"sample answers {cls._answered} (r {'above' if alike else 'below'} ",
+            fixed(evidence["pair_threshold"], 2), " there) correlate ",
+            fixed(evidence["correlation"], 2),
+            f" (expected well {'above' if alike else 'below'} 0; flagged at ",
+            fixed(evidence["consistency_cutoff"], 2), f" or {'less' if alike else 'more'})",
         )
 
 

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -161,6 +162,18 @@ disagreed with both in 1; mean answer 0.62 points above the midpoint'
             f"({evidence['acquiescence']:.2f}; flagged from {evidence['share_cutoff']:.2f}), "
             f"disagreed with both in {evidence['pairs_disagreed']}; "
             f"mean answer {abs(net):.2f} points {side} the midpoint"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        net = evidence["net_acquiescence"]
+        return concat(
+            "agreed with both statements of ", plain(evidence["pairs_agreed"]), " of ",
+            plain(evidence["pairs_answered"]), " answered opposite pairs (",
+            fixed(evidence["acquiescence"], 2), "; flagged from ",
+            fixed(evidence["share_cutoff"], 2), "), disagreed with both in ",
+            plain(evidence["pairs_disagreed"]), "; mean answer ", fixed(np.abs(net), 2),
+            " points ", choose(net >= 0, "above", "below"), " the midpoint",
         )
 
 

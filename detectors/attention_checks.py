@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states, row_slices
+from ._text import choose, concat, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -186,9 +187,51 @@ class AttentionChecks(Detector):
             text += f" (flagged from {evidence['min_failures']} failed checks)"
         return text
 
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        failed_count, judged = evidence["failed_count"], evidence["checks_judged"]
+        n = len(judged)
+        noun = choose(judged == 1, "attention check", "attention checks")
+        passed = concat("passed ", choose(judged == 1, "the", "all"), " ", plain(judged), " ", noun)
+        parts, present = [], []
+        not_counted = np.zeros(n, dtype=np.int64)
+        for c in range(evidence["failed"].shape[1]):
+            given, failed = evidence["given"][:, c], evidence["failed"][:, c].astype(bool)
+            skipped = np.equal(given, None)
+            answer = choose(
+                skipped, "left unanswered",
+                concat("answered ", _options(given, evidence["given_labels"][:, c])),
+            )
+            parts.append(concat(
+                plain(evidence["check_items"][:, c]), " asked for ",
+                _options(evidence["asked"][:, c], evidence["asked_labels"][:, c]), ", ", answer,
+            ))
+            present.append(failed)
+            not_counted += skipped & ~failed
+        listing = joined(parts, present, "; ", n)
+        text = choose(
+            failed_count == 0, passed,
+            concat("failed ", plain(failed_count), " of ", plain(judged), " ", noun, ": ", listing),
+        )
+        text = concat(text, choose(
+            not_counted > 0, concat(" (", plain(not_counted), " left unanswered, not counted)"), ""
+        ))
+        few = evidence["min_failures"]
+        return concat(text, choose(
+            (few > 1) & (failed_count > 0), concat(" (flagged from ", plain(few), " failed checks)"),
+            "",
+        ))
+
 
 def _option(code: int, label: str | None) -> str:
     return f"{code}" if label is None else f"{code} ({label})"
+
+
+def _options(codes: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    """:func:`_option` of each respondent."""
+    return choose(
+        np.equal(labels, None), plain(codes), concat(plain(codes), " (", plain(labels), ")")
+    )
 
 
 def _rows_of(values: np.ndarray, n: int) -> np.ndarray:

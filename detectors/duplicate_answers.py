@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -224,6 +225,36 @@ included: b'
         if evidence["min_copies"] > 1:
             text += f" (flagged from {evidence['min_copies']} others)"
         return text
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        count, answered, items = (
+            evidence["same_answers_count"], evidence["items_answered"], evidence["items"]
+        )
+        n = len(count)
+        nobody = concat(
+            "no other respondent gave the same answers (", plain(answered), " of ", plain(items),
+            " items answered)",
+        )
+        where = choose(
+            answered == items, concat("all ", plain(items), " items"),
+            concat("all ", plain(answered), " answered items of ", plain(items),
+                   ", unanswered items included"),
+        )
+        others = evidence["same_answers_as"]
+        present = [~np.equal(others[:, j], None) for j in range(others.shape[1])]
+        listed = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        names = joined([plain(others[:, j]) for j in range(others.shape[1])], present, ", ", n)
+        text = concat(
+            "same answers as ", plain(count), " ",
+            choose(count == 1, "other respondent", "other respondents"), " on ", where, ": ", names,
+            choose(count > listed, concat(" and ", plain(count - listed), " more"), ""),
+            choose(
+                evidence["min_copies"] > 1,
+                concat(" (flagged from ", plain(evidence["min_copies"]), " others)"), "",
+            ),
+        )
+        return choose(count == 0, nobody, text)
 
 
 def _others(rows: np.ndarray, group: np.ndarray, ids: np.ndarray) -> np.ndarray:

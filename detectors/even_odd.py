@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -210,6 +211,16 @@ Spearman-Brown (flagged at 0.30 or less)'
             f"odd and even halves of the scales {verb}: r {evidence['correlation']:.2f} across "
             f"{evidence['scales_used']} scales, {corrected:.2f} after Spearman-Brown "
             f"(flagged at {cutoff:.2f} or less)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        corrected, cutoff = evidence["corrected_correlation"], evidence["consistency_cutoff"]
+        return concat(
+            "odd and even halves of the scales ", choose(corrected <= cutoff, "disagree", "agree"),
+            ": r ", fixed(evidence["correlation"], 2), " across ", plain(evidence["scales_used"]),
+            " scales, ", fixed(corrected, 2), " after Spearman-Brown (flagged at ",
+            fixed(cutoff, 2), " or less)",
         )
 
 

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -150,4 +151,14 @@ class ExtremeStyle(Detector):
             f"answered {evidence['items_at_end_point']} of {evidence['items_answered']} items at "
             f"an end point ({evidence['share']:.2f}: {evidence['items_at_lowest']} lowest, "
             f"{evidence['items_at_highest']} highest; flagged from {evidence['share_cutoff']:.2f})"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        return concat(
+            "answered ", plain(evidence["items_at_end_point"]), " of ",
+            plain(evidence["items_answered"]), " items at an end point (",
+            fixed(evidence["share"], 2), ": ", plain(evidence["items_at_lowest"]), " lowest, ",
+            plain(evidence["items_at_highest"]), " highest; flagged from ",
+            fixed(evidence["share_cutoff"], 2), ")",
         )

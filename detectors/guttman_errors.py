@@ -11,6 +11,7 @@ from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from ._guttman import cumulative_positions, most_guttman_errors_by_score, step_positions
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -417,4 +418,19 @@ class GuttmanErrors(Detector):
             f"{lead}: {evidence['guttman_errors']} Guttman errors, {normed:.2f} of the most "
             f"possible ({evidence['most_errors']}) for this total score on "
             f"{evidence['items_answered']} answered items (flagged at {cutoff:.2f} or more)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        normed, cutoff = evidence["normed_errors"], evidence["normed_errors_cutoff"]
+        lead = choose(
+            normed >= cutoff,
+            "answers often take rarer answer steps while refusing commoner ones",
+            "answers mostly follow the sample's order of answer steps",
+        )
+        return concat(
+            lead, ": ", plain(evidence["guttman_errors"]), " Guttman errors, ", fixed(normed, 2),
+            " of the most possible (", plain(evidence["most_errors"]), ") for this total score on ",
+            plain(evidence["items_answered"]), " answered items (flagged at ", fixed(cutoff, 2),
+            " or more)",
         )

@@ -20,6 +20,7 @@ from ._rating_scale import (
     _plan_or_mark,
     category_log_probabilities,
 )
+from ._text import choose, concat, fixed, general, plain, plural
 from .instrument import Instrument
 from .responses import ResponseMatrix
 
@@ -256,6 +257,26 @@ class LogLikelihoodFit(RatingScaleDetector):
                 "the lowest or all in the highest option) left out"
             )
         return text
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        lz, cutoff = evidence["lz"], evidence["lz_cutoff"]
+        lead = choose(
+            lz <= cutoff,
+            "answer pattern unlikely under the rating scale model",
+            "answer pattern about as likely as the rating scale model expects",
+        )
+        used, extreme = evidence["items_used"], evidence["extreme_scales"]
+        return concat(
+            lead, ": lz ", fixed(lz, 2), " (log-likelihood ", fixed(evidence["log_likelihood"], 1),
+            " against ", fixed(evidence["expected_log_likelihood"], 1), " ± ",
+            fixed(evidence["log_likelihood_sd"], 1), " expected) on ", plain(used), " item",
+            plural(used), " (flagged at lz ", general(cutoff), " or below)",
+            choose(extreme != 0, concat(
+                "; ", plain(extreme), " scale", plural(extreme), " with an extreme score (all "
+                "answers in the lowest or all in the highest option) left out",
+            ), ""),
+        )
 
 
 def _group_terms(model: _Model, persons: _Persons) -> np.ndarray:

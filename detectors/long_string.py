@@ -8,7 +8,17 @@ from typing import Any
 
 import numpy as np
 
-from ._base import Detector, DetectorResult, Interval, State, item_range, mark, new_states
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    State,
+    item_range,
+    item_ranges,
+    mark,
+    new_states,
+)
+from ._text import concat, plain
 from .instrument import Instrument
 from .responses import ResponseMatrix
 
@@ -211,4 +221,13 @@ class LongString(Detector):
             f"same answer, {evidence['answer']}, on {evidence['run_length']} items in a row, "
             f"{item_range(item_ids, evidence['first_item'], evidence['last_item'])} "
             f"(flagged from {evidence['run_cutoff']} in a row)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        return concat(
+            "same answer, ", plain(evidence["answer"]), ", on ", plain(evidence["run_length"]),
+            " items in a row, ",
+            item_ranges(item_ids, evidence["first_item"], evidence["last_item"]),
+            " (flagged from ", plain(evidence["run_cutoff"]), " in a row)",
         )

@@ -11,6 +11,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states
+from ._text import choose, concat, fixed, general, joined, names_at, plain, plural
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -677,4 +678,30 @@ class Mahalanobis(Detector):
         return (
             f"answers far from the sample's pattern: {measured}; largest "
             f"contribution{'s' * (len(named) != 1)} from {', '.join(named)}"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        p_value = evidence["p_value"]
+        n = len(p_value)
+        shown = choose(p_value < 0.0001, "p < 0.0001", concat("p = ", general(p_value, 2)))
+        answered = evidence["degrees_of_freedom"]
+        measured = concat(
+            "squared distance ", fixed(evidence["squared_distance"], 1), " on ", plain(answered),
+            " answered item", plural(answered), " (", shown, "; flagged from ",
+            fixed(evidence["distance_cutoff"], 1), ")",
+        )
+        top = evidence["top_items"]
+        present = [top[:, j] >= 0 for j in range(top.shape[1])]
+        named = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        listing = joined(
+            [names_at(item_ids, np.maximum(top[:, j], 0)) for j in range(top.shape[1])], present, ", ", n
+        )
+        return choose(
+            named == 0,
+            concat("answers not unusual for the sample: ", measured),
+            concat(
+                "answers far from the sample's pattern: ", measured, "; largest contribution",
+                plural(named), " from ", listing,
+            ),
         )

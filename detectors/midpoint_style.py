@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -143,4 +144,17 @@ class MidpointStyle(Detector):
             f"answered {evidence['items_at_midpoint']} of {evidence['items_answered']} items at "
             f"the midpoint ({evidence['share']:.2f}; flagged from {evidence['share_cutoff']:.2f})"
             + (f"; {left_out} items with an even number of points left out" if left_out else "")
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        left_out = evidence["items_without_midpoint"]
+        return concat(
+            "answered ", plain(evidence["items_at_midpoint"]), " of ",
+            plain(evidence["items_answered"]), " items at the midpoint (",
+            fixed(evidence["share"], 2), "; flagged from ", fixed(evidence["share_cutoff"], 2), ")",
+            choose(
+                left_out != 0,
+                concat("; ", plain(left_out), " items with an even number of points left out"), "",
+            ),
         )

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -128,3 +129,18 @@ class MissingAnswers(Detector):
             listed = [item for item in evidence["first_missing_items"] if item is not None]
             text += ": " + ", ".join(listed) + (", ..." if count > len(listed) else "")
         return text + f" (flagged from {evidence['share_cutoff']:.0%})"
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        count, items = evidence["missing_count"], evidence["items"]
+        n = len(count)
+        first = evidence["first_missing_items"]
+        present = [~np.equal(first[:, j], None) for j in range(first.shape[1])]
+        listed = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        names = joined([plain(first[:, j]) for j in range(first.shape[1])], present, ", ", n)
+        return concat(
+            plain(count), " of ", plain(items), " items unanswered (",
+            percent(evidence["missing_share"]), ")",
+            choose(count != 0, concat(": ", names, choose(count > listed, ", ...", "")), ""),
+            " (flagged from ", percent(evidence["share_cutoff"]), ")",
+        )

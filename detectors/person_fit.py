@@ -25,6 +25,17 @@ from ._rating_scale import (
 from ._rating_scale import _pattern_groups as _pattern_groups  # kept importable from here
 from ._rating_scale import _person_estimates as _person_estimates  # kept importable from here
 from ._rating_scale import _step_positions as _step_positions  # kept importable from here
+from ._text import (
+    choose,
+    concat,
+    fixed,
+    general,
+    mapped,
+    names_at,
+    percent,
+    plain,
+    plural,
+)
 from .instrument import Instrument
 from .responses import ResponseMatrix
 
@@ -624,4 +635,43 @@ class PersonFit(RatingScaleDetector):
                 "scores)"
             )
         return text
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        misfit = evidence["misfit"]
+        lead = mapped(misfit, {
+            "underfit": "answers less predictable than the rating scale model expects",
+            "overfit": "answers more predictable than the rating scale model expects",
+            "none": "answers fit the rating scale model",
+        }.__getitem__)
+        judged = choose(evidence["judged"] == "outfit_or_infit", "outfit or infit", "outfit")
+        used = evidence["items_used"]
+        upper = general(evidence["upper_mean_square"])
+        worst = evidence["most_unexpected_item"]
+        errors = evidence["guttman_errors"]
+        normalised = evidence["guttman_errors_normalised"].astype(np.float64)
+        return concat(
+            lead, ": outfit ", fixed(evidence["outfit"], 2), ", infit ",
+            fixed(evidence["infit"], 2), " on ", plain(used), " item", plural(used),
+            " (flagged when ", judged, " lies ",
+            choose(
+                evidence["flag_overfit"].astype(bool),
+                concat("outside ", general(evidence["lower_mean_square"]), " to ", upper, ")"),
+                concat("above ", upper, ")"),
+            ),
+            choose(
+                (misfit == "underfit") & (worst >= 0),
+                concat(
+                    "; most unexpected answer ", names_at(item_ids, np.maximum(worst, 0)),
+                    " (squared standardised residual ",
+                    fixed(evidence["largest_squared_residual"], 1), ")",
+                ),
+                "",
+            ),
+            "; ", plain(errors), " Guttman error", plural(errors),
+            choose(
+                ~np.isnan(normalised),
+                concat(" (", percent(normalised), " of the most possible for these scores)"), "",
+            ),
+        )
 

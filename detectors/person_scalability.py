@@ -10,6 +10,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -379,4 +380,20 @@ reference respondents (flagged at 0.00 or less)'
             f"answers order the items {verb} the reference sample: HT {value:.2f} over "
             f"{evidence['items']} items against {evidence['reference_respondents']} reference "
             f"respondents{note} (flagged at {cutoff:.2f} or less)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        value, cutoff = evidence["scalability"], evidence["scalability_cutoff"]
+        filled = evidence["answers_filled"]
+        return concat(
+            "answers order the items ", choose(value <= cutoff, "unlike", "like"),
+            " the reference sample: HT ", fixed(value, 2), " over ", plain(evidence["items"]),
+            " items against ", plain(evidence["reference_respondents"]),
+            " reference respondents",
+            choose(filled != 0, concat(
+                ", ", plain(filled), " missing answer", plural(filled),
+                " filled with the item's typical answer",
+            ), ""),
+            " (flagged at ", fixed(cutoff, 2), " or less)",
         )

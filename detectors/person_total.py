@@ -9,6 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .mahalanobis import _mismatch
 from .responses import MISSING, ResponseMatrix
@@ -323,4 +324,20 @@ means over 6 answered items (flagged at -0.20 or less)"
         return (
             f"{lead}: r {r:.2f} with the sample's item means over {evidence['items_used']} "
             f"answered items (flagged at {cutoff:.2f} or less)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        r = evidence["correlation"]
+        lead = choose(
+            r > 0, "answers follow the reference sample's item profile",
+            choose(
+                r < 0, "answers run against the reference sample's item profile",
+                "answers do not follow the reference sample's item profile",
+            ),
+        )
+        return concat(
+            lead, ": r ", fixed(r, 2), " with the sample's item means over ",
+            plain(evidence["items_used"]), " answered items (flagged at ",
+            fixed(evidence["consistency_cutoff"], 2), " or less)",
         )

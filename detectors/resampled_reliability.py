@@ -9,6 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .even_odd import mark_unjudged, spearman_brown, splittable_scales
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -246,6 +247,18 @@ between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less
             f"{evidence['splits_used']} half-splits of {evidence['scales_used']} scales (SD "
             f"{evidence['correlation_spread']:.2f} between splits), reliability "
             f"{reliability:.2f} after Spearman-Brown (flagged at {cutoff:.2f} or less)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        reliability, cutoff = evidence["reliability"], evidence["reliability_cutoff"]
+        return concat(
+            "random halves of the scales ", choose(reliability <= cutoff, "disagree", "agree"),
+            ": mean r ", fixed(evidence["mean_correlation"], 2), " over ",
+            plain(evidence["splits_used"]), " half-splits of ", plain(evidence["scales_used"]),
+            " scales (SD ", fixed(evidence["correlation_spread"], 2),
+            " between splits), reliability ", fixed(reliability, 2),
+            " after Spearman-Brown (flagged at ", fixed(cutoff, 2), " or less)",
         )
 
 

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, general, mapped, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -189,6 +190,24 @@ answered items) (flagged at SD 0.5 or less)"
         return (
             f"{lead}: SD {whole}; lowest in block {block!r}, {block_sd:.2f} "
             f"({evidence['lowest_block_items']} answered items){tail}"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        overall, cutoff = evidence["overall_sd"], evidence["sd_cutoff"]
+        block = evidence["lowest_block"]
+        head = concat(
+            choose(overall <= cutoff, "answers vary little", "answers vary"), ": SD ",
+            fixed(overall, 2), " over all ", plain(evidence["items_answered"]), " answered items",
+        )
+        return concat(
+            head,
+            choose(np.equal(block, None), "", concat(
+                "; lowest in block ", mapped(block, repr), ", ",
+                fixed(evidence["lowest_block_sd"], 2), " (",
+                plain(evidence["lowest_block_items"]), " answered items)",
+            )),
+            " (flagged at SD ", general(cutoff), " or less)",
         )
 
 

@@ -9,6 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, plain
 from .instrument import Instrument
 from .person_total import keyed_slices
 from .responses import ResponseMatrix
@@ -196,6 +197,17 @@ of the other answers on its scale, over 6 items of 2 scales (flagged at -0.20 or
             f"answers {verb} the rest of their scales: r {r:.2f} between each answer and the "
             f"mean of the other answers on its scale, over {evidence['items_used']} items of "
             f"{evidence['scales_used']} scales (flagged at {cutoff:.2f} or less)"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        r = evidence["correlation"]
+        verb = choose(r > 0, "agree with", choose(r < 0, "disagree with", "do not agree with"))
+        return concat(
+            "answers ", verb, " the rest of their scales: r ", fixed(r, 2),
+            " between each answer and the mean of the other answers on its scale, over ",
+            plain(evidence["items_used"]), " items of ", plain(evidence["scales_used"]),
+            " scales (flagged at ", fixed(evidence["consistency_cutoff"], 2), " or less)",
         )
 
 

@@ -11,6 +11,7 @@ import numpy as np
 
 from ._base import DetectorResult, State
 from ._registry import REGISTRY, get_detector
+from ._text import choose, concat, strings, to_objects
 from .calibration import CALIBRATION_KEY, Calibration, apply, calibrate
 from .instrument import Instrument
 from .responses import ResponseMatrix
@@ -162,6 +163,28 @@ class Screening:
         """The readable evidence of every flag raised for respondent ``i``."""
         return [r.sentence_for(i) for r in self.results.values() if r.flags[i]]
 
+    def evidence_column(self) -> np.ndarray:
+        """Per respondent, the sentences of every flag raised joined by " | " (detector order;
+        empty without a flag), each detector's sentences built for all its flagged at once."""
+        import pyarrow as pa
+
+        out = np.full(self.n_respondents, "", dtype=object)
+        flagged = np.flatnonzero(self.flag_count)  # only these get a sentence
+        m = len(flagged)
+        evidence = strings("", m)
+        started = np.zeros(m, dtype=bool)
+        for result in self.results.values():
+            here = result.flags[flagged]
+            if here.any():
+                # this detector's sentences in place, empty for the respondents it did not flag
+                where = np.full(m, here.sum(), dtype=np.int64)
+                where[here] = np.arange(here.sum())
+                text = pa.concat_arrays([result.sentence_column(flagged[here]), strings("", 1)])
+                evidence = concat(evidence, choose(started & here, " | ", ""), text.take(where))
+                started |= here
+        out[flagged] = to_objects(evidence)
+        return out
+
     def to_frame(self) -> pd.DataFrame:
         """One row per respondent: id, ``<name>_score`` and ``<name>_flag`` per detector,
         ``flag_count``, ``verdict``, ``careless_score``, the scale scores (``scale_<name>`` and
@@ -186,10 +209,7 @@ class Screening:
         if self.scales is not None:
             for name in self.scales.columns:
                 columns[name] = self.scales[name].to_numpy()
-        evidence = np.full(self.n_respondents, "", dtype=object)
-        for i in np.flatnonzero(count).tolist():
-            evidence[i] = " | ".join(self.flagged_sentences(i))
-        columns["evidence"] = evidence
+        columns["evidence"] = self.evidence_column()
         return pd.DataFrame(columns)
 
     def summary(self) -> dict[str, Any]:

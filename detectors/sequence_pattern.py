@@ -15,10 +15,12 @@ from ._base import (
     Options,
     State,
     item_range,
+    item_ranges,
     mark,
     new_states,
     row_slices,
 )
+from ._text import choose, concat, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -510,6 +512,43 @@ class SequencePattern(Detector):
         return (
             f"answers {what} ({quoted}) on {length} items in a row, "
             f"{item_range(item_ids, evidence['first_item'], evidence['last_item'])}; {share}"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        share = concat(
+            percent(evidence["share_in_runs"]), " of answers in patterned runs (flagged from ",
+            percent(evidence["share_cutoff"]), ")",
+        )
+        rule = evidence["rule"]
+        n = len(rule)
+        answers = evidence["run_answers"]
+        present = [answers[:, j] >= 0 for j in range(answers.shape[1])]
+        shown = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        length = evidence["run_length"]
+        rise = evidence["last_answer"] - answers[:, 0] if answers.shape[1] else np.zeros(n)
+        what = choose(
+            rule == "steps",
+            choose(
+                np.abs(rise) != length - 1, "step up and down by one",
+                choose(rise > 0, "step up by one", "step down by one"),
+            ),
+            choose(rule == "period_2", "alternate between two answers", "repeat a cycle of three"),
+        )
+        quoted = concat(
+            joined([plain(answers[:, j]) for j in range(answers.shape[1])], present, ",", n),
+            choose(length > shown, ",...", ""),
+        )
+        none = np.equal(rule, None)
+        first = np.where(none, 0, evidence["first_item"]).astype(np.intp)
+        last = np.where(none, 0, evidence["last_item"]).astype(np.intp)
+        return choose(
+            none,
+            concat("no run of answers following a step or cycle pattern; ", share),
+            concat(
+                "answers ", what, " (", quoted, ") on ", plain(length), " items in a row, ",
+                item_ranges(item_ids, first, last), "; ", share,
+            ),
         )
 
 

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, fixed, general, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -165,6 +166,31 @@ fast as the median respondent (90 s)'
             return text + f", {relative:.1f} times as fast as the median respondent ({median} s)"
         return text + f", took {1 / relative:.1f} times as long as the median respondent ({median} s)"
 
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        answered = evidence["items_answered"]
+        relative = evidence["relative_speed"]
+        median = _seconds_all(evidence["median_duration_seconds"])
+        with np.errstate(divide="ignore"):
+            slower = fixed(1 / relative, 1)
+        return concat(
+            fixed(evidence["seconds_per_item"], 1), " seconds per answered item (",
+            _seconds_all(evidence["duration_seconds"]), " s for ", plain(answered), " item",
+            plural(answered), "; flagged at ", general(evidence["seconds_per_item_cutoff"]),
+            " s or less)",
+            choose(
+                relative >= 1,
+                concat(", ", fixed(relative, 1), " times as fast as the median respondent ("),
+                concat(", took ", slower, " times as long as the median respondent ("),
+            ),
+            median, " s)",
+        )
+
 
 def _seconds(value: float) -> str:
     return f"{value:.0f}" if value >= 10 else f"{value:.1f}"
+
+
+def _seconds_all(values: np.ndarray) -> np.ndarray:
+    """:func:`_seconds` of each respondent."""
+    return choose(values >= 10, fixed(values, 0), fixed(values, 1))

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._text import choose, concat, lookup, mapped, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -190,17 +191,52 @@ block mixes positively and reverse-keyed items"
             )
         mixed = evidence["mixed_keying_blocks"]
         if len(mixed) == 1 and count == 1:
-            text += ", although the block mixes positively and reverse-keyed items"
-        elif len(mixed) == 1:
-            text += f", although {_block_phrase(mixed[0])} mixes positively and reverse-keyed items"
-        elif mixed:
-            listed = ", ".join(repr(name) for name in mixed)
-            text += f", although blocks {listed} mix positively and reverse-keyed items"
-        return text
+            return text + _ONE_BLOCK_MIXED
+        return text + _mixed_phrase(mixed)
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+        judged, count = evidence["blocks_judged"], evidence["blocks_straightlined"]
+        of_blocks = concat(plain(count), " of ", plain(judged), " block", plural(judged))
+        main = mapped(evidence["block"], _block_phrase)
+        answer, items = plain(evidence["answer"]), plain(evidence["items_answered"])
+        listed = mapped(
+            evidence["straightlined_blocks"], lambda names: ", ".join(repr(b) for b in names)
+        )
+        mixed = evidence["mixed_keying_blocks"]
+        text = choose(
+            count == 1,
+            concat("same answer, ", answer, ", on all ", items, " answered items of ", main, " (",
+                   of_blocks, ")"),
+            concat("same answer on every answered item of ", of_blocks, " (", listed, "), e.g. ",
+                   answer, " on all ", items, " answered items of ", main),
+        )
+        many_mixed = mapped(mixed, _mixed_phrase)
+        text = concat(text, choose(
+            (count == 1) & (lookup(mixed, len) == 1),
+            _ONE_BLOCK_MIXED, many_mixed,
+        ))
+        return choose(
+            count == 0,
+            concat("no block answered with one answer throughout (", of_blocks, ")"), text,
+        )
+
+
+_ONE_BLOCK_MIXED = ", although the block mixes positively and reverse-keyed items"
 
 
 def _block_phrase(name: str) -> str:
     return "the whole questionnaire" if name == _WHOLE_QUESTIONNAIRE else f"block {name!r}"
+
+
+def _mixed_phrase(names: tuple[str, ...]) -> str:
+    """What the sentence adds about blocks of mixed keying (when not the one block named)."""
+    if len(names) == 1:
+        return f", although {_block_phrase(names[0])} mixes positively and reverse-keyed items"
+    if names:
+        listed = ", ".join(repr(name) for name in names)
+        return f", although blocks {listed} mix positively and reverse-keyed items"
+    return ""
 
 
 def _names_where(selected: np.ndarray, names: list[str]) -> np.ndarray:
