@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from .acquiescence import _pair_counts
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -70,13 +71,8 @@ def acquiescence_index(
     pairs = instrument.pairs
     if len(pairs) == 0:
         return np.full(n, np.nan)
-    first = matrix.answers[:, pairs[:, 0]]
-    second = matrix.answers[:, pairs[:, 1]]
-    complete = (first != MISSING) & (second != MISSING)
-    centre = instrument.midpoint
-    centred = (first - centre[pairs[:, 0]]) + (second - centre[pairs[:, 1]])
-    count = complete.sum(axis=1)
-    total = np.where(complete, centred, 0.0).sum(axis=1)
+    # the acquiescence detector's net acquiescence, counted the same way
+    count, _, _, total = _pair_counts(instrument, matrix, pairs)
     with np.errstate(invalid="ignore", divide="ignore"):
         shift = total / (2 * count)
     shift[count < min_pairs] = np.nan
