@@ -218,7 +218,8 @@ class Screening:
 
         detectors = {}
         for name, result in self.results.items():
-            reasons = pd.Series(result.reasons[result.states != State.ASSESSED])
+            # object dtype: counting needs no conversion to a string column first
+            reasons = pd.Series(result.reasons[result.states != State.ASSESSED], dtype=object)
             detectors[name] = {
                 "flagged": int(result.flags.sum()),
                 "assessed": int((result.states == State.ASSESSED).sum()),

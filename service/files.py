@@ -104,6 +104,7 @@ def screening_records(screening: Screening) -> list[dict[str, Any]]:
         screening.scales.astype(object).where(screening.scales.notna(), None).to_dict("records")
         if screening.scales is not None else None
     )
+    sentences = {name: result.sentences() for name, result in screening.results.items()}
     for i, respondent in enumerate(screening.respondent_ids.tolist()):
         results = {}
         for name, result in screening.results.items():
@@ -115,7 +116,7 @@ def screening_records(screening: Screening) -> list[dict[str, Any]]:
                 "flag": bool(result.flags[i]) if assessed else None,
                 "reason": None if assessed else result.reasons[i],
                 "evidence": result.evidence_for(i) if assessed else {},
-                "sentence": result.sentence_for(i),
+                "sentence": sentences[name][i],
             }
         record = {
             "respondent_id": respondent,

@@ -91,20 +91,10 @@ def main() -> None:
         lines.append(f"  {name:<50} {seconds:6.2f} s  flagged {flagged:,}")
     print("\n".join(lines))
     if args.write:
-        import datetime as dt
-        import os
-        import subprocess
-        from pathlib import Path
+        from figures import write_figures
 
-        root = Path(__file__).resolve().parents[2]
-        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=root,
-                                capture_output=True, text=True).stdout.strip()
-        load = os.getloadavg()[0]
-        (root / "docs" / "speed-detectors.md").write_text(
-            "# Speed of the whole detector set\n\n"
-            f"Written by `tests/benchmarks/bench_detectors.py` on {dt.date.today()} at commit "
-            f"`{commit}` (load average {load:.1f} on {os.cpu_count()} cores when it ended).\n\n"
-            "```\n" + "\n".join(lines) + "\n```\n"
+        write_figures(
+            "speed-detectors.md", "Speed of the whole detector set", "bench_detectors.py", lines
         )
 
 

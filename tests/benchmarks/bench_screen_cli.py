@@ -1,6 +1,21 @@
-"""Benchmark: `heedful screen` end to end (process start-up included) on a 200,000-row CSV.
+"""Benchmark: `heedful screen` end to end against reading the file and the screening alone.
 
-Prints wall time, respondents per second and the child's peak memory.
+A 200,000 x 50 CSV (five-point items in five keyed scales, 5% careless respondents of every
+kind of ``detectors.planting`` so that there is evidence to write) is screened with the first
+six detectors and with all of them. For each set, three figures, each the median of
+``--repeat`` runs:
+
+- reading the file alone: ``service.files.read_table`` and ``detectors.matrix_from_frame``;
+- the detectors' computation alone: ``detectors.screen`` (every detector, calibrated cut-offs,
+  scale scores) and the verdict and careless score;
+- the command end to end: ``heedful screen FILE --instrument ... --out out.csv`` in a new
+  process, start-up and the written table included.
+
+The aim is an end-to-end time of at most 1.5 times reading plus computation. Prints the
+figures with the ratio and the end-to-end run's other steps measured in this process (table
+with the evidence sentences, CSV writing, summary); ``--write`` also writes them to
+docs/speed-screen.md with the date and the commit. Not part of `make test`; run with
+`make bench` or directly.
 """
 
 from __future__ import annotations
@@ -8,7 +23,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -18,34 +33,116 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from detectors import REGISTRY, ResponseMatrix, load_instrument, matrix_from_frame, screen
+from detectors.planting import KINDS, plant
+from service.files import read_table, write_csv
+
+#: The detectors that came first: the six core indices.
+CORE = list(REGISTRY)[:6]
+
+
+def write_data(folder: Path, n: int, k: int, careless: float) -> tuple[Path, Path]:
+    items = [{"id": f"q{i + 1:02d}", "scale": f"s{i // 10}", "keyed": 1 if i % 2 == 0 else -1,
+              "block": f"page{i // 10}"} for i in range(k)]
+    instrument_path = folder / "instrument.json"
+    instrument_path.write_text(json.dumps(
+        {"survey": "bench", "response_format": {"points": 5}, "items": items}))
+    rng = np.random.default_rng(2)
+    keyed = np.array([i["keyed"] for i in items])
+    values = np.clip(np.rint(3 + keyed * rng.normal(size=(n, 1)) + rng.normal(0, 0.8, (n, k))), 1, 5)
+    instrument = load_instrument(instrument_path)
+    each = int(n * careless) // len(KINDS)
+    rows = rng.permutation(n)[: each * len(KINDS)].reshape(len(KINDS), each)
+    for kind, chosen in zip(KINDS, rows, strict=True):
+        if kind == "half_run":
+            base = ResponseMatrix.from_arrays(instrument, values[:1000])
+            values[chosen] = plant(instrument, kind, each, rng, base)
+        else:
+            values[chosen] = plant(instrument, kind, each, rng)
+    frame = pd.DataFrame(values.astype(int), columns=[i["id"] for i in items])
+    frame.insert(0, "respondent_id", [f"r{i}" for i in range(n)])
+    responses_path = folder / "responses.csv"
+    frame.to_csv(responses_path, index=False)
+    return responses_path, instrument_path
+
+
+def in_process(responses: Path, instrument_path: Path, names: list[str] | None, out: Path) -> dict:
+    """Seconds of each step of the command, run here in order."""
+    steps = {}
+    t0 = time.perf_counter()
+    instrument = load_instrument(instrument_path)
+    frame = read_table(responses, id_column="respondent_id")
+    matrix = matrix_from_frame(instrument, frame, id_column="respondent_id").matrix
+    t1 = time.perf_counter()
+    screening = screen(instrument, matrix, names=names)
+    screening.verdicts  # noqa: B018 (computed on first use)
+    t2 = time.perf_counter()
+    table = screening.to_frame()
+    t3 = time.perf_counter()
+    write_csv(table, out)
+    t4 = time.perf_counter()
+    screening.summary()
+    t5 = time.perf_counter()
+    steps["read"], steps["compute"] = t1 - t0, t2 - t1
+    steps["table"], steps["csv"], steps["summary"] = t3 - t2, t4 - t3, t5 - t4
+    steps["flagged"] = int((screening.flag_count > 0).sum())
+    return steps
+
+
+def end_to_end(responses: Path, instrument_path: Path, names: list[str] | None, out: Path) -> float:
+    heedful = Path(sys.executable).with_name("heedful")
+    command = [str(heedful), "screen", str(responses), "--instrument", str(instrument_path),
+               "--out", str(out)]
+    if names is not None:
+        command += ["--only", ",".join(names)]
+    start = time.perf_counter()
+    subprocess.run(command, check=True, stdout=subprocess.DEVNULL, env=os.environ.copy())
+    return time.perf_counter() - start
+
 
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--respondents", type=int, default=200_000)
     parser.add_argument("--items", type=int, default=50)
+    parser.add_argument("--careless", type=float, default=0.05,
+                        help="share of careless respondents planted (every kind alike)")
+    parser.add_argument("--repeat", type=int, default=3, help="runs per figure (median)")
+    parser.add_argument("--write", action="store_true",
+                        help="also write the figures to docs/speed-screen.md (date, commit)")
     args = parser.parse_args()
     n, k = args.respondents, args.items
+    lines = [
+        f"heedful screen on a {n:,} x {k} CSV ({args.careless:.0%} careless respondents "
+        f"planted), median of {args.repeat} runs; aim: end to end <= 1.5 x (read + compute)",
+    ]
     with tempfile.TemporaryDirectory() as folder:
         folder = Path(folder)
-        items = [{"id": f"q{i + 1:02d}", "scale": f"s{i // 10}", "keyed": 1 if i % 2 == 0 else -1,
-                  "block": f"page{i // 10}"} for i in range(k)]
-        (folder / "instrument.json").write_text(json.dumps(
-            {"survey": "bench", "response_format": {"points": 5}, "items": items}))
-        rng = np.random.default_rng(2)
-        keyed = np.array([i["keyed"] for i in items])
-        values = np.clip(np.rint(3 + keyed * rng.normal(size=(n, 1)) + rng.normal(0, 0.8, (n, k))), 1, 5)
-        frame = pd.DataFrame(values.astype(int), columns=[i["id"] for i in items])
-        frame.insert(0, "respondent_id", [f"r{i}" for i in range(n)])
-        frame.to_csv(folder / "responses.csv", index=False)
-        heedful = Path(sys.executable).with_name("heedful")
-        command = [str(heedful), "screen", str(folder / "responses.csv"), "--instrument",
-                   str(folder / "instrument.json"), "--out", str(folder / "out.csv")]
-        start = time.perf_counter()
-        subprocess.run(command, check=True, stdout=subprocess.DEVNULL, env=os.environ.copy())
-        seconds = time.perf_counter() - start
-        peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
-        print(f"heedful screen on {n:,} x {k} CSV: {seconds:.2f} s end to end, "
-              f"{n / seconds:,.0f} respondents/s, peak memory {peak:,.0f} MB")
+        responses, instrument_path = write_data(folder, n, k, args.careless)
+        out = folder / "out.csv"
+        for label, names in ((f"six core detectors ({', '.join(CORE)})", CORE),
+                             (f"all {len(REGISTRY)} detectors", None)):
+            steps = [in_process(responses, instrument_path, names, out) for _ in range(args.repeat)]
+            median = {key: statistics.median(s[key] for s in steps) for key in steps[0]}
+            whole = statistics.median(
+                end_to_end(responses, instrument_path, names, out) for _ in range(args.repeat)
+            )
+            alone = median["read"] + median["compute"]
+            lines += [
+                f"{label}:",
+                f"  reading the file alone            {median['read']:6.2f} s",
+                f"  the detectors' computation alone  {median['compute']:6.2f} s "
+                "(screen, calibrated cut-offs, scale scores, verdict, careless score)",
+                f"  end to end (new process)          {whole:6.2f} s = {whole / alone:.2f} x "
+                f"read + compute ({n / whole:,.0f} respondents/s)",
+                f"  in this process besides: table with evidence {median['table']:.2f} s "
+                f"({median['flagged']:,.0f} respondents flagged), CSV {median['csv']:.2f} s, "
+                f"summary {median['summary']:.2f} s; the rest is start-up and imports",
+            ]
+    print("\n".join(lines))
+    if args.write:
+        from figures import write_figures
+
+        write_figures("speed-screen.md", "Speed of `heedful screen`", "bench_screen_cli.py", lines)
 
 
 if __name__ == "__main__":
