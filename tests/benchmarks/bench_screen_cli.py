@@ -3,7 +3,8 @@
 A 200,000 x 50 CSV (five-point items in five keyed scales, 5% careless respondents of every
 kind of ``detectors.planting`` so that there is evidence to write) is screened with the first
 six detectors and with all of them. For each set, three figures, each the median of
-``--repeat`` runs:
+``--repeat`` runs, as wall time and as processor time (all threads; steadier than wall time
+on a machine shared with other work):
 
 - reading the file alone: ``service.files.read_table`` and ``detectors.matrix_from_frame``;
 - the detectors' computation alone: ``detectors.screen`` (every detector, calibrated cut-offs,
@@ -23,6 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import resource
 import statistics
 import subprocess
 import sys
@@ -67,37 +69,51 @@ def write_data(folder: Path, n: int, k: int, careless: float) -> tuple[Path, Pat
 
 
 def in_process(responses: Path, instrument_path: Path, names: list[str] | None, out: Path) -> dict:
-    """Seconds of each step of the command, run here in order."""
-    steps = {}
-    t0 = time.perf_counter()
+    """Seconds of each step of the command, run here in order: wall time, and processor time
+    (all threads; ``cpu_`` keys)."""
+    clocks = [(time.perf_counter(), time.process_time())]
     instrument = load_instrument(instrument_path)
     frame = read_table(responses, id_column="respondent_id")
     matrix = matrix_from_frame(instrument, frame, id_column="respondent_id").matrix
-    t1 = time.perf_counter()
+    clocks.append((time.perf_counter(), time.process_time()))
     screening = screen(instrument, matrix, names=names)
     screening.verdicts  # noqa: B018 (computed on first use)
-    t2 = time.perf_counter()
+    clocks.append((time.perf_counter(), time.process_time()))
     table = screening.to_frame()
-    t3 = time.perf_counter()
+    clocks.append((time.perf_counter(), time.process_time()))
     write_csv(table, out)
-    t4 = time.perf_counter()
+    clocks.append((time.perf_counter(), time.process_time()))
     screening.summary()
-    t5 = time.perf_counter()
-    steps["read"], steps["compute"] = t1 - t0, t2 - t1
-    steps["table"], steps["csv"], steps["summary"] = t3 - t2, t4 - t3, t5 - t4
+    clocks.append((time.perf_counter(), time.process_time()))
+    steps = {}
+    for step, before, after in zip(STEPS, clocks[:-1], clocks[1:], strict=True):
+        steps[step] = after[0] - before[0]
+        steps[f"cpu_{step}"] = after[1] - before[1]
     steps["flagged"] = int((screening.flag_count > 0).sum())
     return steps
 
 
-def end_to_end(responses: Path, instrument_path: Path, names: list[str] | None, out: Path) -> float:
+#: The steps of the command timed in this process.
+STEPS = ("read", "compute", "table", "csv", "summary")
+
+
+def _children_cpu() -> float:
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
+def end_to_end(
+    responses: Path, instrument_path: Path, names: list[str] | None, out: Path
+) -> tuple[float, float]:
+    """Wall time and processor time of the command in a new process."""
     heedful = Path(sys.executable).with_name("heedful")
     command = [str(heedful), "screen", str(responses), "--instrument", str(instrument_path),
                "--out", str(out)]
     if names is not None:
         command += ["--only", ",".join(names)]
-    start = time.perf_counter()
+    start, cpu = time.perf_counter(), _children_cpu()
     subprocess.run(command, check=True, stdout=subprocess.DEVNULL, env=os.environ.copy())
-    return time.perf_counter() - start
+    return time.perf_counter() - start, _children_cpu() - cpu
 
 
 def main() -> None:
@@ -123,18 +139,23 @@ def main() -> None:
                              (f"all {len(REGISTRY)} detectors", None)):
             steps = [in_process(responses, instrument_path, names, out) for _ in range(args.repeat)]
             median = {key: statistics.median(s[key] for s in steps) for key in steps[0]}
-            whole = statistics.median(
-                end_to_end(responses, instrument_path, names, out) for _ in range(args.repeat)
-            )
+            runs = [end_to_end(responses, instrument_path, names, out) for _ in range(args.repeat)]
+            whole = statistics.median(wall for wall, _ in runs)
+            whole_cpu = statistics.median(cpu for _, cpu in runs)
             alone = median["read"] + median["compute"]
+            alone_cpu = median["cpu_read"] + median["cpu_compute"]
             lines += [
                 f"{label}:",
-                f"  reading the file alone            {median['read']:6.2f} s",
-                f"  the detectors' computation alone  {median['compute']:6.2f} s "
-                "(screen, calibrated cut-offs, scale scores, verdict, careless score)",
-                f"  end to end (new process)          {whole:6.2f} s = {whole / alone:.2f} x "
-                f"read + compute ({n / whole:,.0f} respondents/s)",
-                f"  in this process besides: table with evidence {median['table']:.2f} s "
+                "                                     wall     processor (all threads)",
+                f"  reading the file alone            {median['read']:6.2f} s  "
+                f"{median['cpu_read']:6.2f} s",
+                f"  the detectors' computation alone  {median['compute']:6.2f} s  "
+                f"{median['cpu_compute']:6.2f} s  (screen, calibrated cut-offs, scale scores, "
+                "verdict, careless score)",
+                f"  end to end (new process)          {whole:6.2f} s  {whole_cpu:6.2f} s",
+                f"  end to end / (read + compute)     {whole / alone:6.2f}    "
+                f"{whole_cpu / alone_cpu:6.2f}     ({n / whole:,.0f} respondents/s)",
+                f"  besides, in this process (wall): table with evidence {median['table']:.2f} s "
                 f"({median['flagged']:,.0f} respondents flagged), CSV {median['csv']:.2f} s, "
                 f"summary {median['summary']:.2f} s; the rest is start-up and imports",
             ]
