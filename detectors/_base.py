@@ -19,7 +19,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ._text import choose, concat, mapped, names_at, strings, to_objects
+from ._text import TextColumn, choose, concat, mapped, names_at, strings, to_objects
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import ResponseMatrix
@@ -152,7 +152,7 @@ class DetectorResult:
     describe: Callable[[Mapping[str, Any], tuple[str, ...]], str] = field(repr=False)
     #: The same sentences for many respondents at once: evidence columns (already restricted
     #: to the respondents wanted, all assessed) to a column of strings. None: one at a time.
-    describe_all: Callable[[Mapping[str, np.ndarray], tuple[str, ...]], np.ndarray] | None = (
+    describe_all: Callable[[Mapping[str, np.ndarray], tuple[str, ...]], TextColumn] | None = (
         field(default=None, repr=False)
     )
 
@@ -188,7 +188,7 @@ class DetectorResult:
         of strings, built for all of them at once; the same text as :meth:`sentence_for`."""
         return to_objects(self.sentence_column(rows))
 
-    def sentence_column(self, rows: np.ndarray | None = None) -> Any:
+    def sentence_column(self, rows: np.ndarray | None = None) -> TextColumn:
         """:meth:`sentences` as a text column (an Arrow string array)."""
         rows = np.arange(len(self)) if rows is None else np.asarray(rows, dtype=np.intp)
         states = self.states[rows]
@@ -357,7 +357,7 @@ class Detector:
     #: ``_sentence`` for many respondents at once (evidence columns to a string column), the
     #: same text word for word; None leaves bulk sentences to ``_sentence`` one at a time.
     _sentences: ClassVar[
-        Callable[[Mapping[str, np.ndarray], tuple[str, ...]], np.ndarray] | None
+        Callable[[Mapping[str, np.ndarray], tuple[str, ...]], TextColumn] | None
     ] = None
 
     # Helpers for subclasses -------------------------------------------------------------------

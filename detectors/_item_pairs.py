@@ -24,7 +24,7 @@ from ._base import (
     new_states,
     row_slices,
 )
-from ._text import concat, fixed, plain
+from ._text import TextColumn, concat, fixed, plain
 from .even_odd import _pearson_rows
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -351,7 +351,7 @@ class ItemPairConsistency(Detector):
         )
 
     @classmethod
-    def _sentences(cls, evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(cls, evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         alike = cls.direction > 0
         return concat(
             "answers to ", plain(evidence["pairs_used"]), " pairs of items that the reference "

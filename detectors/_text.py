@@ -13,11 +13,12 @@ itself, once per distinct value.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, TypeAlias
 
 import numpy as np
 
 __all__ = [
+    "TextColumn",
     "choose",
     "concat",
     "fixed",
@@ -32,6 +33,10 @@ __all__ = [
     "strings",
     "to_objects",
 ]
+
+#: A column of text, one string per respondent: an Arrow string array (typed loosely so that
+#: this module need not import pyarrow before it is used).
+TextColumn: TypeAlias = Any
 
 #: Above this magnitude a scaled float no longer holds every integer exactly.
 _EXACT = float(2**52)

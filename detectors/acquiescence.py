@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -165,7 +165,7 @@ disagreed with both in 1; mean answer 0.62 points above the midpoint'
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         net = evidence["net_acquiescence"]
         return concat(
             "agreed with both statements of ", plain(evidence["pairs_agreed"]), " of ",

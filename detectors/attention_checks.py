@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states, row_slices
-from ._text import choose, concat, joined, plain
+from ._text import TextColumn, choose, concat, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -188,7 +188,7 @@ class AttentionChecks(Detector):
         return text
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         failed_count, judged = evidence["failed_count"], evidence["checks_judged"]
         n = len(judged)
         noun = choose(judged == 1, "attention check", "attention checks")

@@ -10,6 +10,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .mahalanobis import (
     Mahalanobis,
@@ -312,4 +313,20 @@ class ContentNonresponsivity(Detector):
             f"answered items (own centre {evidence['own_centre']:.1f}, spread "
             f"{evidence['own_spread']:.2f}; squared distance {evidence['squared_distance']:.1f}; "
             f"flagged from {cutoff:.2f})"
+        )
+
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
+        value, cutoff = evidence["ratio"], evidence["ratio_cutoff"]
+        lead = choose(
+            value >= cutoff,
+            "answers look content-blind",
+            "answers follow the sample's pattern more than content-blind answering",
+        )
+        return concat(
+            lead, ": log-likelihood ratio ", fixed(value, 2), " per item over ",
+            plain(evidence["items_answered"]), " answered items (own centre ",
+            fixed(evidence["own_centre"], 1), ", spread ", fixed(evidence["own_spread"], 2),
+            "; squared distance ", fixed(evidence["squared_distance"], 1), "; flagged from ",
+            fixed(cutoff, 2), ")",
         )

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, joined, plain
+from ._text import TextColumn, choose, concat, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -227,7 +227,7 @@ included: b'
         return text
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         count, answered, items = (
             evidence["same_answers_count"], evidence["items_answered"], evidence["items"]
         )

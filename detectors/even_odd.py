@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -214,7 +214,7 @@ Spearman-Brown (flagged at 0.30 or less)'
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         corrected, cutoff = evidence["corrected_correlation"], evidence["consistency_cutoff"]
         return concat(
             "odd and even halves of the scales ", choose(corrected <= cutoff, "disagree", "agree"),

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import concat, fixed, plain
+from ._text import TextColumn, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -154,7 +154,7 @@ class ExtremeStyle(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         return concat(
             "answered ", plain(evidence["items_at_end_point"]), " of ",
             plain(evidence["items_answered"]), " items at an end point (",

@@ -11,7 +11,7 @@ from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
 from ._guttman import cumulative_positions, most_guttman_errors_by_score, step_positions
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -421,7 +421,7 @@ class GuttmanErrors(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         normed, cutoff = evidence["normed_errors"], evidence["normed_errors_cutoff"]
         lead = choose(
             normed >= cutoff,

@@ -20,7 +20,7 @@ from ._rating_scale import (
     _plan_or_mark,
     category_log_probabilities,
 )
-from ._text import choose, concat, fixed, general, plain, plural
+from ._text import TextColumn, choose, concat, fixed, general, plain, plural
 from .instrument import Instrument
 from .responses import ResponseMatrix
 
@@ -259,7 +259,7 @@ class LogLikelihoodFit(RatingScaleDetector):
         return text
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         lz, cutoff = evidence["lz"], evidence["lz_cutoff"]
         lead = choose(
             lz <= cutoff,

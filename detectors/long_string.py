@@ -18,7 +18,7 @@ from ._base import (
     mark,
     new_states,
 )
-from ._text import concat, plain
+from ._text import TextColumn, concat, plain
 from .instrument import Instrument
 from .responses import ResponseMatrix
 
@@ -224,7 +224,7 @@ class LongString(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         return concat(
             "same answer, ", plain(evidence["answer"]), ", on ", plain(evidence["run_length"]),
             " items in a row, ",

@@ -11,7 +11,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states
-from ._text import choose, concat, fixed, general, joined, names_at, plain, plural
+from ._text import TextColumn, choose, concat, fixed, general, joined, names_at, plain, plural
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -681,7 +681,7 @@ class Mahalanobis(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         p_value = evidence["p_value"]
         n = len(p_value)
         shown = choose(p_value < 0.0001, "p < 0.0001", concat("p = ", general(p_value, 2)))

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -147,7 +147,7 @@ class MidpointStyle(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         left_out = evidence["items_without_midpoint"]
         return concat(
             "answered ", plain(evidence["items_at_midpoint"]), " of ",

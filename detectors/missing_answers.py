@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, joined, percent, plain
+from ._text import TextColumn, choose, concat, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -131,7 +131,7 @@ class MissingAnswers(Detector):
         return text + f" (flagged from {evidence['share_cutoff']:.0%})"
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         count, items = evidence["missing_count"], evidence["items"]
         n = len(count)
         first = evidence["first_missing_items"]

@@ -26,6 +26,7 @@ from ._rating_scale import _pattern_groups as _pattern_groups  # kept importable
 from ._rating_scale import _person_estimates as _person_estimates  # kept importable from here
 from ._rating_scale import _step_positions as _step_positions  # kept importable from here
 from ._text import (
+    TextColumn,
     choose,
     concat,
     fixed,
@@ -637,7 +638,7 @@ class PersonFit(RatingScaleDetector):
         return text
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         misfit = evidence["misfit"]
         lead = mapped(misfit, {
             "underfit": "answers less predictable than the rating scale model expects",

@@ -10,7 +10,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain, plural
+from ._text import TextColumn, choose, concat, fixed, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -383,7 +383,7 @@ reference respondents (flagged at 0.00 or less)'
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         value, cutoff = evidence["scalability"], evidence["scalability_cutoff"]
         filled = evidence["answers_filled"]
         return concat(

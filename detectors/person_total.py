@@ -9,7 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .mahalanobis import _mismatch
 from .responses import MISSING, ResponseMatrix
@@ -327,7 +327,7 @@ means over 6 answered items (flagged at -0.20 or less)"
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         r = evidence["correlation"]
         lead = choose(
             r > 0, "answers follow the reference sample's item profile",

@@ -9,7 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .even_odd import mark_unjudged, spearman_brown, splittable_scales
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -250,7 +250,7 @@ between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         reliability, cutoff = evidence["reliability"], evidence["reliability_cutoff"]
         return concat(
             "random halves of the scales ", choose(reliability <= cutoff, "disagree", "agree"),

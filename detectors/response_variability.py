@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, general, mapped, plain
+from ._text import TextColumn, choose, concat, fixed, general, mapped, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -193,7 +193,7 @@ answered items) (flagged at SD 0.5 or less)"
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         overall, cutoff = evidence["overall_sd"], evidence["sd_cutoff"]
         block = evidence["lowest_block"]
         head = concat(

@@ -9,7 +9,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, plain
+from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .person_total import keyed_slices
 from .responses import ResponseMatrix
@@ -200,7 +200,7 @@ of the other answers on its scale, over 6 items of 2 scales (flagged at -0.20 or
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         r = evidence["correlation"]
         verb = choose(r > 0, "agree with", choose(r < 0, "disagree with", "do not agree with"))
         return concat(

@@ -20,7 +20,7 @@ from ._base import (
     new_states,
     row_slices,
 )
-from ._text import choose, concat, joined, percent, plain
+from ._text import TextColumn, choose, concat, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -515,7 +515,7 @@ class SequencePattern(Detector):
         )
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         share = concat(
             percent(evidence["share_in_runs"]), " of answers in patterned runs (flagged from ",
             percent(evidence["share_cutoff"]), ")",

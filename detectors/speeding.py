@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, fixed, general, plain, plural
+from ._text import TextColumn, choose, concat, fixed, general, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -167,7 +167,7 @@ fast as the median respondent (90 s)'
         return text + f", took {1 / relative:.1f} times as long as the median respondent ({median} s)"
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         answered = evidence["items_answered"]
         relative = evidence["relative_speed"]
         median = _seconds_all(evidence["median_duration_seconds"])

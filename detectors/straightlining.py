@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import choose, concat, lookup, mapped, plain, plural
+from ._text import TextColumn, choose, concat, lookup, mapped, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -195,7 +195,7 @@ block mixes positively and reverse-keyed items"
         return text + _mixed_phrase(mixed)
 
     @staticmethod
-    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> np.ndarray:
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
         judged, count = evidence["blocks_judged"], evidence["blocks_straightlined"]
         of_blocks = concat(plain(count), " of ", plain(judged), " block", plural(judged))
         main = mapped(evidence["block"], _block_phrase)
