@@ -193,7 +193,8 @@ class DetectorResult:
         rows = np.arange(len(self)) if rows is None else np.asarray(rows, dtype=np.intp)
         states = self.states[rows]
         assessed = states == State.ASSESSED
-        parts, order = [], []
+        parts: list[TextColumn] = []
+        order: list[np.ndarray] = []
         if not assessed.all():
             other = ~assessed
             labels = [state.label.replace("_", " ") for state in State]

@@ -163,10 +163,10 @@ def _digits(magnitude: np.ndarray, decimals: np.ndarray | int) -> Any:
     pc = _pc()
     scale = 10 ** np.asarray(decimals, dtype=np.int64)
     whole = plain(magnitude // scale)
-    if np.ndim(decimals) == 0:
+    if isinstance(decimals, int):
         if decimals == 0:
             return whole
-        return concat(whole, ".", pc.utf8_lpad(plain(magnitude % scale), int(decimals), "0"))
+        return concat(whole, ".", pc.utf8_lpad(plain(magnitude % scale), decimals, "0"))
     out = whole
     for width in np.unique(decimals[decimals > 0]).tolist():
         fraction = pc.utf8_lpad(plain(magnitude % scale), width, "0")
