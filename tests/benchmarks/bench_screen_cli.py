@@ -15,7 +15,8 @@ on a machine shared with other work):
 The aim is an end-to-end time of at most 1.5 times reading plus computation. Prints the
 figures with the ratio and the end-to-end run's other steps measured in this process (table
 with the evidence sentences, CSV writing, summary); ``--write`` also writes them to
-docs/speed-screen.md with the date and the commit. Not part of `make test`; run with
+docs/speed-screen.md with the date and the commit, and the processor-time ratios to the
+README's table between its marker lines. Not part of `make test`; run with
 `make bench` or directly.
 """
 
@@ -127,6 +128,7 @@ def main() -> None:
                         help="also write the figures to docs/speed-screen.md (date, commit)")
     args = parser.parse_args()
     n, k = args.respondents, args.items
+    rows = []
     lines = [
         f"heedful screen on a {n:,} x {k} CSV ({args.careless:.0%} careless respondents "
         f"planted), median of {args.repeat} runs; aim: end to end <= 1.5 x (read + compute)",
@@ -159,11 +161,25 @@ def main() -> None:
                 f"({median['flagged']:,.0f} respondents flagged), CSV {median['csv']:.2f} s, "
                 f"summary {median['summary']:.2f} s; the rest is start-up and imports",
             ]
+            ratio = whole_cpu / alone_cpu
+            rows.append(
+                f"| {label.split(' (')[0]} | {whole_cpu:.1f} s end to end = {ratio:.2f} x (reading "
+                f"{median['cpu_read']:.2f} s + computation {median['cpu_compute']:.2f} s) | "
+                f"<= 1.5 x: {'met' if ratio <= 1.5 else '**not met**'} |"
+            )
     print("\n".join(lines))
     if args.write:
-        from figures import write_figures
+        from figures import write_figures, write_readme_block
 
         write_figures("speed-screen.md", "Speed of `heedful screen`", "bench_screen_cli.py", lines)
+        write_readme_block(README_START, README_END, "\n".join([
+            "| detectors (processor time) | measured | aim |", "| --- | --- | --- |", *rows,
+        ]))
+
+
+#: The README's table of these figures lies between these lines.
+README_START = "<!-- screen figures: written by bench_screen_cli.py --write -->"
+README_END = "<!-- end screen figures -->"
 
 
 if __name__ == "__main__":

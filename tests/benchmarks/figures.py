@@ -24,3 +24,12 @@ def write_figures(file_name: str, title: str, script: str, lines: list[str]) -> 
         "```\n" + "\n".join(lines) + "\n```\n"
     )
     return path
+
+
+def write_readme_block(start: str, end: str, text: str) -> None:
+    """Put ``text`` between the README's marker lines ``start`` and ``end``, so the README's
+    copy of the figures cannot drift from the figures file."""
+    readme = ROOT / "README.md"
+    head, rest = readme.read_text().split(start, 1)
+    _, tail = rest.split(end, 1)
+    readme.write_text(f"{head}{start}\n{text}\n{end}{tail}")
