@@ -355,11 +355,11 @@ class Detector:
     def _sentence(evidence: Mapping[str, Any], item_ids: tuple[str, ...]) -> str:
         raise NotImplementedError
 
-    #: ``_sentence`` for many respondents at once (evidence columns to a string column), the
-    #: same text word for word; None leaves bulk sentences to ``_sentence`` one at a time.
-    _sentences: ClassVar[
-        Callable[[Mapping[str, np.ndarray], tuple[str, ...]], TextColumn] | None
-    ] = None
+    @staticmethod
+    def _sentences(evidence: Mapping[str, np.ndarray], item_ids: tuple[str, ...]) -> TextColumn:
+        """``_sentence`` for many respondents at once, word for word: evidence columns (the
+        respondents wanted, all assessed) to a text column."""
+        raise NotImplementedError
 
     # Helpers for subclasses -------------------------------------------------------------------
 

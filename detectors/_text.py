@@ -21,8 +21,10 @@ __all__ = [
     "TextColumn",
     "choose",
     "concat",
+    "counted",
     "fixed",
     "general",
+    "is_none",
     "joined",
     "lookup",
     "mapped",
@@ -118,7 +120,7 @@ def lookup(values: np.ndarray, function: Callable[[Any], Any]) -> np.ndarray:
         missing = codes < 0
         if missing.any():  # None and NaN: missing to pandas, different to Python
             codes = np.where(
-                missing, np.where(np.equal(values, None), len(table), len(table) + 1), codes
+                missing, np.where(is_none(values), len(table), len(table) + 1), codes
             )
             table += [function(None), function(float("nan"))]
     out = np.empty(len(table), dtype=object)
@@ -134,6 +136,18 @@ def mapped(values: np.ndarray, function: Callable[[Any], str]) -> Any:
 def names_at(names: Sequence[str], positions: np.ndarray) -> Any:
     """The names at ``positions`` (valid indices), as a text column."""
     return _pa().array(list(names), _pa().string()).take(np.asarray(positions, dtype=np.int64))
+
+
+def is_none(values: np.ndarray) -> np.ndarray:
+    """Where each value is None (columns of objects)."""
+    return np.asarray(np.asarray(values, dtype=object) == None)  # noqa: E711 (elementwise)
+
+
+def counted(present: list[np.ndarray], n: int) -> np.ndarray:
+    """Row by row, how many of the columns ``present`` hold True."""
+    if not present:
+        return np.zeros(n, dtype=np.int64)
+    return np.asarray(np.sum(present, axis=0, dtype=np.int64))
 
 
 def joined(parts: list[Any], present: list[np.ndarray], separator: str, n: int) -> Any:

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states, row_slices
-from ._text import TextColumn, choose, concat, joined, plain
+from ._text import TextColumn, choose, concat, is_none, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -197,7 +197,7 @@ class AttentionChecks(Detector):
         not_counted = np.zeros(n, dtype=np.int64)
         for c in range(evidence["failed"].shape[1]):
             given, failed = evidence["given"][:, c], evidence["failed"][:, c].astype(bool)
-            skipped = np.equal(given, None)
+            skipped = is_none(given)
             answer = choose(
                 skipped, "left unanswered",
                 concat("answered ", _options(given, evidence["given_labels"][:, c])),
@@ -230,7 +230,7 @@ def _option(code: int, label: str | None) -> str:
 def _options(codes: np.ndarray, labels: np.ndarray) -> np.ndarray:
     """:func:`_option` of each respondent."""
     return choose(
-        np.equal(labels, None), plain(codes), concat(plain(codes), " (", plain(labels), ")")
+        is_none(labels), plain(codes), concat(plain(codes), " (", plain(labels), ")")
     )
 
 

@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import TextColumn, choose, concat, joined, plain
+from ._text import TextColumn, choose, concat, counted, is_none, joined, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -242,8 +242,8 @@ included: b'
                    ", unanswered items included"),
         )
         others = evidence["same_answers_as"]
-        present = [~np.equal(others[:, j], None) for j in range(others.shape[1])]
-        listed = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        present = [~is_none(others[:, j]) for j in range(others.shape[1])]
+        listed = counted(present, n)
         names = joined([plain(others[:, j]) for j in range(others.shape[1])], present, ", ", n)
         text = concat(
             "same answers as ", plain(count), " ",

@@ -11,7 +11,18 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states
-from ._text import TextColumn, choose, concat, fixed, general, joined, names_at, plain, plural
+from ._text import (
+    TextColumn,
+    choose,
+    concat,
+    counted,
+    fixed,
+    general,
+    joined,
+    names_at,
+    plain,
+    plural,
+)
 from .errors import SettingError
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -693,7 +704,7 @@ class Mahalanobis(Detector):
         )
         top = evidence["top_items"]
         present = [top[:, j] >= 0 for j in range(top.shape[1])]
-        named = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        named = counted(present, n)
         listing = joined(
             [names_at(item_ids, np.maximum(top[:, j], 0)) for j in range(top.shape[1])], present, ", ", n
         )

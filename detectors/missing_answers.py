@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import TextColumn, choose, concat, joined, percent, plain
+from ._text import TextColumn, choose, concat, counted, is_none, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -135,8 +135,8 @@ class MissingAnswers(Detector):
         count, items = evidence["missing_count"], evidence["items"]
         n = len(count)
         first = evidence["first_missing_items"]
-        present = [~np.equal(first[:, j], None) for j in range(first.shape[1])]
-        listed = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        present = [~is_none(first[:, j]) for j in range(first.shape[1])]
+        listed = counted(present, n)
         names = joined([plain(first[:, j]) for j in range(first.shape[1])], present, ", ", n)
         return concat(
             plain(count), " of ", plain(items), " items unanswered (",

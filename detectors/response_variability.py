@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
-from ._text import TextColumn, choose, concat, fixed, general, mapped, plain
+from ._text import TextColumn, choose, concat, fixed, general, is_none, mapped, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -202,7 +202,7 @@ answered items) (flagged at SD 0.5 or less)"
         )
         return concat(
             head,
-            choose(np.equal(block, None), "", concat(
+            choose(is_none(block), "", concat(
                 "; lowest in block ", mapped(block, repr), ", ",
                 fixed(evidence["lowest_block_sd"], 2), " (",
                 plain(evidence["lowest_block_items"]), " answered items)",

@@ -20,7 +20,7 @@ from ._base import (
     new_states,
     row_slices,
 )
-from ._text import TextColumn, choose, concat, joined, percent, plain
+from ._text import TextColumn, choose, concat, counted, is_none, joined, percent, plain
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
 
@@ -524,7 +524,7 @@ class SequencePattern(Detector):
         n = len(rule)
         answers = evidence["run_answers"]
         present = [answers[:, j] >= 0 for j in range(answers.shape[1])]
-        shown = np.sum(present, axis=0, dtype=np.int64) if present else np.zeros(n, np.int64)
+        shown = counted(present, n)
         length = evidence["run_length"]
         rise = evidence["last_answer"] - answers[:, 0] if answers.shape[1] else np.zeros(n)
         what = choose(
@@ -539,7 +539,7 @@ class SequencePattern(Detector):
             joined([plain(answers[:, j]) for j in range(answers.shape[1])], present, ",", n),
             choose(length > shown, ",...", ""),
         )
-        none = np.equal(rule, None)
+        none = is_none(rule)
         first = np.where(none, 0, evidence["first_item"]).astype(np.intp)
         last = np.where(none, 0, evidence["last_item"]).astype(np.intp)
         return choose(
