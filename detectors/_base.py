@@ -405,6 +405,21 @@ def _keyword_defaults(init: Callable[..., None]) -> dict[str, Any]:
     return {p.name: p.default for p in signature.parameters.values() if p.kind is p.KEYWORD_ONLY}
 
 
+@cache
+def _blas_controller() -> Any:
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
+
+
+def one_blas_thread() -> Any:
+    """A context manager running numpy's linear algebra on one thread. The products detectors
+    make are small (thousands of rows by tens of items) and waiting threads would only take
+    processor time from the rest of the screening. The loaded libraries are looked up once per
+    process: looking them up on every call cost more than a small screening itself."""
+    return _blas_controller().limit(limits=1, user_api="blas")
+
+
 def row_slices(n: int, rows_per_slice: int = 1 << 12) -> Iterator[slice]:
     """Consecutive slices of n respondents, small enough for temporaries to stay in the cache."""
     for start in range(0, n, rows_per_slice):

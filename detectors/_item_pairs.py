@@ -12,7 +12,6 @@ from collections.abc import Callable, Mapping
 from typing import Any, ClassVar
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from ._base import (
     Detector,
@@ -22,6 +21,7 @@ from ._base import (
     State,
     mark,
     new_states,
+    one_blas_thread,
     row_slices,
 )
 from ._text import TextColumn, concat, fixed, plain
@@ -56,7 +56,7 @@ def item_correlations(
     products = np.zeros((k, k))
     # One BLAS thread: the products are small, and threads waiting between them only take
     # processor time from the rest of the screening.
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_blas_thread():
         for rows in row_slices(matrix.n_respondents):
             raw = matrix.answers[rows][:, columns]
             answered = (raw != MISSING).astype(np.float64)

@@ -14,9 +14,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, Interval, State, mark, row_slices
+from ._base import Detector, Interval, State, mark, one_blas_thread, row_slices
 from ._guttman import step_positions as _step_positions
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -305,7 +304,7 @@ def _group_persons(
     indicator = plan.indicator.astype(dtype)
     shift_code = np.array(shift, dtype=np.int16 if shift < 1 << 14 else np.int32)
     # One BLAS thread: the products are small and threads would only wait between them.
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_blas_thread():
         for rows in slices(n):
             category, answered = plan.categories(matrix.answers[rows])
             packed = np.where(answered, category + shift_code, 0).astype(dtype) @ indicator

@@ -7,9 +7,8 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states
+from ._base import Detector, DetectorResult, Interval, State, mark, new_states, one_blas_thread
 from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .mahalanobis import (
@@ -266,7 +265,7 @@ class ContentNonresponsivity(Detector):
         covariance = np.asarray(reference["covariance"], dtype=np.float64)
         precision = _precision(covariance)
         log_det = float(np.linalg.slogdet(covariance)[1])
-        with threadpool_limits(limits=1, user_api="blas"):
+        with one_blas_thread():
             for rows in _chunks(matrix.n_respondents):
                 answers = _content_answers(matrix, rows, columns)
                 missing = answers == MISSING

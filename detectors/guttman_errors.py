@@ -7,9 +7,17 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    State,
+    mark,
+    new_states,
+    one_blas_thread,
+    row_slices,
+)
 from ._guttman import cumulative_positions, most_guttman_errors_by_score, step_positions
 from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
@@ -321,7 +329,7 @@ class GuttmanErrors(Detector):
         ones = np.ones(k, dtype=np.float32)  # counts and scores are exact in float32
         kept_rows, kept_categories, kept_scores = [], [], []
         # One BLAS thread: the products are small, and threads would only wait between them.
-        with threadpool_limits(limits=1, user_api="blas"):
+        with one_blas_thread():
             for rows in row_slices(n):
                 category, answered = steps.categories(matrix.answers, rows)
                 count = (answered.view(np.uint8).astype(np.float32) @ ones).astype(np.int64)

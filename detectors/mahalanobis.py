@@ -8,9 +8,17 @@ from collections.abc import Iterator, Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, Options, State, mark, new_states
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    Options,
+    State,
+    mark,
+    new_states,
+    one_blas_thread,
+)
 from ._text import (
     TextColumn,
     choose,
@@ -402,7 +410,7 @@ class Mahalanobis(Detector):
         sums = np.zeros(p, dtype=np.int64)
         products = np.zeros((p, p), dtype=np.int64)
         complete_parts = []
-        with threadpool_limits(limits=1, user_api="blas"):  # small products, as in screening
+        with one_blas_thread():  # small products, as in screening
             for rows in _chunks(matrix.n_respondents):
                 answers = _content_answers(matrix, rows, columns)
                 complete = answers.min(axis=1) != MISSING  # MISSING lies below every valid code
@@ -598,7 +606,7 @@ class Mahalanobis(Detector):
         centred_buffer, projected_buffer = np.empty((size, p)), np.empty((size, p))
         # One BLAS thread: the products are small (8,192 x p by p x p) and threads waiting
         # between them would only take processor time from the rest of the screening.
-        with threadpool_limits(limits=1, user_api="blas"):
+        with one_blas_thread():
             for rows in _chunks(matrix.n_respondents):
                 answers = _content_answers(matrix, rows, columns)
                 centred = np.subtract(answers, location, out=centred_buffer[: len(answers)])

@@ -7,9 +7,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import DetectorResult, Interval, Options, State, new_states, row_slices
+from ._base import DetectorResult, Interval, Options, State, new_states, one_blas_thread, row_slices
 from ._guttman import cumulative_positions, most_guttman_errors
 from ._rating_scale import (
     FIT_CONSTRAINTS,
@@ -199,7 +198,7 @@ def _accumulate(
     ones = np.ones(len(plan.columns))
     totals = _Totals.empty(n)
     # One BLAS thread: the products are small and threads would only wait between them.
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_blas_thread():
         for rows in row_slices(n):
             category, answered = plan.categories(matrix.answers[rows])
             g = groups[rows]

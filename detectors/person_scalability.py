@@ -7,9 +7,17 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    State,
+    mark,
+    new_states,
+    one_blas_thread,
+    row_slices,
+)
 from ._text import TextColumn, choose, concat, fixed, plain, plural
 from .instrument import Instrument
 from .responses import MISSING, ResponseMatrix
@@ -348,7 +356,7 @@ reference respondents (flagged at 0.00 or less)'
         tail[:k] = np.cumsum(sorted_sums[::-1])[::-1]
         ones = np.ones(k, dtype=np.float32)
         # One BLAS thread: the products are small, and threads would only wait between them.
-        with threadpool_limits(limits=1, user_api="blas"):
+        with one_blas_thread():
             for rows in row_slices(matrix.n_respondents):
                 values, missing = keying.values(matrix.answers, rows)
                 filled[rows] = missing.view(np.uint8).astype(np.float32) @ ones

@@ -6,9 +6,17 @@ from collections.abc import Iterable, Iterator, Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    State,
+    mark,
+    new_states,
+    one_blas_thread,
+    row_slices,
+)
 from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .mahalanobis import _mismatch
@@ -290,7 +298,7 @@ means over 6 answered items (flagged at -0.20 or less)"
         on_answered = np.column_stack([np.ones(len(m)), m, m * m])
         # One BLAS thread: the products are thin (k by 4,096) and waiting threads would only
         # take processor time from the rest of the screening.
-        with threadpool_limits(limits=1, user_api="blas"):
+        with one_blas_thread():
             slices = row_slices(matrix.n_respondents)
             for rows, keyed, answered in keyed_slices(
                 instrument, matrix, columns, np.float64, slices

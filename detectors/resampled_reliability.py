@@ -6,9 +6,8 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, new_states, row_slices
+from ._base import Detector, DetectorResult, Interval, new_states, one_blas_thread, row_slices
 from ._text import TextColumn, choose, concat, fixed, plain
 from .even_odd import mark_unjudged, spearman_brown, splittable_scales
 from .instrument import Instrument
@@ -201,7 +200,7 @@ between splits), reliability -1.00 after Spearman-Brown (flagged at 0.30 or less
         if scales:
             halves = split_halves([len(c) for c in scales], self.splits, self.split_seed)
             # Small products: threads cost more than they save.
-            with threadpool_limits(limits=1, user_api="blas"):
+            with one_blas_thread():
                 for rows in row_slices(n):
                     r, used = split_correlations(
                         instrument, matrix, rows, scales, halves, self.min_scales

@@ -6,9 +6,17 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from ._base import Detector, DetectorResult, Interval, State, mark, new_states, row_slices
+from ._base import (
+    Detector,
+    DetectorResult,
+    Interval,
+    State,
+    mark,
+    new_states,
+    one_blas_thread,
+    row_slices,
+)
 from ._text import TextColumn, choose, concat, fixed, plain
 from .instrument import Instrument
 from .person_total import keyed_slices
@@ -226,7 +234,7 @@ def _correlations(
         membership[s, np.searchsorted(columns, scale)] = 1
     # One BLAS thread: the products are thin (scales by k by 4,096) and waiting threads would
     # only take processor time from the rest of the screening.
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_blas_thread():
         # Keyed codes are whole numbers in -50..59, so every partial sum of the products stays
         # below 2**24 even on a scale of 1,000 items: float32 is exact here whatever the order
         # of summation.
