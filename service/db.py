@@ -119,8 +119,9 @@ def make_engine(url: str, **kwargs: Any) -> Engine:
         path = sqlite_path(url)
         if path is not None and not path.exists() and path.parent.is_dir():
             _create_private(path)
-        kwargs.setdefault("pool_size", SQLITE_POOL_SIZE)
-        kwargs.setdefault("max_overflow", 8)
+        if path is not None and "poolclass" not in kwargs:  # in memory: one shared connection
+            kwargs.setdefault("pool_size", SQLITE_POOL_SIZE)
+            kwargs.setdefault("max_overflow", 8)
         engine = create_engine(
             url, connect_args={"check_same_thread": False, "timeout": SQLITE_BUSY_SECONDS}, **kwargs
         )
