@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -56,6 +57,11 @@ __all__ = [
     "ingest",
     "ingest_many",
     "admit_signed",
+    "WebhookCredentials",
+    "remembered_credentials",
+    "read_credentials",
+    "forget_credentials",
+    "check_signature",
 ]
 
 _ROWS = TypeAdapter(list[ResponseIn])
@@ -356,30 +362,87 @@ class _Plan:
     outcome: dict[int, RespondentOutcome] = field(default_factory=dict)
 
 
+#: How long a survey's webhook secrets are trusted from memory before they are read again. A
+#: rotation made through this process's database handle takes effect at once; one made by
+#: another process (the command line, another replica) within this many seconds, and the
+#: previous secret stays valid through the rotation's grace period anyway.
+CREDENTIALS_SECONDS = 2.0
+_CREDENTIALS = "webhook-credentials"
+
+
+@dataclass(frozen=True)
+class WebhookCredentials:
+    """A survey's webhook secrets: the current one, and the previous one until it expires."""
+
+    secret: str
+    previous: str | None
+    previous_until: dt.datetime | None
+    read_at: float  # time.monotonic() when read from the database
+
+    def candidates(self, now: dt.datetime) -> list[str]:
+        out = [self.secret]
+        if self.previous and self.previous_until and self.previous_until > now:
+            out.append(self.previous)
+        return out
+
+
+def remembered_credentials(memo: dict[str, Any], survey: str) -> WebhookCredentials | None:
+    """The survey's credentials if read less than ``CREDENTIALS_SECONDS`` ago, else None."""
+    found = memo.get(_CREDENTIALS, {}).get(survey)
+    if found is None or time.monotonic() - found.read_at > CREDENTIALS_SECONDS:
+        return None
+    return found
+
+
+def read_credentials(session: Session, survey: str) -> WebhookCredentials:
+    """The survey's credentials from the database (remembered in the session's database memo).
+    Raises ``UnknownSurvey``."""
+    found = store.get_survey(session, survey)
+    if found is None:
+        raise UnknownSurvey(survey)
+    credentials = WebhookCredentials(
+        found.webhook_secret, found.previous_webhook_secret, found.previous_secret_until,
+        time.monotonic(),
+    )
+    memo = session.info.get("memo")
+    if memo is not None:
+        memo.setdefault(_CREDENTIALS, {})[survey] = credentials
+    return credentials
+
+
+def forget_credentials(memo: dict[str, Any], survey: str) -> None:
+    """Drop remembered credentials (after a rotation)."""
+    memo.get(_CREDENTIALS, {}).pop(survey, None)
+
+
+def check_signature(
+    credentials: WebhookCredentials,
+    signature: tuple[str | None, str | None, str | None],
+    body: bytes,
+    settings: Settings,
+) -> None:
+    """Verify a Standard Webhooks delivery (``webhook-id``, ``webhook-timestamp``,
+    ``webhook-signature``) under the survey's secret, or its previous one within the
+    rotation's grace period. Raises ``SignatureRefused``."""
+    try:
+        verify_webhook(
+            credentials.candidates(dt.datetime.now(dt.UTC)), *signature, body,
+            settings.webhook_tolerance_seconds,
+        )
+    except WebhookRejected as error:
+        raise SignatureRefused(error.reason) from None
+
+
 def admit_signed(
     session: Session,
     survey: str,
     signature: tuple[str | None, str | None, str | None],
     body: bytes,
     settings: Settings,
-) -> Survey:
-    """The survey of a signed delivery whose Standard Webhooks signature (``webhook-id``,
-    ``webhook-timestamp``, ``webhook-signature``) verifies under its secret, or its previous
-    one within the rotation's grace period. Raises ``UnknownSurvey`` or ``SignatureRefused``."""
-    found = store.get_survey(session, survey)
-    if found is None:
-        raise UnknownSurvey(survey)
-    candidates = [found.webhook_secret]
-    now = dt.datetime.now(dt.UTC)
-    if found.previous_webhook_secret and found.previous_secret_until and (
-        found.previous_secret_until > now
-    ):
-        candidates.append(found.previous_webhook_secret)
-    try:
-        verify_webhook(candidates, *signature, body, settings.webhook_tolerance_seconds)
-    except WebhookRejected as error:
-        raise SignatureRefused(error.reason) from None
-    return found
+) -> None:
+    """Check a signed delivery against the survey's secrets read from the database. Raises
+    ``UnknownSurvey`` or ``SignatureRefused``."""
+    check_signature(read_credentials(session, survey), signature, body, settings)
 
 
 def ingest(

@@ -11,7 +11,16 @@ from fastapi.concurrency import run_in_threadpool
 
 from detectors import ResponseDataError
 
-from ..ingest import BodyFieldProblem, IngestOptions, Submission, admit_signed
+from ..database import Database
+from ..ingest import (
+    BodyFieldProblem,
+    IngestOptions,
+    Submission,
+    WebhookCredentials,
+    check_signature,
+    read_credentials,
+    remembered_credentials,
+)
 from ..ingest_queue import IngestQueue
 from ..models import Role
 from ..problems import Problem, field_error
@@ -105,8 +114,12 @@ async def post_responses(
             headers.get("webhook-id"), headers.get("webhook-timestamp"),
             headers.get("webhook-signature"),
         )
-        # Checked before the post is queued, so forged posts never occupy the writer.
-        await run_in_threadpool(_admit_signed, database, survey, signature, body, settings)
+        # Checked before the post is queued, so forged posts never occupy the writer; with the
+        # survey's secrets in memory (read less than a few seconds ago), without a thread.
+        credentials = remembered_credentials(database.memo, survey)
+        if credentials is None:
+            credentials = await run_in_threadpool(_read_credentials, database, survey)
+        check_signature(credentials, signature, body, settings)
         options = IngestOptions(replace=replace, partial=partial, webhook_id=signature[0])
     else:
         await run_in_threadpool(_authorize, database, authorization)
@@ -133,11 +146,9 @@ async def post_responses(
     return Response(orjson.dumps(reply), status_code=status, media_type="application/json")
 
 
-def _admit_signed(
-    database: Any, survey: str, signature: tuple[Any, Any, Any], body: bytes, settings: Settings
-) -> None:
+def _read_credentials(database: Database, survey: str) -> WebhookCredentials:
     with database.read() as session:
-        admit_signed(session, survey, signature, body, settings)
+        return read_credentials(session, survey)
 
 
 def _authorize(database: Any, authorization: str | None) -> None:

@@ -12,6 +12,7 @@ from detectors import Instrument
 from detectors.screening import reference_detectors
 
 from .. import registration, store
+from ..ingest import forget_credentials
 from ..models import Role, Survey
 from ..problems import Problem
 from ..rescreen import rescreen
@@ -231,10 +232,12 @@ def rotate_webhook_secret(
         until = store.rotate_secret(
             session, found, dt.timedelta(seconds=settings.secret_grace_seconds)
         )
-        return SecretRotated(
+        rotated = SecretRotated(
             survey=found.survey, webhook_secret=found.webhook_secret,
             previous_secret_valid_until=until,
         )
+    forget_credentials(database.memo, survey)  # committed: the next post reads the new secret
+    return rotated
 
 
 @router.post(

@@ -210,6 +210,10 @@ def test_signed_webhook_valid_wrong_secret_stale_and_replay(service, survey):
 
 def test_rotated_secret_keeps_working_during_grace(service, survey):
     old = survey["webhook_secret"]
+    # a first post puts the survey's secrets in the server's memory; the rotation below must
+    # make the new secret work at once all the same
+    body = body_of(respondent("a0", [2, 2, 1, 2, 1, 2, 1, 2]))
+    assert service.client.post(URL, content=body, headers=signed_headers(old, body)).status_code == 201
     rotated = service.client.post(
         "/v1/surveys/pulse/webhook-secret", headers=service.auth(service.admin)
     )
@@ -285,3 +289,20 @@ def test_new_version_keeps_old_respondents_on_their_version(service, survey):
     assert rescreen.status_code == 200 and rescreen.json()["respondents"] == 3
     # Each version is re-screened with its own instrument; neither has enough for a reference.
     assert rescreen.json()["without_reference"].keys() == {"1", "2"}
+
+
+def test_remembered_webhook_secrets_expire(monkeypatch):
+    from service import ingest
+
+    clock = [100.0]
+    monkeypatch.setattr(ingest.time, "monotonic", lambda: clock[0])
+    memo: dict = {}
+    credentials = ingest.WebhookCredentials("whsec_a", None, None, read_at=clock[0])
+    memo.setdefault("webhook-credentials", {})["pulse"] = credentials
+    assert ingest.remembered_credentials(memo, "pulse") is credentials
+    clock[0] += ingest.CREDENTIALS_SECONDS + 0.01
+    assert ingest.remembered_credentials(memo, "pulse") is None
+    clock[0] = 100.0
+    ingest.forget_credentials(memo, "pulse")
+    assert ingest.remembered_credentials(memo, "pulse") is None
+    assert ingest.remembered_credentials(memo, "other") is None
