@@ -200,16 +200,16 @@ def newest_revision_on_file() -> str | None:
 
 def _at_newest(engine: Engine) -> bool:
     """Whether the database's schema already stands at the newest migration."""
-    from sqlalchemy.exc import DBAPIError
+    from sqlalchemy import inspect
 
     head = newest_revision_on_file()
     if head is None:
         return False
-    try:
-        with engine.connect() as connection:
-            stored = connection.exec_driver_sql("SELECT version_num FROM alembic_version").all()
-    except DBAPIError:  # no schema yet
-        return False
+    with engine.connect() as connection:
+        # Asked first, so that a new database does not log a failed query on the server.
+        if not inspect(connection).has_table("alembic_version"):
+            return False
+        stored = connection.exec_driver_sql("SELECT version_num FROM alembic_version").all()
     return [row[0] for row in stored] == [head]
 
 
