@@ -104,6 +104,14 @@ def test_the_table_joins_the_sentences_of_every_flag(request, sample):
     screened = request.getfixturevalue(sample)
     evidence = screened.to_frame()["evidence"].tolist()
     expected = [" | ".join(screened.flagged_sentences(i)) for i in range(screened.n_respondents)]
+    # where the careless score alone sent a respondent to review, the table says so after them
+    verdicts = screened.verdicts
+    for i in np.flatnonzero(verdicts.by_score & ~verdicts.family_flags.any(axis=1)):
+        note = (
+            f"careless score in the upper {verdicts.score_share:.1%} of the reference's "
+            "unflagged respondents (its own review hurdle)"
+        )
+        expected[i] = f"{expected[i]} | {note}" if expected[i] else note
     assert evidence == expected
     assert sum(" | " in text for text in evidence) > 0
 
