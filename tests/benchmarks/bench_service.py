@@ -1,14 +1,18 @@
 """Service speed on loopback: prints figures (not run by `make test`).
 
 1. Single-respondent signed webhook posts from 32 concurrent clients to one `heedful serve`
-   worker on SQLite: requests per second, p50 and p99 latency.
+   worker on SQLite: requests per second, p50 and p99 latency; the same posts to a bare
+   endpoint that only validates the body (``bare_endpoint.py``), for the ratio.
 2. One 10,000-respondent batch post, end to end (request sent to reply received).
 3. A page of 100 flagged respondents from a survey holding 1,000,000 (seeded through the same
    ingestion code the API uses, in batches).
 
 Only 127.0.0.1 is used; every loop is bounded. Usage:
 
-    .venv/bin/python tests/benchmarks/bench_service.py [--requests 8000] [--big 1000000]
+    .venv/bin/python tests/benchmarks/bench_service.py [--requests 8000] [--big 1000000] [--write]
+
+With ``--write`` the figures go to ``docs/speed-service.md`` and into the README between its
+marker lines, with the date, the commit and the machine's load.
 """
 
 from __future__ import annotations
@@ -85,6 +89,24 @@ def start_server(database_url: str, port: int) -> subprocess.Popen:
             time.sleep(0.1)
     process.kill()
     raise SystemExit("the server did not start within 60 s")
+
+
+def start_bare(port: int) -> subprocess.Popen:
+    """The bare validating endpoint (``bare_endpoint.py``) on ``port``."""
+    process = subprocess.Popen(
+        [sys.executable, str(Path(__file__).with_name("bare_endpoint.py")), str(port)],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+    )
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        try:
+            if httpx.get(f"http://{HOST}:{port}/healthz", timeout=1).status_code == 200:
+                return process
+        except httpx.TransportError:
+            time.sleep(0.1)
+    process.kill()
+    raise SystemExit("the bare endpoint did not start within 60 s")
 
 
 def stop(process: subprocess.Popen) -> None:
@@ -288,8 +310,17 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--requests", type=int, default=8000, help="single posts to send")
     parser.add_argument("--big", type=int, default=1_000_000, help="respondents of part 3")
+    parser.add_argument("--write", action="store_true",
+                        help="also write the figures to docs/speed-service.md and the README")
     args = parser.parse_args()
-    print(f"machine: {os.cpu_count()} CPU(s); python {sys.version.split()[0]}")
+    lines: list[str] = []
+
+    def say(line: str) -> None:
+        print(line, flush=True)
+        lines.append(line)
+
+    say(f"machine: {os.cpu_count()} CPU(s); python {sys.version.split()[0]}; "
+        f"load average {os.getloadavg()[0]:.1f} at the start")
     with tempfile.TemporaryDirectory() as folder:
         url = f"sqlite:///{Path(folder) / 'bench.db'}"
         database, secret, token, item_ids = prepare(url)
@@ -298,34 +329,47 @@ def main() -> int:
         try:
             single_posts(port, secret, item_ids, 500)  # warm-up, not reported
             result = single_posts(port, secret, item_ids, args.requests)
-            print(
-                f"1. single signed posts, {CONCURRENCY} clients, one worker, SQLite: "
-                f"{result['per_second']:.0f} req/s, p50 {result['p50_ms']:.1f} ms, "
+            say(
+                f"1. single signed posts, {CONCURRENCY} clients, one worker, SQLite, every "
+                f"detector: {result['per_second']:.0f} req/s, p50 {result['p50_ms']:.1f} ms, "
                 f"p90 {result['p90_ms']:.1f} ms, p99 {result['p99_ms']:.1f} ms, "
                 f"max {result['max_ms']:.0f} ms "
                 f"({result['ok']}/{result['requests']} ok)"
             )
             native = single_posts_wrk(port, secret, item_ids, Path(folder))
             if native is None:
-                print("1b. (wrk not installed: no native load generator run)")
+                say("1b. (wrk not installed: no native load generator run)")
             else:
-                print(
+                say(
                     f"1b. the same with wrk (native load generator): "
                     f"{native['per_second']:.0f} req/s, p50 {native['p50_ms']:.1f} ms, "
                     f"p99 {native['p99_ms']:.1f} ms ({native['non_2xx']} non-2xx of "
                     f"{native['requests']})"
                 )
             batch = big_batch(port, token, item_ids)
-            print(
+            say(
                 f"2. one batch of {batch['respondents']:,} respondents "
                 f"({batch['bytes'] / 1e6:.1f} MB): {batch['seconds']:.2f} s end to end"
             )
         finally:
             stop(server)
+        bare_port = free_port()
+        bare = start_bare(bare_port)
+        try:
+            single_posts(bare_port, secret, item_ids, 500)
+            plain = single_posts(bare_port, secret, item_ids, args.requests)
+            say(
+                f"1c. the same posts to a bare endpoint that only validates the body "
+                f"(bare_endpoint.py): {plain['per_second']:.0f} req/s, p99 "
+                f"{plain['p99_ms']:.1f} ms; the service reaches "
+                f"{result['per_second'] / plain['per_second']:.2f} of it"
+            )
+        finally:
+            stop(bare)
         settings = Settings(database_url=url)
         seconds = seed(database, settings, item_ids, args.big)
         total = args.big + args.requests + 500 + 10_000
-        print(f"   (seeded {args.big:,} respondents in {seconds:.0f} s; survey holds {total:,})")
+        say(f"   (seeded {args.big:,} respondents in {seconds:.0f} s; survey holds {total:,})")
         server = start_server(url, port)
         try:
             for label, params in (
@@ -336,14 +380,37 @@ def main() -> int:
                                             "sort": "-received_at"}),
             ):
                 timing = page_times(port, token, params)
-                print(
+                say(
                     f"3. page of 100 ({label}) from {total:,}: p50 {timing['p50_ms']:.1f} ms, "
                     f"max {timing['max_ms']:.1f} ms, next page {timing['next_page_ms']:.1f} ms"
                 )
         finally:
             stop(server)
         database.dispose()
+    if args.write:
+        write_figures(lines)
     return 0
+
+
+#: The README's copy of the figures lies between these lines.
+START = "<!-- service speed: written by bench_service.py -->"
+END = "<!-- end service speed -->"
+
+
+def write_figures(lines: list[str]) -> None:
+    import datetime as dt
+
+    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
+                            capture_output=True, text=True).stdout.strip()
+    stamp = (f"Written by `tests/benchmarks/bench_service.py` on {dt.date.today()} at commit "
+             f"`{commit}` (load average {os.getloadavg()[0]:.1f} when it ended).")
+    block = stamp + "\n\n```\n" + "\n".join(lines) + "\n```\n"
+    (ROOT / "docs" / "speed-service.md").write_text("# Speed of the service\n\n" + block)
+    readme = ROOT / "README.md"
+    content = readme.read_text()
+    head, rest = content.split(START, 1)
+    _, tail = rest.split(END, 1)
+    readme.write_text(f"{head}{START}\n{block}{END}{tail}")
 
 
 if __name__ == "__main__":
