@@ -238,6 +238,8 @@ class Verdicts:
     by_score: np.ndarray | None = None
     #: Upper share of the reference's unflagged respondents the score hurdle sends to review.
     score_share: float = 0.0
+    #: Flagging families from which the verdict is ``likely_careless`` (the policy's).
+    likely_from: int = 2
 
     def flagging_families(self, i: int) -> list[str]:
         return [self.families[f] for f in np.flatnonzero(self.family_flags[i])]
@@ -247,6 +249,7 @@ class Verdicts:
         return explain(
             str(self.verdict[i]), self.flagging_families(i), float(self.careless_score[i]),
             self.score_share, None if self.by_score is None else bool(self.by_score[i]),
+            self.likely_from,
         )
 
 
@@ -256,11 +259,13 @@ def explain(
     careless_score: float | None,
     score_share: float,
     by_score: bool | None = None,
+    likely_from: int = 2,
 ) -> str:
     """One sentence on why a respondent has ``verdict``: the counted families that flagged
-    them, and whether the careless score alone reached the review hurdle (``by_score``; when
-    unknown, as for a stored result, a verdict other than ``ok`` without a flagging family
-    can only have come from it)."""
+    them, whether a failed attention check escalated it (``likely_careless`` with fewer than
+    ``likely_from`` families), and whether the careless score alone reached the review
+    hurdle (``by_score``; when unknown, as for a stored result, a verdict other than ``ok``
+    without a flagging family can only have come from it)."""
     if by_score is None:
         by_score = verdict != "ok" and not families
     if not families and not by_score:
@@ -269,6 +274,8 @@ def explain(
     if families:
         plural = "family" if len(families) == 1 else "families"
         parts.append(f"flagged by {len(families)} {plural} ({', '.join(families)})")
+        if verdict == "likely_careless" and len(families) < likely_from:
+            parts.append("a failed attention check with another flag makes careless answering likely")
     if by_score:
         shown = "unknown" if careless_score is None or careless_score != careless_score else (
             f"{careless_score:.3f}"
@@ -327,7 +334,9 @@ def assess(
     codes = np.where(likely, 2, np.where(review, 1, 0))
     verdict = np.asarray(VERDICTS, dtype=object)[codes]
     share = policy.review_rate * policy.score_review_share
-    return Verdicts(verdict, careless, families, family_flags, by_score, share)
+    return Verdicts(
+        verdict, careless, families, family_flags, by_score, share, policy.likely_careless_from
+    )
 
 
 def score_cutoff(policy: VerdictPolicy, ranks: Mapping[str, list[float]]) -> float:

@@ -324,4 +324,5 @@ def _verdict_reason(session: Session, found: Respondent) -> str | None:
     return explain(
         str(found.verdict), families, found.careless_score,
         policy.review_rate * policy.score_review_share,
+        likely_from=policy.likely_careless_from,
     )

@@ -56,6 +56,11 @@ def test_hand_made_verdicts_follow_the_default_policy():
         "ok", "review", "review", "likely_careless", "ok", "likely_careless", "review",
     ]
     assert verdicts.flagging_families(3) == ["invariance", "outlier"]
+    assert verdicts.reason(3) == "flagged by 2 families (invariance, outlier)"
+    assert verdicts.reason(5) == (
+        "flagged by 1 family (effort); a failed attention check with another flag makes "
+        "careless answering likely"
+    )
     assert np.isnan(verdicts.careless_score).all()  # no percentile tables: no score
     # A stricter policy: a failed check does not escalate; three families for likely_careless;
     # style counts.
