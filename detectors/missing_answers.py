@@ -90,11 +90,14 @@ class MissingAnswers(Detector):
         listed = np.full((n, LISTED_ITEMS), -1, dtype=np.int64)
         for rows in row_slices(n):
             missing = matrix.answers[rows][:, columns] == MISSING
-            missing_count[rows] = missing.sum(axis=1)
-            # A stable sort of "answered" puts the unanswered positions first, in order.
-            first = np.argsort(~missing, axis=1, kind="stable")[:, :LISTED_ITEMS]
-            shown = np.take_along_axis(missing, first, axis=1)
-            listed[rows, : first.shape[1]] = np.where(shown, first, -1)
+            count = missing.sum(axis=1)
+            missing_count[rows] = count
+            # Unanswered cells row by row, in item order: a cell's place among its row's is its
+            # index less the number of unanswered cells in the rows before.
+            row, item = np.nonzero(missing)
+            place = np.arange(len(row)) - (np.cumsum(count) - count)[row]
+            shown = place < LISTED_ITEMS
+            listed[row[shown] + rows.start, place[shown]] = item[shown]
         names = np.array([*np.asarray(instrument.item_ids, dtype=object)[columns], None], dtype=object)
         # -1 indexes the trailing None: unlisted slots read as None.
         first_missing = names[listed]
