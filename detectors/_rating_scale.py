@@ -9,6 +9,8 @@ million respondents need only a few thousand estimates per scale.
 from __future__ import annotations
 
 import math
+import threading
+import weakref
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -252,6 +254,18 @@ class _Plan:
             plan.indicator[where, s] = 1.0
         return plan
 
+    def fingerprint(self) -> tuple[tuple[Any, ...], ...]:
+        """Everything the person estimates depend on: each scale's items, keying, options,
+        difficulties and thresholds."""
+        return tuple(
+            (
+                model.layout.columns.tobytes(), model.layout.sign.tobytes(),
+                model.layout.offset.tobytes(), model.layout.m,
+                model.difficulties.tobytes(), model.thresholds.tobytes(),
+            )
+            for model in self.models
+        )
+
     def categories(self, answers: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Keyed categories of the block (m + 1 where unanswered) and the answered mask."""
         raw = answers[:, self.first : self.first + len(self.columns)]
@@ -274,6 +288,19 @@ class _Persons:
     scores: np.ndarray
 
 
+_Grouped = tuple[np.ndarray, np.ndarray, list[_Persons]]
+
+#: The groups and person estimates last found for each matrix being screened, with what they
+#: were found under, so that detectors judging the same answers against the same model
+#: (``person_fit`` and ``log_likelihood_fit`` with the same estimation settings) find them
+#: once. Held while the matrix lives; its answers are taken as fixed, as
+#: ``ResponseMatrix.answered`` takes them.
+_FOUND: weakref.WeakKeyDictionary[ResponseMatrix, tuple[Any, _Grouped]] = (
+    weakref.WeakKeyDictionary()
+)
+_FOUND_LOCK = threading.Lock()
+
+
 def _group_persons(
     plan: _Plan,
     matrix: ResponseMatrix,
@@ -281,14 +308,41 @@ def _group_persons(
     max_iterations: int,
     slices: Callable[[int], Iterator[slice]] = row_slices,
     each_slice: Callable[[slice, np.ndarray, np.ndarray], None] | None = None,
-) -> tuple[np.ndarray, np.ndarray, list[_Persons]]:
+) -> _Grouped:
     """Every respondent's group and number of answered items on every scale (both
-    (n, scales)), and each group's θ.
+    (n, scales)), and each group's θ (arrays read-only: they may be shared).
 
     ``each_slice(rows, category, answered)`` is called once per block of rows with the
-    block's keyed categories and answered mask, for sums a caller needs beside the groups (one
-    pass over the answers instead of two).
+    block's keyed categories and answered mask, for sums a caller needs beside the groups: in
+    the pass that finds the groups (one pass over the answers instead of two), or in a pass of
+    its own when the groups of this matrix under this model are known already (``_FOUND``).
     """
+    key = (plan.fingerprint(), tolerance, max_iterations)
+    with _FOUND_LOCK:
+        known = _FOUND.get(matrix)
+    if known is not None and known[0] == key:
+        if each_slice is not None:
+            with one_blas_thread():  # as in the grouping pass
+                for rows in slices(matrix.n_respondents):
+                    each_slice(rows, *plan.categories(matrix.answers[rows]))
+        return known[1]
+    grouped = _find_groups(plan, matrix, tolerance, max_iterations, slices, each_slice)
+    for array in (grouped[0], grouped[1], *(a for p in grouped[2] for a in vars(p).values())):
+        array.flags.writeable = False
+    with _FOUND_LOCK:
+        _FOUND[matrix] = (key, grouped)
+    return grouped
+
+
+def _find_groups(
+    plan: _Plan,
+    matrix: ResponseMatrix,
+    tolerance: float,
+    max_iterations: int,
+    slices: Callable[[int], Iterator[slice]],
+    each_slice: Callable[[slice, np.ndarray, np.ndarray], None] | None,
+) -> _Grouped:
+    """The work of :func:`_group_persons`."""
     n, n_scales = matrix.n_respondents, len(plan.models)
     groups = np.empty((n, n_scales), dtype=np.int64)
     counts = np.empty((n, n_scales), dtype=np.int16)

@@ -82,7 +82,8 @@ class LogLikelihoodFit(RatingScaleDetector):
     Γ_i(θ) the normaliser, so on a scale l0 = S θ - Σ_i ln Γ_i(θ) + Σ_i (κ_{x_i} - x_i δ_i)
     with S the raw score. The first part, E and Var depend only on which items were answered
     and the raw score, as θ does, so they are computed once per such group (the grouping of
-    ``person_fit``); the last part is summed per respondent from a table of a few numbers per
+    ``person_fit``, found once for both when they screen the same matrix under the same
+    reference); the last part is summed per respondent from a table of a few numbers per
     item, in the same pass over the answers that finds the groups.
 
     **The reference.** ``fit`` estimates the same reference as ``person_fit`` (joint maximum

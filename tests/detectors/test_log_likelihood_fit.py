@@ -145,7 +145,7 @@ def direct_lz(instrument, values, reference, min_items):
     return out
 
 
-@pytest.mark.parametrize("path", ["one_slice", "small_slices"])
+@pytest.mark.parametrize("path", ["one_slice", "small_slices", "after_person_fit"])
 def test_lz_equals_a_direct_computation_with_scipy(path, monkeypatch):
     if path == "small_slices":  # slice and group-block boundaries in the middle of the data
         monkeypatch.setattr(module, "row_slices", lambda n: _base.row_slices(n, 37))
@@ -169,7 +169,18 @@ def test_lz_equals_a_direct_computation_with_scipy(path, monkeypatch):
     matrix = ResponseMatrix.from_arrays(instrument, values)
     detector = LogLikelihoodFit()
     reference = detector.fit(instrument, matrix)
+    if path == "after_person_fit":
+        # person_fit's person estimates of this matrix are reused under the same model only:
+        # found under other difficulties first, then under the reference's
+        other = json.loads(json.dumps(reference))
+        for scale in other["scales"]:
+            scale["difficulties"] = [d + 0.3 for d in scale["difficulties"]]
+        PersonFit().screen(instrument, matrix, other)
+        moved = detector.screen(instrument, matrix, reference).evidence["lz"]
+        PersonFit().screen(instrument, matrix, reference)
     result = detector.screen(instrument, matrix, reference)
+    if path == "after_person_fit":
+        np.testing.assert_array_equal(moved, result.evidence["lz"])
     direct = direct_lz(instrument, values, reference, detector.min_items)
     assessed = result.states == State.ASSESSED
     assert np.array_equal(assessed, ~np.isnan(direct[:, 0]))
