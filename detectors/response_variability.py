@@ -137,11 +137,11 @@ answered items) (flagged at SD 0.5 or less)"
         block_count = np.zeros((len(names), n), dtype=np.int64)
         for rows in row_slices(n):
             overall[rows], answered_count[rows] = _sd(
-                _rows_as_float(matrix, rows, content), self.min_items
+                _answers(matrix, rows, content), self.min_items
             )
             for b, columns in enumerate(blocks.values()):
                 block_sd[b, rows], block_count[b, rows] = _sd(
-                    _rows_as_float(matrix, rows, columns), self.min_items
+                    _answers(matrix, rows, columns), self.min_items
                 )
         lowest_block = np.full(n, None, dtype=object)
         lowest_block_sd = np.full(n, np.nan)
@@ -211,18 +211,19 @@ answered items) (flagged at SD 0.5 or less)"
         )
 
 
-def _rows_as_float(matrix: ResponseMatrix, rows: slice, columns: np.ndarray) -> np.ndarray:
-    sub = matrix.answers[rows][:, columns]
-    return np.where(sub == MISSING, np.nan, sub.astype(np.float64))
+def _answers(matrix: ResponseMatrix, rows: slice, columns: np.ndarray) -> np.ndarray:
+    return matrix.answers[rows][:, columns]
 
 
-def _sd(values: np.ndarray, min_items: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row-wise SD (ddof = :data:`DDOF`) ignoring NaN, NaN below ``min_items`` answers; counts."""
-    answered = ~np.isnan(values)
+def _sd(answers: np.ndarray, min_items: int) -> tuple[np.ndarray, np.ndarray]:
+    """Row-wise SD (ddof = :data:`DDOF`) of the answered codes, NaN below ``min_items``
+    answers; counts."""
+    answered = answers != MISSING
     count = answered.sum(axis=1)
     enough = count >= min_items
     safe = np.maximum(count, 1)
-    mean = np.nansum(values, axis=1) / safe
+    values = np.where(answered, answers, 0).astype(np.float64)
+    mean = values.sum(axis=1) / safe
     deviations = np.where(answered, values - mean[:, None], 0.0)
     variance = (deviations * deviations).sum(axis=1) / np.maximum(count - DDOF, 1)
     return np.where(enough, np.sqrt(variance), np.nan), count
