@@ -20,6 +20,7 @@ from .mahalanobis import (
     _missing_columns,
     _precision,
     _solve_missing,
+    known_distances,
 )
 from .responses import MISSING, ResponseMatrix
 
@@ -265,6 +266,7 @@ class ContentNonresponsivity(Detector):
         covariance = np.asarray(reference["covariance"], dtype=np.float64)
         precision = _precision(covariance)
         log_det = float(np.linalg.slogdet(covariance)[1])
+        known = known_distances(matrix, columns, location, covariance)
         with one_blas_thread():
             for rows in _chunks(matrix.n_respondents):
                 answers = _content_answers(matrix, rows, columns)
@@ -276,18 +278,22 @@ class ContentNonresponsivity(Detector):
                     own_centre = values.sum(axis=1) / m
                     deviation = np.where(missing, 0.0, values - own_centre[:, None])
                     own_spread = np.sqrt(np.einsum("ij,ij->i", deviation, deviation) / m)
-                centred = np.where(missing, 0.0, values - location)
-                projected = centred @ precision
-                squared = np.einsum("ij,ij->i", centred, projected)
+                if known is None:
+                    centred = np.where(missing, 0.0, values - location)
+                    projected = centred @ precision
+                    squared = np.einsum("ij,ij->i", centred, projected)
+                else:  # the same D², found by mahalanobis
+                    squared = known[rows].copy()
                 log_det_answered = np.full(len(m), log_det)
                 if n_missing.any():
                     layout = _missing_columns(missing, n_missing)
                     some = np.flatnonzero((n_missing > 0) & (m > 0))
                     for group, gone in _by_missing_count(some, n_missing, layout):
-                        right = projected[group[:, None], gone]
-                        squared[group] -= np.einsum(
-                            "ij,ij->i", right, _solve_missing(precision, gone, right)
-                        )
+                        if known is None:
+                            right = projected[group[:, None], gone]
+                            squared[group] -= np.einsum(
+                                "ij,ij->i", right, _solve_missing(precision, gone, right)
+                            )
                         log_det_answered[group] += _log_determinants(precision, gone)
                 np.maximum(squared, 0.0, out=squared)  # rounding can leave a hair below zero
                 floored = np.maximum(own_spread, SPREAD_FLOOR)

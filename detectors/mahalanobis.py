@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import math
+import threading
 import warnings
+import weakref
 from collections.abc import Iterator, Mapping
 from typing import Any
 
@@ -51,6 +53,33 @@ _MAX_CONDITION = 1e10
 _TOP_ITEMS = 3
 #: Items named in a reason before "and N more".
 _ITEMS_NAMED = 6
+
+
+#: The squared distances last found for each matrix being screened, with the reference they
+#: were found under (items, location, covariance), so that ``content_nonresponsivity`` on the
+#: same matrix and reference reads them instead of finding them again. Held while the matrix
+#: lives; its answers are taken as fixed, as ``ResponseMatrix.answered`` takes them.
+_FOUND: weakref.WeakKeyDictionary[ResponseMatrix, tuple[Any, np.ndarray]] = (
+    weakref.WeakKeyDictionary()
+)
+_FOUND_LOCK = threading.Lock()
+
+
+def _distance_key(columns: np.ndarray, location: np.ndarray, covariance: np.ndarray) -> Any:
+    return columns.tobytes(), location.tobytes(), covariance.tobytes()
+
+
+def known_distances(
+    matrix: ResponseMatrix, columns: np.ndarray, location: np.ndarray, covariance: np.ndarray
+) -> np.ndarray | None:
+    """Every respondent's D² on their answered content items (0 with none answered) under
+    this location and covariance, when ``mahalanobis`` has screened this matrix with them
+    (read-only); None otherwise."""
+    with _FOUND_LOCK:
+        known = _FOUND.get(matrix)
+    if known is None or known[0] != _distance_key(columns, location, covariance):
+        return None
+    return known[1]
 
 
 def _chunks(n: int) -> Iterator[slice]:
@@ -598,8 +627,10 @@ class Mahalanobis(Detector):
         p = len(columns)
         n_reference = int(reference["respondents_used"])
         location = np.asarray(reference["location"], dtype=np.float64)
-        precision = _precision(np.asarray(reference["covariance"], dtype=np.float64))
+        covariance = np.asarray(reference["covariance"], dtype=np.float64)
+        precision = _precision(covariance)
         by_df = self._cutoff_table(p, n_reference)
+        every = np.empty(matrix.n_respondents)  # D² of everyone, for known_distances
         least = max(1, math.ceil(self.min_answered_share * p - 1e-9))
         # Buffers reused from chunk to chunk: fresh large arrays would be paged in every time.
         size = min(_ROWS_PER_CHUNK, matrix.n_respondents)
@@ -620,13 +651,15 @@ class Mahalanobis(Detector):
                 np.matmul(centred, precision, out=projected)
                 distance = np.einsum("ij,ij->i", centred, projected)
                 judged = n_missing <= p - least
-                # D² on the answered items: d'Pd - (Pd)_m' (P_mm)^-1 (Pd)_m.
-                incomplete = np.flatnonzero(judged & (n_missing > 0))
+                # D² on the answered items: d'Pd - (Pd)_m' (P_mm)^-1 (Pd)_m (for everyone
+                # with an answer, judged or not: known_distances serves them all).
+                incomplete = np.flatnonzero((n_missing > 0) & (n_missing < p))
                 for group, gone in _by_missing_count(incomplete, n_missing, layout):
                     right = projected[group[:, None], gone]
                     solved = _solve_missing(precision, gone, right)
                     distance[group] -= np.einsum("ij,ij->i", right, solved)
                 np.maximum(distance, 0.0, out=distance)  # rounding can leave a hair below zero
+                every[rows] = distance
                 df = p - n_missing
                 chunk_cutoffs = by_df[df]
                 chunk_p = np.full(len(df), np.nan)
@@ -639,6 +672,9 @@ class Mahalanobis(Detector):
                 cutoffs[rows] = np.where(judged, chunk_cutoffs, np.nan)
                 p_values[rows] = chunk_p
                 answered[rows] = df
+        every.flags.writeable = False
+        with _FOUND_LOCK:
+            _FOUND[matrix] = (_distance_key(columns, location, covariance), every)
         too_few = answered < least
         for count in np.unique(answered[too_few]).tolist():
             reason = (

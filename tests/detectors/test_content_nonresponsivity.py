@@ -12,6 +12,7 @@ from scipy import stats
 
 from detectors import ResponseMatrix, SettingError, State, matrix_from_frame, parse_instrument
 from detectors.content_nonresponsivity import SPREAD_FLOOR, ContentNonresponsivity
+from detectors.mahalanobis import Mahalanobis
 from detectors.planting import plant, roc_auc
 
 NAN = np.nan
@@ -59,7 +60,8 @@ def expected_ratio(values, location, covariance):
     return np.array(out)
 
 
-def test_ratio_equals_scipy_densities_with_and_without_missing_answers():
+@pytest.mark.parametrize("path", ["alone", "after_mahalanobis"])
+def test_ratio_equals_scipy_densities_with_and_without_missing_answers(path):
     inst = instrument(8, checks=[(3, 4)])
     rng = np.random.default_rng(7)
     reference_values = sample(rng, 400, 8)
@@ -72,17 +74,37 @@ def test_ratio_equals_scipy_densities_with_and_without_missing_answers():
     def with_check(values):
         return np.insert(values, 3, 4, axis=1)
 
+    screened[7, 1:] = NAN  # too few answers, and none at all
+    screened[8, :] = NAN
+
     detector = ContentNonresponsivity()
     reference = detector.fit(inst, as_matrix(inst, with_check(reference_values)))
-    result = detector.screen(inst, as_matrix(inst, with_check(screened)), reference)
+    matrix = as_matrix(inst, with_check(screened))
+    if path == "after_mahalanobis":
+        # mahalanobis's D² of this matrix is reused under the same reference only: found
+        # under another location first, then under the reference's
+        other = json.loads(json.dumps(reference))
+        other["location"] = [v + 0.5 for v in other["location"]]
+        Mahalanobis().screen(inst, matrix, other)
+        moved = detector.screen(inst, matrix, reference)
+        Mahalanobis().screen(inst, matrix, reference)
+    result = detector.screen(inst, matrix, reference)
+    if path == "after_mahalanobis":
+        alone = detector.screen(inst, as_matrix(inst, with_check(screened)), reference)
+        for name, values in alone.evidence.items():
+            np.testing.assert_array_equal(result.evidence[name], values, err_msg=name)
+            np.testing.assert_array_equal(moved.evidence[name], values, err_msg=name)
     location = np.asarray(reference["location"])
     covariance = np.asarray(reference["covariance"])
     # numpy.cov on the complete reference rows (reference library) gives the same estimate
     np.testing.assert_allclose(covariance, np.cov(reference_values, rowvar=False), rtol=1e-12)
     assessed = result.states == State.ASSESSED
-    want = expected_ratio(screened, location, covariance)
-    np.testing.assert_allclose(result.scores[assessed], want[assessed], rtol=1e-9, atol=1e-9)
-    assert assessed[5] and assessed[6]
+    others = np.r_[0:7, 9 : len(screened)]
+    want = expected_ratio(screened[others], location, covariance)
+    np.testing.assert_allclose(
+        result.scores[others][assessed[others]], want[assessed[others]], rtol=1e-9, atol=1e-9
+    )
+    assert assessed[5] and assessed[6] and not assessed[7] and not assessed[8]
     assert result.evidence["own_spread"][5] == 0.0
     assert result.evidence["items_answered"][6] == 5
 
