@@ -20,7 +20,7 @@ from ._base import (
 )
 from ._text import TextColumn, concat, plain
 from .instrument import Instrument
-from .responses import ResponseMatrix
+from .responses import MISSING, ResponseMatrix
 
 __all__ = ["LongString", "chance_of_run", "default_run_cutoff"]
 
@@ -163,19 +163,19 @@ class LongString(Detector):
         if m < 2:
             mark(states, reasons, slice(None), State.NOT_APPLICABLE, "fewer than 2 items")
         else:
-            answers = matrix.answers[:, columns]
-            answered = matrix.answered[:, columns]
-            run = answered[:, 0].astype(np.int16)
+            # Item-major (items, respondents): each item's answers lie side by side.
+            answers = np.ascontiguousarray(matrix.answers[:, columns].T)
+            answered = answers != MISSING
+            run = answered[0].astype(np.int16)
             best[:] = run
             for j in range(1, m):
-                same = answered[:, j] & (answers[:, j] == answers[:, j - 1])
+                same = answered[j] & (answers[j] == answers[j - 1])
                 repeats += same
-                pairs += answered[:, j] & answered[:, j - 1]
-                run = np.where(same, run + 1, answered[:, j]).astype(np.int16)
-                longer = run > best
-                best[longer] = run[longer]
-                best_end[longer] = j
-            value = answers[np.arange(n), best_end].astype(np.int16)
+                pairs += answered[j] & answered[j - 1]
+                run = np.where(same, run + 1, answered[j]).astype(np.int16)
+                np.copyto(best_end, j, where=run > best)
+                np.maximum(best, run, out=best)
+            value = answers[best_end, np.arange(n)].astype(np.int16)
             mark(states, reasons, best == 0, State.NOT_ASSESSED, "no item answered")
         best_start = best_end - np.maximum(best, 1) + 1
         return self._result(
@@ -193,7 +193,7 @@ class LongString(Detector):
                 "repeat_share": np.divide(
                     repeats, pairs, out=np.full(n, np.nan), where=pairs > 0
                 ),
-                "items_answered": answered.sum(axis=1) if m >= 2 else np.zeros(n, np.int64),
+                "items_answered": answered.sum(axis=0) if m >= 2 else np.zeros(n, np.int64),
             },
         )
 
