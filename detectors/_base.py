@@ -240,6 +240,10 @@ class Detector:
     reference: ClassVar[str]
     #: True when the detector needs a reference sample (estimated by ``fit``).
     needs_sample: ClassVar[bool] = False
+    #: The evidence entries that depend on the other respondents screened with the respondent
+    #: (not on the reference sample): screening the respondent alone would not give them
+    #: back, so the service keeps their values with the stored result.
+    compares_respondents: ClassVar[tuple[str, ...]] = ()
     #: How the cut-off used for the verdict is set. ``"fixed"``: the detector's own cut-off (a
     #: rule of the trade or an exact null model). ``"reference"``: the index's null behaviour
     #: depends on the instrument and the sample, so the screen replaces the detector's own

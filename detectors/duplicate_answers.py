@@ -134,6 +134,7 @@ included: b'
     """
 
     name = "duplicate_answers"
+    compares_respondents = ("same_answers_count", "same_answers_as")
     family = "effort"
     summary = "Number of other respondents who gave exactly the same answers."
     reference = (

@@ -85,6 +85,7 @@ fast as the median respondent (90 s)'
     """
 
     name = "speeding"
+    compares_respondents = ("relative_speed", "median_duration_seconds")
     family = "effort"
     summary = "Answered items per minute; flagged at 2 seconds per item or less."
     reference = (

@@ -35,7 +35,15 @@ from .errors import (
     UnknownSurvey,
 )
 from .models import Survey
-from .outcomes import Summary, outcome_rows, screen_matrix
+from .outcomes import (
+    Summary,
+    detector_codes,
+    flags_column,
+    not_assessed_of,
+    screen_matrix,
+    seconds_taken,
+    written,
+)
 from .schemas import ResponseIn
 from .screeners import Screener, reference_data, screener_for
 from .security import WebhookRejected, verify_webhook
@@ -221,20 +229,11 @@ def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int)
     )
 
 
-def seconds_taken(row: Any) -> float:
-    """The response's duration: ``duration_seconds`` when given, else ``submitted_at -
-    started_at`` when both are known (NaN when neither, or when the difference is negative)."""
-    if row.duration_seconds is not None:
-        return row.duration_seconds
-    if row.started_at is None or row.submitted_at is None:
-        return np.nan
-    seconds = (row.submitted_at - row.started_at).total_seconds()
-    return seconds if seconds >= 0 else np.nan
-
-
 def answers_digest(answers: Mapping[str, int | None]) -> str:
-    """Digest of the answered items only: an explicit null and an absent item are the same."""
-    return store.canonical_digest({k: v for k, v in answers.items() if v is not None})
+    """Digest of the answered items only: an explicit null and an absent item are the same.
+    The first 64 bits (16 hex digits): it only tells one respondent's answers from its own
+    earlier ones."""
+    return store.canonical_digest({k: v for k, v in answers.items() if v is not None})[:16]
 
 
 # Ingestion -------------------------------------------------------------------------------------
@@ -568,7 +567,8 @@ def ingest_many(
         for i in plan.duplicates
         if plan.ids[i] in existing[plan.survey.id]
     ]
-    waiting = store.not_assessed_of(session, waiting_pks) if waiting_pks else {}
+    waiting = not_assessed_of(session, waiting_pks) if waiting_pks else {}
+    codes = detector_codes(session) if waiting_pks else None
     deliveries = []
     for plan in accepted:
         stored_rows = existing[plan.survey.id]
@@ -577,8 +577,8 @@ def ingest_many(
             plan.outcome[i] = RespondentOutcome(
                 plan.ids[i],
                 "duplicate",
-                None if stored is None else Summary.stored(
-                    stored.flags, stored.verdict, stored.careless_score
+                None if stored is None or codes is None else Summary.stored(
+                    codes, stored.flag_bits, stored.verdict, stored.careless_score
                 ),
                 () if stored is None else tuple(waiting.get(stored.id, [])),
             )
@@ -612,14 +612,15 @@ def _store_group(
         durations=np.concatenate([m.durations for m in matrices]),
     )
     screened = screen_matrix(screener, matrix, reference)
-    new_values, old_values, pks_in_order = [], [], []
-    new_positions = []
+    codes = detector_codes(session, screened.names)
+    screenings = written(screened, codes)
+    new_values, old_values = [], []
+    flags_before: dict[int, str] = {}
     k = 0
     for plan, rows in parts:
         replaced = set(plan.replaced)
         for i in rows:
             row = plan.checked.rows[i]
-            summary = screened.summary(k)
             values = {
                 "survey_version_id": screener.version_id,
                 "answers": row.answers,
@@ -632,31 +633,25 @@ def _store_group(
                 "screened_at": now,
                 "reference_id": used_reference,
                 "screened_with": screener.fingerprint,
-                **summary.columns(),
+                **screenings[k].columns(codes),
             }
             if i in replaced:
-                pk = stored_rows[plan.ids[i]].id
-                old_values.append({"pk": pk, **values})
-                pks_in_order.append(pk)
+                before = stored_rows[plan.ids[i]]
+                old_values.append({"pk": before.id, **values})
+                flags_before[before.id] = flags_column(codes.names(before.flag_bits))
             else:
                 new_values.append(
                     {"survey_id": survey.id, "respondent_id": row.respondent_id, **values}
                 )
-                new_positions.append(len(pks_in_order))
-                pks_in_order.append(None)
             plan.outcome[i] = RespondentOutcome(
                 plan.ids[i],
                 "replaced" if i in replaced else "stored",
-                summary,
+                screenings[k].summary,
                 tuple(screened.not_assessed(k)),
             )
             k += 1
-    for position, pk in zip(
-        new_positions, store.insert_respondents(session, new_values), strict=True
-    ):
-        pks_in_order[position] = pk
-    store.replace_respondents(session, old_values, now)
-    store.insert_outcomes(session, outcome_rows(screened, pks_in_order, used_reference))
+    store.insert_respondents(session, new_values)
+    store.replace_respondents(session, old_values, now, flags_before)
 
 
 def _ingested(plan: _Plan, received: int) -> Ingested:

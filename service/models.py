@@ -1,9 +1,11 @@
 """The stored tables, as typed SQLAlchemy models.
 
 A survey has numbered versions (its instrument documents); every respondent keeps the version it
-was screened with. One row per respondent and detector holds the result. Answers are stored as
-received, so any later re-screen can use them; earlier answers replaced with ``?replace=true``
-move to ``response_history``. Reviews are append-only.
+was screened with. A respondent's row holds its screening: the verdict, the careless score, the
+flag set (a bitmask of ``detector_codes``) and every detector's state, flag, score and cut-off
+packed in ``results`` (layout: ``service.outcomes``); evidence is derived on read. Answers are
+stored as received, so any later re-screen can use them; earlier answers replaced with
+``?replace=true`` move to ``response_history``. Reviews are append-only.
 """
 
 from __future__ import annotations
@@ -14,12 +16,14 @@ from typing import Any
 
 from sqlalchemy import (
     JSON,
+    BigInteger,
     Boolean,
     Enum,
     Float,
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     SmallInteger,
     String,
     Text,
@@ -40,7 +44,7 @@ __all__ = [
     "Respondent",
     "ResponseHistory",
     "ScreeningHistory",
-    "DetectorOutcome",
+    "DetectorCode",
     "Review",
     "WebhookDelivery",
     "Erasure",
@@ -178,8 +182,15 @@ class Respondent(Base):
         ForeignKey("reference_samples.id", ondelete="SET NULL"), default=None
     )
     flag_count: Mapped[int] = mapped_column(SmallInteger, default=0)
-    #: Names of the raised flags, comma-separated in registry order ("" when none).
-    flags: Mapped[str] = mapped_column(String(500), default="")
+    #: The raised flags: bit ``code`` set for each flagging detector (``DetectorCode``).
+    flag_bits: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
+    #: Every detector's code, state, flag, score and cut-off, packed (``outcomes.PACKED``).
+    results: Mapped[bytes | None] = mapped_column(LargeBinary, default=None)
+    #: The evidence of detectors that compare respondents with each other (which screening
+    #: the respondent alone would not give back), by detector code; None when there is none.
+    kept_evidence: Mapped[dict[str, Any] | None] = mapped_column(
+        JSON(none_as_null=True), default=None
+    )
     #: ok / review / likely_careless under the instrument's verdict policy.
     verdict: Mapped[Verdict] = mapped_column(
         _enum(Verdict, "verdict"), default=Verdict.OK, server_default=Verdict.OK.value
@@ -235,31 +246,23 @@ class ScreeningHistory(Base):
     flags: Mapped[str] = mapped_column(String(500), default="")
     verdict: Mapped[Verdict] = mapped_column(_enum(Verdict, "verdict"), default=Verdict.OK)
     careless_score: Mapped[float | None] = mapped_column(Float, default=None)
-    #: Detector name to {"version", "state", "score", "flagged"} of the earlier result.
-    results: Mapped[dict[str, Any]] = mapped_column(JSON)
+    #: The earlier results packed (``outcomes.EARLIER``: code, state and flag, score), and
+    #: the detectors' versions (one text for all, a list in the packed order, or None when
+    #: not known). Rows written before migration 0005 hold ``results`` instead (detector name
+    #: to {"version", "state", "score", "flagged"}); later ones an empty object there.
+    packed_results: Mapped[bytes | None] = mapped_column(LargeBinary, default=None)
+    versions: Mapped[Any] = mapped_column(JSON(none_as_null=True), default=None)
+    results: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
 
 
-class DetectorOutcome(Base):
-    """One detector's result for one respondent."""
+class DetectorCode(Base):
+    """A detector's stable number: its bit in ``Respondent.flag_bits`` and its tag in the
+    packed results. Given on first sight and never changed or reused."""
 
-    __tablename__ = "detector_outcomes"
+    __tablename__ = "detector_codes"
 
-    respondent_pk: Mapped[int] = mapped_column(
-        ForeignKey("respondents.id", ondelete="CASCADE"), primary_key=True
-    )
-    detector: Mapped[str] = mapped_column(String(64), primary_key=True)
-    detector_version: Mapped[str] = mapped_column(String(32))
-    #: 0 assessed, 1 not assessed, 2 not applicable (the engine's State codes).
-    state: Mapped[int] = mapped_column(SmallInteger)
-    score: Mapped[float | None] = mapped_column(Float, default=None)
-    cutoff: Mapped[float | None] = mapped_column(Float, default=None)
-    flagged: Mapped[bool] = mapped_column(Boolean, default=False)
-    reason: Mapped[str | None] = mapped_column(Text, default=None)
-    evidence: Mapped[dict[str, Any]] = mapped_column(JSON)
-    sentence: Mapped[str] = mapped_column(Text, default="")
-    reference_id: Mapped[int | None] = mapped_column(
-        ForeignKey("reference_samples.id", ondelete="SET NULL"), default=None
-    )
+    code: Mapped[int] = mapped_column(SmallInteger, primary_key=True, autoincrement=False)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
 
 
 class Review(Base):

@@ -1,42 +1,61 @@
-"""The one code that turns a screening into stored rows and stored rows back into results.
+"""The one code that turns a screening into stored results and stored results back.
 
-Writing: :func:`screen_matrix` runs a screener over a matrix (:class:`Screened`);
-:func:`outcome_rows` gives the detector rows to store and :meth:`Screened.summary` each
-respondent's :class:`Summary` (flag set, verdict, careless score). Reading: :class:`Summary`
-and :class:`StoredResult` are what the rest of the service gets back (states as the library's
-:class:`~detectors.State`, the flag set as a tuple of detector names); how the flag set is
-kept in a column (:func:`flags_column`, :func:`flag_set`) is known here and in no other module.
+A respondent's row holds its whole screening (see ``models.Respondent``):
+
+- ``flag_count``, ``verdict``, ``careless_score``, and ``flag_bits``, the flag set as a bitmask
+  of stable detector codes (``detector_codes``: a detector's code is given on first sight and
+  never changes), so a listing filters on a detector with one bit test;
+- ``results``: every detector's result packed as :data:`PACKED` records (code, state and flag
+  in one byte, score as float64, cut-off as float32), in the screener's order;
+- ``kept_evidence``: the evidence of detectors that compare respondents with each other
+  (``compares_respondents``), whose evidence the respondent screened alone would not give
+  back; None when there is none.
+
+Everything else a reader sees (each detector's evidence, readable sentence, exact cut-off and
+reason) is derived on read by screening the respondent again: the screening is deterministic
+given the answers, the survey version, the reference sample and the screener
+(:func:`results_of`). The rest of the service gets typed objects: :class:`Summary` (the flag
+set as a tuple of names, the verdict as ``Verdict``), :class:`StoredResult` (the state as the
+library's :class:`~detectors.State`), :class:`ResultColumns`; nothing else knows the layout.
 """
 
 from __future__ import annotations
 
+import datetime as dt
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, NamedTuple
+from typing import Any
 
 import numpy as np
-from sqlalchemy import case, func, literal, select
+import orjson
 from sqlalchemy.orm import Session
 
-from detectors import REGISTRY, DetectorResult, ResponseMatrix, State
+from detectors import MISSING, REGISTRY, DetectorResult, ResponseMatrix, State
 from detectors.calibration import apply as apply_calibration
 from detectors.screening import reference_calibration
 from detectors.verdict import Verdicts, assess, reference_ranks
 
 from . import store
-from .models import DetectorOutcome, Respondent, Verdict
-from .screeners import Screener
+from .models import Respondent, Verdict
+from .screeners import Screener, reference_data, screener_for
 
 __all__ = [
     "NO_REFERENCE",
+    "PACKED",
+    "DetectorCodes",
+    "detector_codes",
     "Screened",
     "screen_matrix",
+    "seconds_taken",
     "Summary",
-    "OutcomeRow",
-    "outcome_rows",
+    "Written",
+    "written",
+    "ResultColumns",
+    "result_columns",
     "StoredResult",
     "results_of",
+    "not_assessed_of",
     "flag_set",
     "flags_column",
     "evidence_columns",
@@ -44,23 +63,93 @@ __all__ = [
     "detector_tallies",
     "assessed_sample",
     "flag_set_counts",
+    "flagged_by_day",
+    "earlier_record",
+    "earlier_results",
+    "survey_counts",
 ]
 
 #: Reason stored for a sample-dependent detector before the survey has a reference sample.
 NO_REFERENCE = "no reference sample yet"
+#: One detector's stored result: its code, ``state | 4 * flagged``, score and cut-off.
+PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8"), ("cutoff", "<f4")])
+#: One detector's earlier result in the screening history (no cut-off).
+EARLIER = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8")])
+_FLAGGED = 4
+#: Flag bits available in a signed 64-bit column.
+MAX_CODES = 63
 
 
-# The flag set in a column ------------------------------------------------------------------------
+# The flag set in a column of the history tables --------------------------------------------------
 
 
 def flags_column(names: Sequence[str]) -> str:
-    """The stored form of a flag set: detector names in registry order, comma-separated."""
+    """A flag set as kept in the history tables: detector names, comma-separated."""
     return ",".join(names)
 
 
 def flag_set(stored: str | None) -> tuple[str, ...]:
-    """A stored flag set back as detector names ("" and None are no flags)."""
+    """A history table's flag set back as detector names ("" and None are no flags)."""
     return tuple(stored.split(",")) if stored else ()
+
+
+# Detector codes ----------------------------------------------------------------------------------
+
+
+def _registry_order(name: str) -> tuple[int, str]:
+    order = list(REGISTRY)
+    return (order.index(name), "") if name in REGISTRY else (len(order), name)
+
+
+@dataclass(frozen=True)
+class DetectorCodes:
+    """Detector name to its stable code (and back)."""
+
+    by_name: dict[str, int]
+
+    def name(self, code: int) -> str | None:
+        return self._names.get(code)
+
+    @property
+    def _names(self) -> dict[int, str]:
+        return {code: name for name, code in self.by_name.items()}
+
+    def bits(self, names: Iterable[str]) -> int:
+        out = 0
+        for name in names:
+            out |= 1 << self.by_name[name]
+        return out
+
+    def names(self, bits: int) -> tuple[str, ...]:
+        """The detectors of a bitmask, in registry order."""
+        if not bits:
+            return ()
+        found = [name for name, code in self.by_name.items() if bits >> code & 1]
+        return tuple(sorted(found, key=_registry_order))
+
+
+def detector_codes(session: Session, names: Iterable[str] = ()) -> DetectorCodes:
+    """The stored detector codes, giving the next free codes to any of ``names`` without one
+    (in the caller's transaction). Codes read back unchanged are kept by the database handle."""
+    memo = session.info.setdefault("memo", {})
+    known: DetectorCodes | None = memo.get("detector_codes")
+    wanted = list(dict.fromkeys(names))
+    if known is not None and all(name in known.by_name for name in wanted):
+        return known
+    by_name = store.detector_code_map(session)
+    missing = [name for name in wanted if name not in by_name]
+    if missing:
+        first = max(by_name.values(), default=-1) + 1
+        if first + len(missing) > MAX_CODES:
+            raise RuntimeError(
+                f"{first + len(missing)} detectors named; flag bits hold at most {MAX_CODES}"
+            )
+        added = {name: first + i for i, name in enumerate(missing)}
+        store.add_detector_codes(session, added)
+        return DetectorCodes({**by_name, **added})  # not kept until committed
+    codes = DetectorCodes(by_name)
+    memo["detector_codes"] = codes
+    return codes
 
 
 # A respondent's summary --------------------------------------------------------------------------
@@ -78,8 +167,17 @@ class Summary:
     def flag_count(self) -> int:
         return len(self.flags)
 
-    def columns(self) -> dict[str, Any]:
+    def columns(self, codes: DetectorCodes) -> dict[str, Any]:
         """The respondent row's summary columns."""
+        return {
+            "flag_count": self.flag_count,
+            "flag_bits": codes.bits(self.flags),
+            "verdict": self.verdict,
+            "careless_score": self.careless_score,
+        }
+
+    def history_columns(self) -> dict[str, Any]:
+        """The summary columns of a screening history row."""
         return {
             "flag_count": self.flag_count,
             "flags": flags_column(self.flags),
@@ -88,9 +186,11 @@ class Summary:
         }
 
     @classmethod
-    def stored(cls, flags: str | None, verdict: Any, careless_score: float | None) -> Summary:
-        """A summary from a respondent (or history) row's columns."""
-        return cls(flag_set(flags), Verdict(verdict), careless_score)
+    def stored(
+        cls, codes: DetectorCodes, flag_bits: int, verdict: Any, careless_score: float | None
+    ) -> Summary:
+        """A summary from a respondent row's columns."""
+        return cls(codes.names(int(flag_bits or 0)), Verdict(verdict), careless_score)
 
 
 # Screening ---------------------------------------------------------------------------------------
@@ -154,23 +254,8 @@ def screen_matrix(
     )
 
 
-# Detector rows -----------------------------------------------------------------------------------
 
-
-class OutcomeRow(NamedTuple):
-    """One detector's result for one respondent, as stored (``store.OUTCOME_COLUMNS``)."""
-
-    respondent_pk: int
-    detector: str
-    detector_version: str
-    state: int  # a State code
-    score: float | None
-    cutoff: float | None
-    flagged: bool
-    reason: str | None
-    evidence: str  # JSON text
-    sentence: str
-    reference_id: int | None
+# Detector results ------------------------------------------------------------------------------
 
 
 def _finite(values: np.ndarray) -> list[float | None]:
@@ -188,111 +273,221 @@ def _plain(value: Any) -> Any:
     return value
 
 
+def _plain_column(values: Any) -> list[Any]:
+    """An evidence column as plain values (NaN as None)."""
+    array = np.asarray(values)
+    if array.dtype == object:
+        return [_plain(value) for value in values]
+    listed = array.tolist()
+    if array.dtype.kind == "f" and array.ndim == 1 and np.isnan(array).any():
+        listed = [None if v != v else v for v in listed]
+    return listed
+
+
 def evidence_columns(result: DetectorResult) -> list[dict[str, Any]]:
     """Every respondent's evidence as plain values, converted column by column (the same values
     as ``result.evidence_for(i)``, without a per-respondent pass over numpy scalars)."""
     n = len(result)
-    columns: dict[str, list[Any]] = {}
-    for key, values in result.evidence.items():
-        array = np.asarray(values)
-        if array.dtype == object:
-            columns[key] = [_plain(value) for value in values]
-            continue
-        listed = array.tolist()
-        if array.dtype.kind == "f" and array.ndim == 1 and np.isnan(array).any():
-            listed = [None if v != v else v for v in listed]
-        columns[key] = listed
+    columns = {key: _plain_column(values) for key, values in result.evidence.items()}
     keys = list(columns)
     return [dict(zip(keys, row, strict=True)) for row in zip(*columns.values(), strict=True)] if (
         keys
     ) else [{} for _ in range(n)]
 
 
-def _without_reference(name: str, version: str, pks: Sequence[int]) -> list[OutcomeRow]:
-    sentence = f"{name}: not assessed ({NO_REFERENCE})."
-    empty = store.json_text({})
+def seconds_taken(row: Any) -> float:
+    """The response's duration: ``duration_seconds`` when given, else ``submitted_at -
+    started_at`` when both are known (NaN when neither, or when the difference is negative)."""
+    if row.duration_seconds is not None:
+        return row.duration_seconds
+    if row.started_at is None or row.submitted_at is None:
+        return np.nan
+    seconds = (row.submitted_at - row.started_at).total_seconds()
+    return seconds if seconds >= 0 else np.nan
+
+
+# Writing -----------------------------------------------------------------------------------------
+
+
+def _packed(screened: Screened, codes: DetectorCodes) -> np.ndarray:
+    """(respondents, detectors) PACKED records of a screening."""
+    n, d = screened.flags.shape[1], len(screened.names)
+    packed = np.zeros((n, d), dtype=PACKED)
+    packed["code"] = np.array([codes.by_name[name] for name in screened.names], dtype=np.uint8)
+    packed["mark"] = (screened.states.T.astype(np.uint8) & 3) | (
+        screened.flags.T.astype(np.uint8) * _FLAGGED
+    )
+    packed["score"] = np.nan
+    packed["cutoff"] = np.nan
+    for j, name in enumerate(screened.names):
+        result = screened.results[name]
+        if result is not None:
+            scores = np.asarray(result.scores, dtype=np.float64)
+            cutoffs = np.asarray(result.cutoffs, dtype=np.float64)
+            packed["score"][:, j] = np.where(np.isfinite(scores), scores, np.nan)
+            with np.errstate(over="ignore"):
+                packed["cutoff"][:, j] = np.where(np.isfinite(cutoffs), cutoffs, np.nan)
+    return packed
+
+
+def _kept(screened: Screened, codes: DetectorCodes) -> list[dict[str, Any] | None]:
+    """Per respondent, the values of the evidence entries that depend on the other respondents
+    (``compares_respondents``), by detector code, for the detectors that assessed it."""
+    n = screened.flags.shape[1]
+    kept: list[dict[str, Any] | None] = [None] * n
+    for j, name in enumerate(screened.names):
+        result = screened.results[name]
+        keys = getattr(REGISTRY.get(name), "compares_respondents", ())
+        if result is None or not keys:
+            continue
+        values = [_plain_column(result.evidence[key]) for key in keys]
+        code = str(codes.by_name[name])
+        for i in np.flatnonzero(screened.states[j] == State.ASSESSED).tolist():
+            entry = [column[i] for column in values]
+            if all(_empty(value) for value in entry):
+                continue  # no other respondent counted: what screening alone gives back
+            if kept[i] is None:
+                kept[i] = {}
+            kept[i][code] = entry
+    return kept
+
+
+def _empty(value: Any) -> bool:
+    if isinstance(value, list | tuple):
+        return all(_empty(v) for v in value)
+    return value is None or value == 0
+
+
+@dataclass(frozen=True, slots=True)
+class Written:
+    """What a respondent's row stores of its screening."""
+
+    summary: Summary
+    results: bytes
+    kept_evidence: dict[str, Any] | None
+
+    def columns(self, codes: DetectorCodes) -> dict[str, Any]:
+        return {
+            **self.summary.columns(codes),
+            "results": self.results,
+            "kept_evidence": self.kept_evidence,
+        }
+
+
+def written(
+    screened: Screened,
+    codes: DetectorCodes,
+    keep: Mapping[int, tuple[bytes | None, dict[str, Any] | None]] | None = None,
+    rewrite: Sequence[str] = (),
+) -> list[Written]:
+    """Each respondent's stored screening. With ``keep`` (position to the stored results and
+    kept evidence of a respondent), only the detectors named in ``rewrite`` take the new
+    results there; the others keep their stored ones."""
+    packed = _packed(screened, codes)
+    kept = _kept(screened, codes)
+    if keep:
+        replaced = np.array([name in rewrite for name in screened.names], dtype=bool)
+        rewritten = {str(codes.by_name[name]) for name in rewrite}
+        for i, (blob, evidence) in keep.items():
+            before = np.frombuffer(blob or b"", dtype=PACKED)
+            at = {int(code): k for k, code in enumerate(before["code"].tolist())}
+            for j in np.flatnonzero(~replaced).tolist():
+                k = at.get(int(packed[i, j]["code"]))
+                if k is not None:
+                    packed[i, j] = before[k]
+            merged = {c: v for c, v in (evidence or {}).items() if c not in rewritten}
+            merged.update({c: v for c, v in (kept[i] or {}).items() if c in rewritten})
+            kept[i] = merged or None
+    width = packed.shape[1] * PACKED.itemsize
+    data = packed.tobytes()
     return [
-        OutcomeRow(pk, name, version, int(State.NOT_ASSESSED), None, None, False, NO_REFERENCE,
-                   empty, sentence, None)
-        for pk in pks
+        Written(screened.summary(i), data[i * width : (i + 1) * width], kept[i])
+        for i in range(packed.shape[0])
     ]
 
 
-def outcome_rows(
-    screened: Screened,
-    pks: Sequence[int],
-    reference_id: int | None,
-    only: Mapping[str, np.ndarray] | None = None,
-) -> list[OutcomeRow]:
-    """One row per respondent and detector, for a bulk insert; with ``only``, just the rows of
-    the given respondent positions per detector."""
-    rows: list[OutcomeRow] = []
-    n = len(pks)
-    for name, version in zip(screened.names, screened.versions, strict=True):
-        result = screened.results[name]
-        wanted = None if only is None else only.get(name, np.zeros(0, dtype=np.intp))
-        if wanted is not None:
-            if len(wanted) == 0:
-                continue
-            if len(wanted) < n:
-                rows.extend(_some_outcome_rows(screened, name, version, pks, reference_id, wanted))
-                continue
-        if result is None:
-            rows.extend(_without_reference(name, version, pks))
-            continue
-        scores, cutoffs = _finite(result.scores), _finite(result.cutoffs)
-        flags, states = result.flags.tolist(), result.states.tolist()
-        reasons = result.reasons.tolist()
-        evidence = evidence_columns(result)
-        uses_reference = reference_id if name in screened.sample_names else None
-        describe, item_ids = result.describe, result.item_ids
-        for i in range(n):
-            if states[i] == State.ASSESSED:
-                sentence = describe(evidence[i], item_ids)
-            else:
-                sentence = result.sentence_for(i)
-            rows.append(
-                OutcomeRow(
-                    pks[i], name, version, states[i], scores[i], cutoffs[i], flags[i],
-                    reasons[i], store.json_text(evidence[i]), sentence, uses_reference,
-                )
-            )
-    return rows
+# Reading -----------------------------------------------------------------------------------------
 
 
-def _some_outcome_rows(
-    screened: Screened,
-    name: str,
-    version: str,
-    pks: Sequence[int],
-    reference_id: int | None,
-    wanted: np.ndarray,
-) -> list[OutcomeRow]:
-    """``outcome_rows`` of one detector for the respondent positions ``wanted`` only."""
-    result = screened.results[name]
-    if result is None:
-        return _without_reference(name, version, [pks[i] for i in wanted.tolist()])
-    uses_reference = reference_id if name in screened.sample_names else None
-    rows = []
-    for i in wanted.tolist():
-        evidence = result.evidence_for(i)
-        score, cutoff = _finite(result.scores[i : i + 1])[0], _finite(result.cutoffs[i : i + 1])[0]
-        rows.append(
-            OutcomeRow(
-                pks[i], name, version, int(result.states[i]), score, cutoff,
-                bool(result.flags[i]), result.reasons[i], store.json_text(evidence),
-                result.sentence_for(i), uses_reference,
-            )
-        )
-    return rows
+@dataclass
+class ResultColumns:
+    """Stored results of some respondents, a column per detector: (respondents, detectors)."""
+
+    names: list[str]
+    present: np.ndarray  # bool
+    states: np.ndarray  # int8, -1 where absent
+    flagged: np.ndarray  # bool
+    scores: np.ndarray  # float64, NaN unless a score was stored
+    cutoffs: np.ndarray  # float64 (stored as float32), NaN where none
+    #: Stored results of detectors outside ``names``.
+    others: int = 0
+    codes: DetectorCodes | None = None
+
+    def flags_of(self, names: Sequence[str]) -> np.ndarray:
+        """bool (respondents, len(names)): which of these detectors flagged each respondent."""
+        at = {name: j for j, name in enumerate(self.names)}
+        out = np.zeros((self.present.shape[0], len(names)), dtype=bool)
+        for k, name in enumerate(names):
+            if name in at:
+                out[:, k] = self.flagged[:, at[name]]
+        return out
 
 
-# Reading results back ----------------------------------------------------------------------------
+def result_columns(
+    blobs: Sequence[bytes | None], codes: DetectorCodes, names: Sequence[str] | None = None
+) -> ResultColumns:
+    """Unpack respondents' stored results into columns, for the detectors ``names`` (every
+    detector found, in registry order, when None)."""
+    n = len(blobs)
+    lengths = np.fromiter((len(b or b"") // PACKED.itemsize for b in blobs), np.int64, n)
+    entries = np.frombuffer(b"".join(b or b"" for b in blobs), dtype=PACKED)
+    owner = np.repeat(np.arange(n), lengths)
+    if names is None:
+        found = {codes.name(int(c)) for c in np.unique(entries["code"]).tolist()}
+        names = sorted((x for x in found if x is not None), key=_registry_order)
+    names = list(names)
+    column = np.full(256, -1, dtype=np.int64)
+    for j, name in enumerate(names):
+        if name in codes.by_name:
+            column[codes.by_name[name]] = j
+    where = column[entries["code"]]
+    mine = where >= 0
+    rows, cols, chosen = owner[mine], where[mine], entries[mine]
+    out = ResultColumns(
+        names=names,
+        present=np.zeros((n, len(names)), dtype=bool),
+        states=np.full((n, len(names)), -1, dtype=np.int8),
+        flagged=np.zeros((n, len(names)), dtype=bool),
+        scores=np.full((n, len(names)), np.nan),
+        cutoffs=np.full((n, len(names)), np.nan),
+        others=int((~mine).sum()),
+        codes=codes,
+    )
+    out.present[rows, cols] = True
+    out.states[rows, cols] = chosen["mark"] & 3
+    out.flagged[rows, cols] = (chosen["mark"] & _FLAGGED) != 0
+    out.scores[rows, cols] = chosen["score"]
+    out.cutoffs[rows, cols] = chosen["cutoff"]
+    return out
+
+
+def not_assessed_of(session: Session, pks: Sequence[int]) -> dict[int, list[str]]:
+    """Respondent pk -> the detectors that could not judge it."""
+    blobs = store.packed_results_of(session, pks)
+    order = list(blobs)
+    columns = result_columns([blobs[pk] for pk in order], detector_codes(session))
+    judged = columns.present & (columns.states != State.ASSESSED)
+    return {
+        pk: [columns.names[j] for j in np.flatnonzero(judged[i])]
+        for i, pk in enumerate(order)
+        if judged[i].any()
+    }
 
 
 @dataclass(frozen=True)
 class StoredResult:
-    """One detector's stored result for a respondent."""
+    """One detector's result for a respondent: state, flag and score as stored; evidence,
+    sentence, reason and cut-off derived by screening the respondent again."""
 
     detector: str
     detector_version: str
@@ -306,104 +501,229 @@ class StoredResult:
     reference_id: int | None
 
 
-def results_of(session: Session, pk: int) -> list[StoredResult]:
-    """A respondent's stored detector results, in registry order."""
-    order = {name: i for i, name in enumerate(REGISTRY)}
-    rows = sorted(
-        store.outcomes_of(session, pk), key=lambda o: order.get(o.detector, len(order))
+def _one_row(screener: Screener, respondent: Respondent) -> ResponseMatrix:
+    instrument = screener.instrument
+    answers = respondent.answers or {}
+    values = np.array(
+        [[np.nan if answers.get(item) is None else answers[item] for item in instrument.item_ids]],
+        dtype=np.float64,
+    ).reshape(1, len(instrument.item_ids))
+    codes = np.where(np.isnan(values), MISSING, values).astype(np.int8)
+    return ResponseMatrix(
+        respondent_ids=np.array([respondent.respondent_id], dtype=object),
+        answers=codes,
+        durations=np.array([seconds_taken(respondent)], dtype=np.float64),
     )
-    return [
-        StoredResult(
-            detector=o.detector, detector_version=o.detector_version, state=State(o.state),
-            score=o.score, cutoff=o.cutoff, flagged=o.flagged, reason=o.reason,
-            evidence=o.evidence, sentence=o.sentence, reference_id=o.reference_id,
+
+
+def _finite_one(value: Any) -> float | None:
+    value = float(value)
+    return value if np.isfinite(value) else None
+
+
+def results_of(session: Session, respondent: Respondent) -> list[StoredResult]:
+    """A respondent's detector results, in registry order: what is stored, with the evidence
+    derived by screening the respondent again with its version's screener and reference
+    sample (the kept evidence of detectors that compare respondents)."""
+    codes = detector_codes(session)
+    stored = np.frombuffer(respondent.results or b"", dtype=PACKED)
+    screener = screener_for(session, respondent.survey_version_id)
+    reference = reference_data(session, respondent.reference_id)
+    screened = screen_matrix(screener, _one_row(screener, respondent), reference)
+    kept = respondent.kept_evidence or {}
+    out = []
+    for entry in stored:
+        code = int(entry["code"])
+        name = codes.name(code) or f"detector {code}"
+        state = State(int(entry["mark"]) & 3)
+        score = _finite_one(entry["score"])
+        flagged = bool(int(entry["mark"]) & _FLAGGED)
+        reference_id = respondent.reference_id if name in screened.sample_names else None
+        if name not in screener.detectors:  # a detector no longer run
+            out.append(StoredResult(
+                name, "", state, score, _finite_one(entry["cutoff"]), flagged, None, {}, "",
+                None,
+            ))
+            continue
+        version = type(screener.detectors[name]).version
+        result = screened.results[name]
+        if result is None:
+            out.append(StoredResult(
+                name, version, state, score, None, flagged, NO_REFERENCE, {},
+                f"{name}: not assessed ({NO_REFERENCE}).", None,
+            ))
+            continue
+        evidence = result.evidence_for(0)
+        keys = getattr(REGISTRY.get(name), "compares_respondents", ())
+        if str(code) in kept and keys:
+            evidence.update(zip(keys, kept[str(code)], strict=True))
+        sentence = (
+            result.describe(evidence, result.item_ids) if state == State.ASSESSED
+            else result.sentence_for(0)
         )
-        for o in rows
-    ]
+        evidence = orjson.loads(store.json_text(evidence))  # as JSON gives it back
+        out.append(StoredResult(
+            name, version, state, score, _finite_one(result.cutoffs[0]), flagged,
+            result.reasons[0], evidence, sentence, reference_id,
+        ))
+    return sorted(out, key=lambda r: _registry_order(r.detector))
 
 
-#: Respondents whose results are counted per query (bounds memory).
-TALLY_RESPONDENTS = 50_000
+#: Respondents whose results are read per query (bounds memory).
+READ_RESPONDENTS = 50_000
 
 
-def detector_tallies(session: Session, survey_id: int, pks: np.ndarray) -> dict[str, Counter]:
-    """Per detector, respondents by ``State`` and how many it flagged (key ``"flagged"``), for
-    the survey's respondents ``pks`` (ascending), read a range of respondents at a time."""
-    tallies: dict[str, Counter] = {}
-    for start in range(0, len(pks), TALLY_RESPONDENTS):
-        low, high = int(pks[start]), int(pks[min(start + TALLY_RESPONDENTS, len(pks)) - 1])
-        in_range = session.scalar(select(func.count()).where(Respondent.id.between(low, high)))
-        # Without other surveys' respondents in the range, no row needs checking.
-        only = None if in_range == min(TALLY_RESPONDENTS, len(pks) - start) else survey_id
-        for name, state, flagged, n in store.outcome_tallies(session, only, low, high):
-            tally = tallies.setdefault(name, Counter())
-            tally[State(int(state))] += int(n)
-            if flagged:
-                tally["flagged"] += int(n)
-    return tallies
+def _ranges(pks: np.ndarray) -> Iterable[tuple[int, int, int]]:
+    for start in range(0, len(pks), READ_RESPONDENTS):
+        stop = min(start + READ_RESPONDENTS, len(pks))
+        yield start, int(pks[start]), int(pks[stop - 1])
 
 
-def assessed_sample(session: Session, pks: np.ndarray) -> dict[str, list[tuple]]:
-    """Per detector, (score, flagged, cutoff) of its assessed results for respondents ``pks``."""
-    samples: dict[str, list[tuple]] = {}
-    for name, flagged, score, cutoff in store.outcome_sample(session, pks.tolist()):
-        samples.setdefault(name, []).append((score, flagged, cutoff))
-    return samples
-
-
-def flag_set_counts(session: Session, survey_id: int) -> list[tuple[tuple[str, ...], int]]:
-    """Each flag set raised in the survey (at least one flag) and its number of respondents."""
-    return [
-        (flag_set(flags), int(n)) for flags, n in store.flag_set_counts(session, survey_id)
-    ]
-
-
-#: Outcome rows converted to numbers per step (bounds the memory of one chunk's results).
-OUTCOME_BATCH = 250_000
+def _columns_along(
+    session: Session, survey_id: int | None, pks: np.ndarray, names: Sequence[str] | None
+) -> Iterable[tuple[np.ndarray, ResultColumns]]:
+    """The stored results of the (ascending) ``pks``, read along the id range a part at a
+    time: (positions in ``pks``, their columns)."""
+    codes = detector_codes(session)
+    for _, low, high in _ranges(pks):
+        rows = store.packed_results_between(session, survey_id, low, high)
+        if not rows:
+            continue
+        found = np.fromiter((row[0] for row in rows), np.int64, len(rows))
+        at = np.minimum(np.searchsorted(pks, found), len(pks) - 1)
+        mine = pks[at] == found  # the range may hold other surveys' respondents
+        blobs = [row[1] for row, keep in zip(rows, mine.tolist(), strict=True) if keep]
+        yield at[mine], result_columns(blobs, codes, names)
 
 
 def assessed_scores(
     session: Session, detectors: Sequence[str], pks: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray, int]:
     """Scores and flags (float, NaN unless assessed) of ``pks`` (sorted), shape
-    (n, detectors), and the number of results of detectors not in ``detectors``.
-
-    Only assessed results are read (the others are empty in the export). The detector's name
-    comes back as its number (a CASE in the query), so every row converts to numbers at once
-    and is put in place with array indexing (``tests/benchmarks/bench_export.py``).
-    """
+    (n, detectors), and the number of results of detectors not in ``detectors``."""
     n, d = len(pks), len(detectors)
     scores = np.full((n, d), np.nan)
     flags = np.full((n, d), np.nan)
     unknown = 0
     if n == 0:
         return scores, flags, unknown
-    code = case(
-        {name: number for number, name in enumerate(detectors)},
-        value=DetectorOutcome.detector, else_=-1,
-    ) if d else literal(-1)
-    result = session.connection().execute(
-        select(DetectorOutcome.respondent_pk, code, DetectorOutcome.score, DetectorOutcome.flagged)
-        .where(
-            DetectorOutcome.respondent_pk.between(int(pks[0]), int(pks[-1])),
-            DetectorOutcome.state == int(State.ASSESSED),
-        )
-    )
-    # Every column is a plain number, so the driver's tuples are used as they come: row
-    # objects would cost more than the query (``tests/benchmarks/bench_export.py``).
-    cursor = result.cursor
-    while part := cursor.fetchmany(OUTCOME_BATCH):
-        values = np.array(part, dtype=np.float64).reshape(len(part), 4)
-        found = values[:, 0].astype(np.int64)
-        position = np.searchsorted(pks, found)
-        # The range may hold other surveys' respondents: keep this chunk's.
-        mine = (position < n) & (pks[np.minimum(position, n - 1)] == found)
-        number = values[:, 1].astype(np.int64)
-        unknown += int((mine & (number < 0)).sum())
-        mine &= number >= 0
-        scores[position[mine], number[mine]] = values[mine, 2]
-        flags[position[mine], number[mine]] = values[mine, 3]
-    result.close()
+    for positions, columns in _columns_along(session, None, pks, detectors):
+        assessed = columns.states == State.ASSESSED
+        scores[positions] = np.where(assessed, columns.scores, np.nan)
+        flags[positions] = np.where(assessed, columns.flagged.astype(np.float64), np.nan)
+        unknown += columns.others
     return scores, flags, unknown
 
 
+def detector_tallies(session: Session, survey_id: int, pks: np.ndarray) -> dict[str, Counter]:
+    """Per detector, respondents by ``State`` and how many it flagged (key ``"flagged"``), for
+    the survey's respondents ``pks`` (ascending), read a range of respondents at a time."""
+    tallies: dict[str, Counter] = {}
+    for _, columns in _columns_along(session, survey_id, pks, None):
+        for j, name in enumerate(columns.names):
+            tally = tallies.setdefault(name, Counter())
+            present = columns.present[:, j]
+            for state in State:
+                tally[state] += int((present & (columns.states[:, j] == state)).sum())
+            tally["flagged"] += int((present & columns.flagged[:, j]).sum())
+    return tallies
+
+
+def assessed_sample(session: Session, pks: np.ndarray) -> dict[str, list[tuple]]:
+    """Per detector, (score, flagged, cutoff) of its assessed results for respondents ``pks``."""
+    blobs = store.packed_results_of(session, pks.tolist())
+    columns = result_columns(list(blobs.values()), detector_codes(session))
+    samples: dict[str, list[tuple]] = {}
+    for j, name in enumerate(columns.names):
+        assessed = columns.present[:, j] & (columns.states[:, j] == State.ASSESSED)
+        if assessed.any():
+            samples[name] = list(zip(
+                columns.scores[assessed, j].tolist(), columns.flagged[assessed, j].tolist(),
+                columns.cutoffs[assessed, j].tolist(), strict=True,
+            ))
+    return samples
+
+
+def flag_set_counts(session: Session, survey_id: int) -> list[tuple[tuple[str, ...], int]]:
+    """Each flag set raised in the survey (at least one flag) and its number of respondents."""
+    codes = detector_codes(session)
+    return [
+        (codes.names(int(bits)), int(n))
+        for bits, n in store.flag_bits_counts(session, survey_id)
+    ]
+
+
+def flagged_by_day(session: Session, survey_id: int) -> dict[dt.date, dict[str, int]]:
+    """Per day of arrival (UTC), respondents flagged by each detector."""
+    codes = detector_codes(session)
+    out: dict[dt.date, dict[str, int]] = {}
+    for day, bits, n in store.flag_bits_by_day(session, survey_id):
+        counts = out.setdefault(dt.date.fromisoformat(str(day)), {})
+        for name in codes.names(int(bits)):
+            counts[name] = counts.get(name, 0) + int(n)
+    return out
+
+
+def earlier_record(
+    columns: ResultColumns, k: int, versions: Sequence[str] | None
+) -> dict[str, Any]:
+    """The screening history columns of respondent ``k``'s stored results in ``columns``
+    (``versions``: of every detector of ``columns``, when known)."""
+    present = np.flatnonzero(columns.present[k])
+    packed = np.zeros(len(present), dtype=EARLIER)
+    by_name = {name: j for j, name in enumerate(columns.names)}
+    packed["code"] = [_code_of(columns, j) for j in present.tolist()]
+    packed["mark"] = (columns.states[k, present].astype(np.uint8) & 3) | (
+        columns.flagged[k, present].astype(np.uint8) * _FLAGGED
+    )
+    packed["score"] = columns.scores[k, present]
+    kept_versions: Any = None
+    if versions is not None:
+        listed = [versions[by_name[columns.names[j]]] for j in present.tolist()]
+        kept_versions = listed[0] if len(set(listed)) == 1 else listed
+    return {"packed_results": packed.tobytes(), "versions": kept_versions, "results": {}}
+
+
+def _code_of(columns: ResultColumns, j: int) -> int:
+    assert columns.codes is not None
+    return columns.codes.by_name[columns.names[j]]
+
+
+def earlier_results(codes: DetectorCodes, row: Any) -> dict[str, dict[str, Any]]:
+    """A screening history row's earlier results: detector name to its version, state
+    label, score and flag."""
+    if row.packed_results is None:
+        return dict(row.results or {})
+    packed = np.frombuffer(row.packed_results, dtype=EARLIER)
+    versions = row.versions
+    out = {}
+    for i, entry in enumerate(packed):
+        code = int(entry["code"])
+        version = versions if isinstance(versions, str) or versions is None else versions[i]
+        out[codes.name(code) or f"detector {code}"] = {
+            "version": version,
+            "state": State(int(entry["mark"]) & 3).label,
+            "score": _finite_one(entry["score"]),
+            "flagged": bool(int(entry["mark"]) & _FLAGGED),
+        }
+    return dict(sorted(out.items(), key=lambda item: _registry_order(item[0])))
+
+
+def survey_counts(session: Session, survey_id: int) -> dict[str, Any]:
+    """``store.report``'s counts of a survey, with each detector's tally (respondents by
+    state, flagged) and the respondents each detector flagged per day of arrival."""
+    counts = store.report(session, survey_id)
+    pks = np.array(store.survey_pks(session, survey_id), dtype=np.int64)
+    counts["detectors"] = {
+        name: {
+            "assessed": tally[State.ASSESSED],
+            "flagged": tally["flagged"],
+            "not_assessed": tally[State.NOT_ASSESSED],
+            "not_applicable": tally[State.NOT_APPLICABLE],
+        }
+        for name, tally in detector_tallies(session, survey_id, pks).items()
+    }
+    by_day = flagged_by_day(session, survey_id)
+    for day in counts["days"]:
+        day["flagged"] = by_day.get(day["day"], {})
+    return counts

@@ -18,14 +18,21 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, ResponseMatrix, State, fit_references
+from detectors import MISSING, ResponseMatrix, fit_references
 from detectors.screening import reference_detectors
 
 from . import store
 from .db import utcnow
-from .ingest import seconds_taken
 from .models import ReferenceSample, Survey
-from .outcomes import Summary, outcome_rows, screen_matrix
+from .outcomes import (
+    Summary,
+    detector_codes,
+    earlier_record,
+    result_columns,
+    screen_matrix,
+    seconds_taken,
+    written,
+)
 from .screeners import Screener, answers_fit, screener_for, uses_reference
 from .settings import Settings
 
@@ -246,82 +253,6 @@ class RescreenCount:
         self.results_written += other.results_written
 
 
-@dataclass
-class _Earlier:
-    """One detector's stored results for a chunk of respondents (aligned with the chunk)."""
-
-    present: np.ndarray
-    version: np.ndarray
-    state: np.ndarray
-    flagged: np.ndarray
-    score: np.ndarray
-    cutoff: np.ndarray
-
-
-def _empty_earlier(n: int) -> _Earlier:
-    return _Earlier(
-        present=np.zeros(n, dtype=bool),
-        version=np.full(n, None, dtype=object),
-        state=np.full(n, -1, dtype=np.int8),
-        flagged=np.zeros(n, dtype=bool),
-        score=np.full(n, np.nan),
-        cutoff=np.full(n, np.nan),
-    )
-
-
-def _place(earlier: _Earlier, pks: np.ndarray, rows: Sequence[Sequence[Any]]) -> None:
-    """Put stored results (respondent_pk, version, state, flagged, score, cutoff) at the
-    positions of their respondents in the ascending ``pks``."""
-    if not rows:
-        return
-    pk, version, state, flagged, score, cutoff = zip(*rows, strict=True)
-    found = np.fromiter(pk, dtype=np.int64, count=len(rows))
-    at = np.minimum(np.searchsorted(pks, found), len(pks) - 1)
-    hit = pks[at] == found  # rows of respondents outside the chunk are ignored
-    where = at[hit]
-    earlier.present[where] = True
-    earlier.version[where] = np.array(version, dtype=object)[hit]
-    earlier.state[where] = np.array(state, dtype=np.int8)[hit]
-    earlier.flagged[where] = np.array(flagged, dtype=bool)[hit]
-    earlier.score[where] = np.array(score, dtype=np.float64)[hit]
-    earlier.cutoff[where] = np.array(cutoff, dtype=np.float64)[hit]
-
-
-def _earlier_results(
-    session: Session, pks: np.ndarray, names: Sequence[str]
-) -> dict[str, _Earlier]:
-    """The named detectors' stored results for the (ascending) respondent ``pks``, read as
-    columns along the chunk's id range."""
-    low, high = int(pks[0]), int(pks[-1])
-    out = {}
-    for name in names:
-        out[name] = _empty_earlier(len(pks))
-        _place(out[name], pks, store.outcome_values(session, name, low, high))
-    return out
-
-
-def _earlier_of_some(
-    session: Session, pks: np.ndarray, some: np.ndarray, names: Sequence[str]
-) -> dict[str, _Earlier]:
-    """As :func:`_earlier_results` (aligned with all of ``pks``), filled in only at the
-    positions ``some``: read by id when they are few, along the id range otherwise."""
-    if len(some) * 4 >= len(pks):
-        return _earlier_results(session, pks, names)
-    wanted = pks[some]
-    few = {name: _empty_earlier(len(wanted)) for name in names}
-    by_detector: dict[str, list[tuple]] = {}
-    for row in store.outcome_values_of(session, wanted.tolist(), names):
-        by_detector.setdefault(row[1], []).append((row[0], *row[2:]))
-    for name, rows in by_detector.items():
-        _place(few[name], wanted, rows)
-    out = {}
-    for name, part in few.items():
-        out[name] = _empty_earlier(len(pks))
-        for column in ("present", "version", "state", "flagged", "score", "cutoff"):
-            getattr(out[name], column)[some] = getattr(part, column)
-    return out
-
-
 def rescreen_rows(
     session: Session,
     screener: Screener,
@@ -351,14 +282,10 @@ def rescreen_rows(
     if rescore is None:
         rescore = stored.stale(screener, reference_id)[1][positions]
     pks = stored.pks[positions]
-    summaries_before = store.screening_rows(session, pks.tolist())
-    summary_before = {
-        pk: Summary.stored(row.flags, row.verdict, row.careless_score)
-        for pk, row in summaries_before.items()
-    }
+    rows_before = store.screening_rows(session, pks.tolist())
     unchanged = np.array(
         [
-            (row := summaries_before.get(pk)) is not None and row.answers_digest == digest
+            (row := rows_before.get(pk)) is not None and row.answers_digest == digest
             for pk, digest in zip(pks.tolist(), stored.digests[positions].tolist(), strict=True)
         ],
         dtype=bool,
@@ -369,99 +296,62 @@ def rescreen_rows(
     if n == 0:
         return count
     screened = screen_matrix(screener, stored.matrix.take(positions), reference)
+    codes = detector_codes(session, screened.names)
+    before = [rows_before[pk] for pk in pks.tolist()]
+    summary_before = [
+        Summary.stored(codes, row.flag_bits, row.verdict, row.careless_score) for row in before
+    ]
     names = screened.names
-    sample = {name for name in names if name in screened.sample_names}
+    sample = [name for name in names if name in screened.sample_names]
     # A detector that uses no reference gives a result that depends only on the answers and
     # the screener, so for a respondent stale only by its reference it is unchanged and stays
     # stored. As a check, the flags such detectors raise now are compared with the stored
     # ones; a respondent where they differ is rewritten whole.
-    others = [d for d, name in enumerate(names) if name not in sample]
+    others = [d for d, name in enumerate(names) if name not in screened.sample_names]
     for k in np.flatnonzero(~rescore).tolist():
         now_flagged = [names[d] for d in others if screened.flags[d, k]]
-        stored_flags = summary_before[int(pks[k])].flags
-        was_flagged = [f for f in stored_flags if f not in sample]
+        was_flagged = [f for f in summary_before[k].flags if f not in screened.sample_names]
         if now_flagged != was_flagged:
             rescore[k] = True
-    earlier = _earlier_results(session, pks, [name for name in names if name in sample])
-    if rescore.any():  # results of the other detectors, where they are rewritten too
-        earlier.update(
-            _earlier_of_some(
-                session, pks, np.flatnonzero(rescore),
-                [name for name in names if name not in sample],
-            )
-        )
-    had_results = ~rescore.copy()
-    state_changed = np.zeros(n, dtype=bool)
-    write: dict[str, np.ndarray] = {}
-    replace_single: list[dict[str, Any]] = []
-    for d, name in enumerate(names):
-        old = earlier.get(name)
-        if old is not None:
-            had_results |= old.present
-            state_changed |= old.present & (old.state != screened.states[d])
-        if name in sample:
-            write[name] = np.arange(n)
-            single = np.flatnonzero(~rescore & earlier[name].present)
-            replace_single.extend({"pk": pk, "detector": name} for pk in pks[single].tolist())
-        else:
-            write[name] = np.flatnonzero(rescore)
-    summaries = [screened.summary(k) for k in range(n)]
+    earlier = result_columns([row.results for row in before], codes, names)
+    keep = {
+        k: (before[k].results, before[k].kept_evidence) for k in np.flatnonzero(~rescore).tolist()
+    }
+    screenings = written(screened, codes, keep=keep, rewrite=sample)
+    had_results = ~rescore | earlier.present.any(axis=1)
+    new_states = screened.states.T
+    state_changed = (earlier.present & (earlier.states != new_states)).any(axis=1)
     changed = [
-        k for k, pk in enumerate(pks.tolist())
+        k for k in range(n)
         if had_results[k] and (
             state_changed[k]
-            or summary_before[pk].flags != summaries[k].flags
-            or summary_before[pk].verdict != summaries[k].verdict
+            or summary_before[k].flags != screenings[k].summary.flags
+            or summary_before[k].verdict != screenings[k].summary.verdict
         )
     ]
-    # The history keeps every detector's earlier result; read those not read yet.
-    unread = np.array([k for k in changed if not rescore[k]], dtype=np.intp)
-    if len(unread):
-        other_names = [name for name in names if name not in sample]
-        extra = _earlier_of_some(session, pks, unread, other_names)
-        for name in other_names:
-            if name not in earlier:
-                earlier[name] = extra[name]
-                continue
-            for column in ("present", "version", "state", "flagged", "score", "cutoff"):
-                getattr(earlier[name], column)[unread] = getattr(extra[name], column)[unread]
+    versions = [type(screener.detectors[name]).version for name in names]
     history = []
     for k in changed:
-        pk = int(pks[k])
-        before = summaries_before[pk]
+        row = before[k]
         history.append(
             {
-                "respondent_pk": pk,
-                "survey_version_id": before.survey_version_id,
-                "reference_id": before.reference_id,
-                "screened_at": before.screened_at,
+                "respondent_pk": int(pks[k]),
+                "survey_version_id": row.survey_version_id,
+                "reference_id": row.reference_id,
+                "screened_at": row.screened_at,
                 "replaced_at": now,
-                **summary_before[pk].columns(),
-                "results": {
-                    name: {
-                        "version": earlier[name].version[k],
-                        "state": State(int(earlier[name].state[k])).label,
-                        "score": (
-                            None if np.isnan(earlier[name].score[k])
-                            else float(earlier[name].score[k])
-                        ),
-                        "flagged": bool(earlier[name].flagged[k]),
-                    }
-                    for name in names
-                    if name in earlier and earlier[name].present[k]
-                },
+                **summary_before[k].history_columns(),
+                **earlier_record(
+                    earlier, k, versions if row.screened_with == screener.fingerprint else None
+                ),
             }
         )
     store.insert_screening_history(session, history)
-    store.delete_outcomes(session, pks[rescore & had_results].tolist())
-    store.delete_outcome_rows(session, replace_single)
-    rows = outcome_rows(screened, pks.tolist(), reference_id, only=write)
-    store.insert_outcomes(session, rows)
     store.update_screening(
         session,
         [
             {
-                "pk": pk, **summaries[k].columns(), "reference_id": reference_id,
+                "pk": pk, **screenings[k].columns(codes), "reference_id": reference_id,
                 "screened_at": now, "survey_version_id": screener.version_id,
                 "screened_with": screener.fingerprint,
             }
@@ -470,7 +360,7 @@ def rescreen_rows(
     )
     count.rescreened = n
     count.changed = len(history)
-    count.results_written = len(rows)
+    count.results_written = len(sample) * n + (len(names) - len(sample)) * int(rescore.sum())
     return count
 
 

@@ -128,13 +128,14 @@ def screener_fingerprint(document_digest: str, detectors: Mapping[str, Any]) -> 
 
     A stored result whose fingerprint differs from its screener's current one was produced by
     other code or settings (a detector added, removed or changed its version) and is stale.
+    The first 64 bits (16 hex digits) are kept with every respondent.
     """
     return store.canonical_digest(
         {
             "instrument": document_digest,
             "detectors": {name: type(d).version for name, d in detectors.items()},
         }
-    )
+    )[:16]
 
 
 def reference_data(session: Session, reference_id: int | None) -> Mapping[str, Any] | None:

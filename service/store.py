@@ -1,4 +1,4 @@
-"""Data functions: keys, surveys, respondents, detector outcomes, reviews, erasures.
+"""Data functions: keys, surveys, respondents and their stored screenings, reviews, erasures.
 
 Every function takes a session and leaves the transaction to its caller. Bulk writes go through
 SQLAlchemy Core (``executemany``), never one ORM object per row.
@@ -26,7 +26,7 @@ from sqlalchemy import (
     case,
     cast,
     delete,
-    exists,
+    false,
     func,
     insert,
     literal,
@@ -40,7 +40,7 @@ from .db import utcnow
 from .models import (
     ApiKey,
     Decision,
-    DetectorOutcome,
+    DetectorCode,
     Erasure,
     ReferenceSample,
     Respondent,
@@ -76,7 +76,6 @@ __all__ = [
     "existing_respondents",
     "insert_respondents",
     "replace_respondents",
-    "insert_outcomes",
     "record_deliveries",
     "deliveries_seen",
     "prune_deliveries",
@@ -84,7 +83,6 @@ __all__ = [
     "Cursor",
     "list_respondents",
     "get_respondent",
-    "outcomes_of",
     "reviews_of",
     "history_of",
     "add_review",
@@ -97,14 +95,15 @@ __all__ = [
     "timed_rows",
     "count_stale",
     "screening_rows",
-    "outcome_values",
-    "outcome_values_of",
-    "delete_outcome_rows",
     "insert_screening_history",
     "screening_history_of",
-    "outcome_tallies",
-    "outcome_sample",
-    "flag_set_counts",
+    "flag_bits_counts",
+    "flag_bits_by_day",
+    "detector_code_map",
+    "add_detector_codes",
+    "packed_results_of",
+    "packed_results_between",
+    "survey_pks",
     "arrivals_by_day",
     "survey_flags",
     "respondent_answers",
@@ -265,7 +264,7 @@ def count_respondents(session: Session, survey_id: int) -> int:
 def existing_respondents(
     session: Session, survey_id: int, respondent_ids: Sequence[str]
 ) -> dict[str, AnyRow]:
-    """respondent id -> (id, respondent_id, answers_digest, flags, flag_count, verdict,
+    """respondent id -> (id, respondent_id, answers_digest, flag_bits, flag_count, verdict,
     careless_score) of stored ones."""
     out: dict[str, AnyRow] = {}
     for chunk in _chunks(list(respondent_ids)):
@@ -274,7 +273,7 @@ def existing_respondents(
                 Respondent.id,
                 Respondent.respondent_id,
                 Respondent.answers_digest,
-                Respondent.flags,
+                Respondent.flag_bits,
                 Respondent.flag_count,
                 Respondent.verdict,
                 Respondent.careless_score,
@@ -285,17 +284,14 @@ def existing_respondents(
     return out
 
 
-def not_assessed_of(session: Session, pks: Sequence[int]) -> dict[int, list[str]]:
-    """Respondent pk -> detectors that could not judge it."""
-    out: dict[int, list[str]] = {}
+def packed_results_of(session: Session, pks: Sequence[int]) -> dict[int, bytes | None]:
+    """pk -> the packed results of each of these respondents that exists."""
+    out: dict[int, bytes | None] = {}
     for chunk in _chunks(list(pks)):
-        rows = session.execute(
-            select(DetectorOutcome.respondent_pk, DetectorOutcome.detector).where(
-                DetectorOutcome.respondent_pk.in_(chunk), DetectorOutcome.state != 0
-            )
-        )
-        for pk, name in rows:
-            out.setdefault(pk, []).append(name)
+        for pk, results in session.execute(
+            select(Respondent.id, Respondent.results).where(Respondent.id.in_(chunk))
+        ):
+            out[pk] = results
     return out
 
 
@@ -310,9 +306,11 @@ def insert_respondents(session: Session, rows: list[dict[str, Any]]) -> list[int
     return [r[0] for r in result]
 
 
-def replace_respondents(session: Session, rows: list[dict[str, Any]], now: dt.datetime) -> None:
-    """Move the stored answers of ``rows`` (each with ``pk``) to history, then overwrite them
-    and drop their old outcomes."""
+def replace_respondents(
+    session: Session, rows: list[dict[str, Any]], now: dt.datetime, flags: dict[int, str]
+) -> None:
+    """Move the stored answers of ``rows`` (each with ``pk``) to history, with the flag set
+    ``flags[pk]`` they had, then overwrite them."""
     if not rows:
         return
     pks = [r["pk"] for r in rows]
@@ -341,24 +339,28 @@ def replace_respondents(session: Session, rows: list[dict[str, Any]], now: dt.da
             Respondent.duration_seconds,
             Respondent.meta,
             Respondent.received_at,
-            Respondent.flags,
+            literal("", type_=ResponseHistory.flags.type),
             literal(now, type_=ResponseHistory.replaced_at.type),
         ).where(Respondent.id.in_(chunk))
         connection.execute(
             insert(ResponseHistory.__table__).from_select(history_columns, source)
         )
-        connection.execute(
-            delete(DetectorOutcome.__table__).where(
-                DetectorOutcome.__table__.c.respondent_pk.in_(chunk)
-            )
+    history = ResponseHistory.__table__
+    connection.execute(
+        update(history)
+        .where(
+            history.c.respondent_pk == bindparam("pk"), history.c.replaced_at == bindparam("at")
         )
+        .values(flags=bindparam("earlier")),
+        [{"pk": pk, "at": now, "earlier": flags.get(pk, "")} for pk in pks],
+    )
     table = Respondent.__table__
     values: dict[str, Any] = {k: bindparam(k) for k in rows[0] if k != "pk"}
     connection.execute(update(table).where(table.c.id == bindparam("pk")).values(values), rows)
 
 
 def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Set the screening summary (flag_count, flags, verdict, careless_score), reference_id and
+    """Set the stored screening (summary, packed results, kept evidence), reference_id and
     screened_at of respondents (each with ``pk``)."""
     if not rows:
         return
@@ -369,43 +371,9 @@ def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
     )
 
 
-def delete_outcomes(session: Session, pks: Sequence[int]) -> None:
-    for chunk in _chunks(list(pks)):
-        session.connection().execute(
-            delete(DetectorOutcome.__table__).where(
-                DetectorOutcome.__table__.c.respondent_pk.in_(chunk)
-            )
-        )
-
-
-#: Column order of the tuples given to :func:`insert_outcomes`.
-OUTCOME_COLUMNS = (
-    "respondent_pk", "detector", "detector_version", "state", "score", "cutoff", "flagged",
-    "reason", "evidence", "sentence", "reference_id",
-)
-
-
 def json_text(value: Any) -> str:
     """Compact JSON text (NaN becomes null), as stored in JSON columns."""
     return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
-
-
-def insert_outcomes(session: Session, rows: Sequence[tuple[Any, ...]]) -> None:
-    """Bulk-insert outcome tuples (``OUTCOME_COLUMNS`` order, evidence as JSON text).
-
-    This is the widest write (respondents x detectors), so it goes to the driver's
-    ``executemany`` directly, without per-row parameter processing.
-    """
-    if not rows:
-        return
-    connection = session.connection()
-    style = connection.dialect.paramstyle
-    marks = {"qmark": "?", "format": "%s", "pyformat": "%s"}[style]
-    sql = (
-        f"INSERT INTO {DetectorOutcome.__tablename__} ({', '.join(OUTCOME_COLUMNS)}) "
-        f"VALUES ({', '.join([marks] * len(OUTCOME_COLUMNS))})"
-    )
-    connection.exec_driver_sql(sql, rows)
 
 
 def deliveries_seen(session: Session, survey_id: int, webhook_ids: Sequence[str]) -> set[str]:
@@ -507,7 +475,7 @@ def list_respondents(
         Respondent.id,
         Respondent.respondent_id,
         Respondent.flag_count,
-        Respondent.flags,
+        Respondent.flag_bits,
         Respondent.verdict,
         Respondent.careless_score,
         Respondent.review_decision,
@@ -529,12 +497,11 @@ def list_respondents(
     if query.min_flags is not None:
         statement = statement.where(count >= query.min_flags)
     if query.detector is not None:
+        code = session.scalar(
+            select(DetectorCode.code).where(DetectorCode.name == query.detector)
+        )
         statement = statement.where(
-            exists().where(
-                DetectorOutcome.respondent_pk == Respondent.id,
-                DetectorOutcome.detector == query.detector,
-                DetectorOutcome.flagged.is_(True),
-            )
+            Respondent.flag_bits.op("&")(1 << code) != 0 if code is not None else false()
         )
     if query.verdict is not None:
         statement = statement.where(Respondent.verdict == Verdict(query.verdict))
@@ -569,12 +536,6 @@ def get_respondent(session: Session, survey_id: int, respondent_id: str) -> Resp
         select(Respondent).where(
             Respondent.survey_id == survey_id, Respondent.respondent_id == respondent_id
         )
-    )
-
-
-def outcomes_of(session: Session, pk: int) -> list[DetectorOutcome]:
-    return list(
-        session.scalars(select(DetectorOutcome).where(DetectorOutcome.respondent_pk == pk))
     )
 
 
@@ -736,64 +697,17 @@ def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, AnyRow]:
                 Respondent.reference_id,
                 Respondent.screened_at,
                 Respondent.flag_count,
-                Respondent.flags,
+                Respondent.flag_bits,
                 Respondent.verdict,
                 Respondent.careless_score,
                 Respondent.screened_with,
+                Respondent.results,
+                Respondent.kept_evidence,
             ).where(Respondent.id.in_(chunk))
         )
         for row in rows:
             out[row.id] = row
     return out
-
-
-def outcome_values(session: Session, detector: str, low: int, high: int) -> list[AnyRow]:
-    """(respondent_pk, detector_version, state, flagged, score, cutoff) of one detector's
-    stored results for the respondents with ids in [low, high]."""
-    table = DetectorOutcome.__table__
-    return list(
-        session.connection().execute(
-            select(
-                table.c.respondent_pk,
-                table.c.detector_version,
-                table.c.state,
-                table.c.flagged,
-                table.c.score,
-                table.c.cutoff,
-            ).where(table.c.detector == detector, table.c.respondent_pk.between(low, high))
-        )
-    )
-
-
-def outcome_values_of(
-    session: Session, pks: Sequence[int], detectors: Sequence[str]
-) -> list[AnyRow]:
-    """(respondent_pk, detector, detector_version, state, flagged, score, cutoff) of the named
-    detectors' stored results for a few respondents."""
-    table = DetectorOutcome.__table__
-    out: list[AnyRow] = []
-    for chunk in _chunks(list(pks)):
-        out.extend(
-            session.connection().execute(
-                select(
-                    table.c.respondent_pk, table.c.detector, table.c.detector_version,
-                    table.c.state, table.c.flagged, table.c.score, table.c.cutoff,
-                ).where(table.c.respondent_pk.in_(chunk), table.c.detector.in_(list(detectors)))
-            )
-        )
-    return out
-
-
-def delete_outcome_rows(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Delete single results, each given as ``{"pk": respondent pk, "detector": name}``."""
-    if rows:
-        table = DetectorOutcome.__table__
-        session.connection().execute(
-            delete(table).where(
-                table.c.respondent_pk == bindparam("pk"), table.c.detector == bindparam("name")
-            ),
-            [{"pk": r["pk"], "name": r["detector"]} for r in rows],
-        )
 
 
 def insert_screening_history(session: Session, rows: list[dict[str, Any]]) -> None:
@@ -815,55 +729,60 @@ def screening_history_of(session: Session, pk: int) -> list[ScreeningHistory]:
 # Report -----------------------------------------------------------------------------------------
 
 
-def _survey_rows(survey_id: int, low: int, high: int) -> Any:
-    return select(Respondent.id).where(
-        Respondent.survey_id + 0 == survey_id, Respondent.id.between(low, high)
+def detector_code_map(session: Session) -> dict[str, int]:
+    """Detector name -> its stored code."""
+    rows = session.execute(select(DetectorCode.code, DetectorCode.name))
+    return {name: code for code, name in rows}
+
+
+def add_detector_codes(session: Session, codes: dict[str, int]) -> None:
+    if codes:
+        session.connection().execute(
+            insert(DetectorCode.__table__), [{"code": c, "name": n} for n, c in codes.items()]
+        )
+
+
+def survey_pks(session: Session, survey_id: int) -> list[int]:
+    """The ids of a survey's respondents, ascending."""
+    return list(
+        session.scalars(
+            select(Respondent.id).where(Respondent.survey_id == survey_id).order_by(Respondent.id)
+        )
     )
 
 
-def outcome_tallies(
+def packed_results_between(
     session: Session, survey_id: int | None, low: int, high: int
 ) -> list[AnyRow]:
-    """(detector, state, flagged, respondents) of a survey's results for the respondents with
-    ids in [low, high], read along the primary key (``survey_id`` None: every respondent in
-    the range is the survey's)."""
-    table = DetectorOutcome.__table__
-    statement = select(table.c.detector, table.c.state, table.c.flagged, func.count()).where(
-        table.c.respondent_pk.between(low, high)
+    """(id, results) of the respondents with ids in [low, high], read along the primary key
+    (``survey_id`` None: the caller keeps its own respondents)."""
+    statement = select(Respondent.id, Respondent.results).where(
+        Respondent.id.between(low, high)
     )
     if survey_id is not None:
-        statement = statement.where(
-            table.c.respondent_pk.in_(_survey_rows(survey_id, low, high))
-        )
+        statement = statement.where(Respondent.survey_id + 0 == survey_id)
+    return list(session.connection().execute(statement.order_by(Respondent.id)))
+
+
+def flag_bits_counts(session: Session, survey_id: int) -> list[AnyRow]:
+    """(flag_bits, respondents) of the survey's flagged respondents."""
     return list(
-        session.connection().execute(
-            statement.group_by(table.c.detector, table.c.state, table.c.flagged)
+        session.execute(
+            select(Respondent.flag_bits, func.count())
+            .where(Respondent.survey_id == survey_id, Respondent.flag_count > 0)
+            .group_by(Respondent.flag_bits)
         )
     )
 
 
-def outcome_sample(session: Session, pks: Sequence[int]) -> list[AnyRow]:
-    """(detector, flagged, score, cutoff) of the assessed results of these respondents."""
-    table = DetectorOutcome.__table__
-    out: list[AnyRow] = []
-    for chunk in _chunks(list(pks)):
-        out.extend(
-            session.connection().execute(
-                select(table.c.detector, table.c.flagged, table.c.score, table.c.cutoff).where(
-                    table.c.respondent_pk.in_(chunk), table.c.state == 0
-                )
-            )
-        )
-    return out
-
-
-def flag_set_counts(session: Session, survey_id: int) -> list[AnyRow]:
-    """(stored flag set, respondents) of the survey's flagged respondents."""
+def flag_bits_by_day(session: Session, survey_id: int) -> list[AnyRow]:
+    """(day, flag_bits, respondents) of the survey's flagged respondents per day (UTC)."""
+    day = _day(session).label("day")
     return list(
         session.execute(
-            select(Respondent.flags, func.count())
+            select(day, Respondent.flag_bits, func.count())
             .where(Respondent.survey_id == survey_id, Respondent.flag_count > 0)
-            .group_by(Respondent.flags)
+            .group_by(day, Respondent.flag_bits)
         )
     )
 
@@ -924,7 +843,8 @@ def _day(session: Session) -> Any:
 
 
 def report(session: Session, survey_id: int) -> dict[str, Any]:
-    """Counts of respondents and flags, per detector and per day of arrival."""
+    """Counts of respondents, flagged respondents and reviews, in all and per day of arrival
+    (``outcomes.survey_counts`` adds the counts per detector)."""
     mine = Respondent.survey_id == survey_id
     flagged_any = case((Respondent.flag_count > 0, 1), else_=0)
     total, any_flag = session.execute(
@@ -938,23 +858,6 @@ def report(session: Session, survey_id: int) -> dict[str, Any]:
             )
         )
     }
-    detectors: dict[str, dict[str, int]] = {}
-    rows = session.execute(
-        select(
-            DetectorOutcome.detector, DetectorOutcome.state, DetectorOutcome.flagged, func.count()
-        )
-        .join(Respondent, Respondent.id == DetectorOutcome.respondent_pk)
-        .where(mine)
-        .group_by(DetectorOutcome.detector, DetectorOutcome.state, DetectorOutcome.flagged)
-    )
-    for name, state, flagged, n in rows:
-        tally = detectors.setdefault(
-            name, {"assessed": 0, "flagged": 0, "not_assessed": 0, "not_applicable": 0}
-        )
-        key = {0: "assessed", 1: "not_assessed", 2: "not_applicable"}[int(state)]
-        tally[key] += int(n)
-        if flagged:
-            tally["flagged"] += int(n)
     day = _day(session).label("day")
     days: dict[str, dict[str, Any]] = {}
     for when, n, n_flagged in session.execute(
@@ -969,17 +872,9 @@ def report(session: Session, survey_id: int) -> dict[str, Any]:
             "flagged_any": int(n_flagged),
             "flagged": {},
         }
-    for when, name, n in session.execute(
-        select(day, DetectorOutcome.detector, func.count())
-        .join(Respondent, Respondent.id == DetectorOutcome.respondent_pk)
-        .where(mine, DetectorOutcome.flagged.is_(True))
-        .group_by(day, DetectorOutcome.detector)
-    ):
-        days[str(when)]["flagged"][name] = int(n)
     return {
         "respondents": int(total),
         "flagged_any": int(any_flag),
         "reviewed": reviewed,
-        "detectors": detectors,
         "days": list(days.values()),
     }

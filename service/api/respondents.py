@@ -44,6 +44,7 @@ Sort = Literal[
 
 
 def _split(flags: str) -> list[str]:
+    """A history table's flag set."""
     return list(outcomes.flag_set(flags))
 
 
@@ -134,6 +135,7 @@ def list_respondents(
     with database.read() as session:
         found = survey_or_404(session, survey)
         numbers = store.version_numbers(session, found.id)
+        codes = outcomes.detector_codes(session)
         try:
             rows, next_cursor = store.list_respondents(session, found.id, query)
         except store.BadCursor as error:
@@ -143,7 +145,8 @@ def list_respondents(
             ) from None
     data = [
         RespondentRow(
-            respondent_id=r.respondent_id, flag_count=r.flag_count, flags=_split(r.flags),
+            respondent_id=r.respondent_id, flag_count=r.flag_count,
+            flags=list(codes.names(r.flag_bits)),
             verdict=r.verdict, careless_score=r.careless_score,
             review_decision=r.review_decision, received_at=r.received_at,
             version=numbers[r.survey_version_id],
@@ -202,7 +205,8 @@ def get_respondent(
         found_survey = survey_or_404(session, survey)
         found = _respondent_or_404(session, found_survey.id, survey, respondent)
         numbers = store.version_numbers(session, found_survey.id)
-        results = outcomes.results_of(session, found.id)
+        results = outcomes.results_of(session, found)
+        codes = outcomes.detector_codes(session)
         return RespondentDetail(
             respondent_id=found.respondent_id,
             version=numbers[found.survey_version_id],
@@ -213,7 +217,7 @@ def get_respondent(
             meta=found.meta,
             answers=found.answers,
             flag_count=found.flag_count,
-            flags=_split(found.flags),
+            flags=list(codes.names(found.flag_bits)),
             verdict=found.verdict,
             careless_score=found.careless_score,
             verdict_reason=_verdict_reason(session, found),
@@ -248,7 +252,7 @@ def get_respondent(
                     careless_score=h.careless_score,
                     results={
                         name: EarlierResult.model_validate(value)
-                        for name, value in h.results.items()
+                        for name, value in outcomes.earlier_results(codes, h).items()
                     },
                 )
                 for h in store.screening_history_of(session, found.id)

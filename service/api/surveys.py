@@ -11,7 +11,7 @@ from starlette.concurrency import run_in_threadpool
 from detectors import Instrument
 from detectors.screening import reference_detectors
 
-from .. import registration, store
+from .. import outcomes, registration, store
 from ..ingest import forget_credentials
 from ..models import Role, Survey
 from ..problems import Problem
@@ -275,7 +275,7 @@ def rescreen_survey(
 def survey_summary(survey: str, caller: Reader, database: DatabaseDep) -> SurveyReport:
     with database.read() as session:
         found = survey_or_404(session, survey)
-        counts = store.report(session, found.id)
+        counts = outcomes.survey_counts(session, found.id)
     return SurveyReport(
         survey=survey,
         respondents=counts["respondents"],

@@ -46,7 +46,7 @@ def _document(k: int) -> dict:
 
 def generate(url: str, n: int, k: int) -> None:
     from detectors import REGISTRY
-    from service import store
+    from service import outcomes, store
     from service.commands import register_document
     from service.database import Database
     from service.db import make_engine, upgrade
@@ -65,13 +65,11 @@ def generate(url: str, n: int, k: int) -> None:
     respondent_sql = (
         "INSERT INTO respondents (id, survey_id, respondent_id, survey_version_id, answers, "
         "answers_digest, submitted_at, duration_seconds, received_at, screened_at, flag_count, "
-        "flags, verdict, careless_score, review_decision) "
-        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+        "flag_bits, verdict, careless_score, review_decision, results) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
     )
-    outcome_sql = (
-        f"INSERT INTO detector_outcomes ({', '.join(store.OUTCOME_COLUMNS)}) "
-        f"VALUES ({', '.join(['?'] * len(store.OUTCOME_COLUMNS))})"
-    )
+    with database.write() as session:
+        numbers = outcomes.detector_codes(session, detectors).by_name
     verdicts = np.array(["ok", "review", "likely_careless"], dtype=object)
     for first in range(0, n, GENERATE_CHUNK):
         m = min(GENERATE_CHUNK, n - first)
@@ -96,26 +94,26 @@ def generate(url: str, n: int, k: int) -> None:
         careless = rng.random(m)
         review = np.where(rng.random(m) < 0.01, "exclude", None)
         ids = np.arange(first + 1, first + m + 1)
+        packed = np.zeros((m, len(detectors)), dtype=outcomes.PACKED)
+        packed["code"] = [numbers[name] for name in detectors]
+        packed["mark"] = flags * 4  # assessed (state 0), flagged or not
+        packed["score"] = rng.random((m, len(detectors)))
+        packed["cutoff"] = 0.5
+        width = len(detectors) * outcomes.PACKED.itemsize
+        blob = packed.tobytes()
+        bits = (flags * (1 << np.array([numbers[n] for n in detectors]))).sum(axis=1)
         respondents = [
-            (int(pk), survey_id, f"r{pk:07d}", version_id, document, f"{pk:064x}", when,
-             float(d), when, when, int(c), "", v, float(cs), r)
-            for pk, document, when, d, c, v, cs, r in zip(
+            (int(pk), survey_id, f"r{pk:07d}", version_id, document, f"{pk:016x}", when,
+             float(d), when, when, int(c), int(b), v, float(cs), r,
+             blob[i * width : (i + 1) * width])
+            for i, (pk, document, when, d, c, b, v, cs, r) in enumerate(zip(
                 ids.tolist(), documents, received, rng.uniform(120, 900, m).tolist(),
-                count.tolist(), verdict.tolist(), careless.tolist(), review.tolist(),
-                strict=True,
-            )
+                count.tolist(), bits.tolist(), verdict.tolist(), careless.tolist(),
+                review.tolist(), strict=True,
+            ))
         ]
-        outcomes = []
-        scores = rng.random((m, len(detectors))).tolist()
-        flag_list = flags.tolist()
-        for i, pk in enumerate(ids.tolist()):
-            for d, name in enumerate(detectors):
-                outcomes.append(
-                    (pk, name, "1", 0, scores[i][d], 0.5, flag_list[i][d], None, "{}", "", None)
-                )
         with engine.begin() as connection:
             connection.exec_driver_sql(respondent_sql, respondents)
-            connection.exec_driver_sql(outcome_sql, outcomes)
     database.dispose()
 
 
@@ -141,7 +139,7 @@ def parse_comparison(url: str, chunk: int) -> None:
     from sqlalchemy import text
 
     from service.db import make_engine
-    from service.exports import _answers
+    from service.rescreen import answer_codes as _answers
 
     engine = make_engine(url)
     with engine.connect() as connection:

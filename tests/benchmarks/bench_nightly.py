@@ -104,9 +104,9 @@ def generate(url: str, n: int) -> None:
                 {
                     "survey_id": survey_id, "respondent_id": f"b{first + k:07d}",
                     "survey_version_id": version_id, "answers": answers,
-                    "answers_digest": hashlib.sha256(text).hexdigest(),
+                    "answers_digest": hashlib.sha256(text).hexdigest()[:16],
                     "duration_seconds": float(seconds[k]), "received_at": received,
-                    "screened_at": received, "flag_count": 0, "flags": "",
+                    "screened_at": received, "flag_count": 0, "flag_bits": 0,
                 }
             )
         with database.write() as session:

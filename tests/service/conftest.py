@@ -5,6 +5,7 @@ show as skipped, with the reason), the app, keys, a survey."""
 from __future__ import annotations
 
 import json
+import math
 import os
 import time
 import uuid
@@ -15,11 +16,11 @@ from typing import Any
 
 import numpy as np
 import pytest
-from sqlalchemy import create_engine
+from sqlalchemy import create_engine, select
 
-from service import store
+from service import outcomes, store
 from service.app import create_app
-from service.models import Role
+from service.models import Respondent, Role
 from service.security import sign_webhook
 from service.settings import Settings
 
@@ -154,3 +155,38 @@ def signed_headers(secret: str, body: bytes, webhook_id: str | None = None,
 
 def body_of(document: Any) -> bytes:
     return json.dumps(document).encode()
+
+
+def stored_results(database) -> dict[tuple[str, str], tuple[int, bool, float | None]]:
+    """(respondent id, detector) -> (state, flagged, score) of every stored result."""
+    with database.read() as session:
+        rows = session.execute(select(Respondent.respondent_id, Respondent.results)).all()
+        columns = outcomes.result_columns(
+            [row[1] for row in rows], outcomes.detector_codes(session)
+        )
+    out = {}
+    for i, (rid, _) in enumerate(rows):
+        for j, name in enumerate(columns.names):
+            if columns.present[i, j]:
+                score = float(columns.scores[i, j])
+                out[(rid, name)] = (
+                    int(columns.states[i, j]), bool(columns.flagged[i, j]),
+                    None if np.isnan(score) else score,
+                )
+    return out
+
+
+def same_evidence(shown: Any, expected: Any) -> bool:
+    """Evidence read back equals the engine's, floats to 1e-12 relative (screening a
+    respondent alone may sum in another order than screening the batch)."""
+    if isinstance(expected, float) and isinstance(shown, float):
+        return math.isclose(shown, expected, rel_tol=1e-12, abs_tol=1e-12)
+    if isinstance(expected, dict) and isinstance(shown, dict):
+        return shown.keys() == expected.keys() and all(
+            same_evidence(shown[k], expected[k]) for k in expected
+        )
+    if isinstance(expected, list) and isinstance(shown, list):
+        return len(shown) == len(expected) and all(
+            same_evidence(a, b) for a, b in zip(shown, expected, strict=True)
+        )
+    return shown == expected

@@ -13,7 +13,9 @@ import pytest
 from sqlalchemy import select
 
 from detectors import REGISTRY, State, matrix_from_frame, screen
-from service.models import DetectorOutcome, Respondent
+from service.models import Respondent
+
+from .conftest import stored_results
 
 
 def _rows(frame, item_ids):
@@ -31,14 +33,7 @@ def _rows(frame, item_ids):
 
 
 def _stored(service) -> dict[tuple[str, str], tuple[int, bool, float | None]]:
-    with service.database.read() as session:
-        rows = session.execute(
-            select(
-                Respondent.respondent_id, DetectorOutcome.detector, DetectorOutcome.state,
-                DetectorOutcome.flagged, DetectorOutcome.score,
-            ).join(Respondent, Respondent.id == DetectorOutcome.respondent_pk)
-        )
-        return {(r[0], r[1]): (r[2], r[3], r[4]) for r in rows}
+    return stored_results(service.database)
 
 
 def _assert_same(stored, screening, names):

@@ -15,13 +15,13 @@ from sqlalchemy import select
 
 from detectors import REGISTRY, ResponseMatrix, State, parse_instrument
 from detectors.scales import scale_scores
-from service import exports, file_commands, store
+from service import exports, file_commands, outcomes, store
 from service.api import exports as export_api
 from service.cli import main
-from service.models import DetectorOutcome, Respondent
+from service.models import Respondent
 from service.stat_files import NAME_LIMITS, statistical_names
 
-from .conftest import make_document, random_rows
+from .conftest import make_document, random_rows, stored_results
 
 BASE = "/v1/surveys/pulse"
 LABELS = ["Strongly disagree", "Disagree", "Neither", "Agree", "Strongly agree"]
@@ -71,12 +71,9 @@ def _expected(service, stored) -> pd.DataFrame:
     instrument = parse_instrument(stored["document"])
     items = list(instrument.item_ids)
     posted = {row["respondent_id"]: row for row in stored["rows"]}
+    results = stored_results(service.database)
     with service.database.read() as session:
         respondents = session.scalars(select(Respondent).order_by(Respondent.id)).all()
-        outcomes = session.scalars(select(DetectorOutcome)).all()
-        by_pk = {}
-        for outcome in outcomes:
-            by_pk.setdefault(outcome.respondent_pk, {})[outcome.detector] = outcome
         records = []
         for r in respondents:
             record = {
@@ -90,10 +87,10 @@ def _expected(service, stored) -> pd.DataFrame:
                 value = posted[r.respondent_id]["answers"].get(item)
                 record[item] = np.nan if value is None else value
             for name in REGISTRY:
-                outcome = by_pk.get(r.id, {}).get(name)
-                assessed = outcome is not None and outcome.state == State.ASSESSED
-                record[f"{name}_score"] = outcome.score if assessed else np.nan
-                record[f"{name}_flag"] = float(outcome.flagged) if assessed else np.nan
+                state, flagged, score = results.get((r.respondent_id, name), (None, None, None))
+                assessed = state == State.ASSESSED
+                record[f"{name}_score"] = score if assessed else np.nan
+                record[f"{name}_flag"] = float(flagged) if assessed else np.nan
             records.append(record)
     frame = pd.DataFrame(records)
     answers = frame[items].to_numpy(dtype=np.float64)
@@ -388,12 +385,10 @@ def test_empty_survey_and_results_of_retired_detectors(service, stored, tmp_path
         "/v1/surveys", json=make_document(survey="empty"), headers=service.auth(service.admin)
     ).status_code == 201
     with service.database.write() as session:
-        pks = session.scalars(select(Respondent.id).order_by(Respondent.id).limit(3)).all()
-        for pk in pks:
-            session.add(DetectorOutcome(
-                respondent_pk=pk, detector="retired_index", detector_version="1", state=0,
-                score=0.5, cutoff=0.4, flagged=True, evidence={}, sentence="",
-            ))
+        code = outcomes.detector_codes(session, ["retired_index"]).by_name["retired_index"]
+        retired = np.array([(code, 0, 0.5, 0.4)], dtype=outcomes.PACKED).tobytes()
+        for found in session.scalars(select(Respondent).order_by(Respondent.id).limit(3)):
+            found.results = found.results + retired
     with service.database.read() as session:
         for fmt in exports.EXPORT_FORMATS:
             summary = exports.write_export(

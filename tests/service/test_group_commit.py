@@ -3,12 +3,13 @@ exactly the engine's."""
 
 from __future__ import annotations
 
+import json
 import threading
 
 import numpy as np
 from sqlalchemy import func, select
 
-from detectors import ResponseDataError, ResponseMatrix, parse_instrument, screen
+from detectors import REGISTRY, ResponseDataError, ResponseMatrix, State, parse_instrument, screen
 from service import ingest, outcomes, store
 from service.database import Database
 from service.db import make_engine, upgrade
@@ -19,7 +20,7 @@ from service.problems import from_service
 from service.registration import register_survey
 from service.screeners import screener_for
 
-from .conftest import body_of, make_document, random_rows, signed_headers
+from .conftest import body_of, make_document, random_rows, same_evidence, signed_headers
 
 URL = "/v1/surveys/pulse/responses"
 JSON = "application/json"
@@ -90,21 +91,50 @@ def test_stored_evidence_and_sentences_are_the_engines():
         columns = outcomes.evidence_columns(result)
         for i in range(len(result)):
             assert columns[i] == result.evidence_for(i), (name, i)
-    # The rows the service would insert for these results.
-    stored = outcomes.Screened(
-        names=list(screening.results),
-        versions=[r.version for r in screening.results.values()],
-        results=dict(screening.results),
-        flags=np.array([r.flags for r in screening.results.values()]),
-        states=np.array([r.states for r in screening.results.values()]),
-        sample_names=set(),
-        verdicts=screening.verdicts,
+
+
+def test_evidence_read_back_is_the_batch_screenings(service):
+    """Evidence is derived on read by screening one respondent again; what a reader gets is
+    what the engine gave the whole posted batch, entries that compare respondents included
+    (kept with the result): checked against ``detectors.screen`` on the same batch."""
+    document = make_document(n_items=12, survey="wide")
+    assert service.client.post(
+        "/v1/surveys", json=document, headers=service.auth(service.admin)
+    ).status_code == 201
+    rows = random_rows(60, n_items=12, seed=21)
+    for i, row in enumerate(rows):
+        row["duration_seconds"] = 30.0 + 7 * i
+    for k in range(3):  # three respondents copying another's answers
+        rows[10 + k]["answers"] = dict(rows[20]["answers"])
+    reply = service.client.post(
+        "/v1/surveys/wide/responses", json={"responses": rows},
+        headers=service.auth(service.ingest),
     )
-    rows = outcomes.outcome_rows(stored, list(range(200)), None)
-    by_key = {(row.detector, row.respondent_pk): row for row in rows}
-    for name, result in screening.results.items():
-        for i in range(len(result)):
-            assert by_key[(name, i)].sentence == result.sentence_for(i), (name, i)
+    assert reply.status_code == 201, reply.text
+    instrument = parse_instrument(document)
+    values = np.array(
+        [[np.nan if r["answers"].get(item) is None else r["answers"][item]
+          for item in instrument.item_ids] for r in rows], dtype=float,
+    )
+    matrix = ResponseMatrix.from_arrays(
+        instrument, values, [r["respondent_id"] for r in rows],
+        durations=np.array([r["duration_seconds"] for r in rows]),
+    )
+    names = [n for n, cls in REGISTRY.items() if not cls.needs_sample]
+    screening = screen(instrument, matrix, names=names, calibrate=False)  # no reference yet
+    assert screening.results["duplicate_answers"].scores[20] == 3  # the copies counted
+    for i in (0, 10, 20, 41):
+        detail = service.client.get(
+            f"/v1/surveys/wide/respondents/{rows[i]['respondent_id']}",
+            headers=service.auth(service.analyst),
+        ).json()
+        shown = {r["detector"]: r for r in detail["results"]}
+        for name in names:
+            result = screening.results[name]
+            expected = json.loads(json.dumps(result.evidence_for(i)))  # tuples as lists
+            assert same_evidence(shown[name]["evidence"], expected), (name, i)
+            assert shown[name]["sentence"] == result.sentence_for(i), (name, i)
+            assert shown[name]["state"] == State(int(result.states[i])).label
 
 
 def test_refused_signatures_and_keys_never_reach_the_writer(service, survey, monkeypatch):

@@ -10,18 +10,19 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from sqlalchemy import text
+from sqlalchemy import select, text
 
 from detectors import REGISTRY
-from service import ingest, nightly, rescreen, store
+from service import ingest, nightly, outcomes, rescreen, store
 from service.cli import main
 from service.database import Database
 from service.db import make_engine, upgrade
+from service.models import Respondent
 from service.screeners import screener_for
 from service.settings import Settings
 from service.stat_files import read_labelled
 
-from .conftest import make_document, random_rows, respondent
+from .conftest import make_document, random_rows, respondent, stored_results
 
 DAY = dt.date(2027, 5, 4)
 #: Columns that hold the time of a run: equal states are compared without them.
@@ -49,7 +50,6 @@ def _state(database: Database, times: bool = True) -> dict[str, list[tuple]]:
     """Every row of the screening tables, ordered by key (time columns left out if asked)."""
     tables = {
         "respondents": "id",
-        "detector_outcomes": "respondent_pk, detector",
         "screening_history": "id",
         "reference_samples": "id",
         "surveys": "id",
@@ -109,11 +109,12 @@ def test_nightly_rescreens_stale_results_and_writes_files(two_surveys, tmp_path)
                 session, survey.id, [survey.current_version_id], survey.current_version_id,
                 reference.id, screener.fingerprint,
             ) == 0
-        # Every result was judged against the new reference: mahalanobis is assessed now.
-        states = session.execute(
-            text("SELECT DISTINCT state FROM detector_outcomes WHERE detector = 'mahalanobis'")
-        ).scalars().all()
-        assert states == [0]
+    # Every result was judged against the new reference: mahalanobis is assessed now.
+    states = {
+        state for (_, name), (state, _, _) in stored_results(database).items()
+        if name == "mahalanobis"
+    }
+    assert states == {0}
 
 
 def test_a_second_run_changes_nothing(two_surveys, tmp_path):
@@ -164,11 +165,19 @@ def test_a_new_detector_version_makes_every_result_stale(two_surveys, tmp_path, 
     assert runs["pulse"].stale == 150 and runs["other"].stale == 90
     assert runs["pulse"].references == []  # the respondents did not change
     with database.read() as session:
-        versions = session.execute(
-            text("SELECT DISTINCT detector_version FROM detector_outcomes "
-                 "WHERE detector = 'long_string'")
-        ).scalars().all()
-    assert versions == ["999"]
+        versions = set()
+        for name in ("pulse", "other"):
+            survey = store.get_survey(session, name)
+            fingerprint = screener_for(session, survey.current_version_id).fingerprint
+            for found in session.scalars(select(Respondent).where(
+                Respondent.survey_id == survey.id
+            )):
+                assert found.screened_with == fingerprint
+                versions |= {
+                    r.detector_version for r in outcomes.results_of(session, found)
+                    if r.detector == "long_string"
+                }
+    assert versions == {"999"}
 
 
 def test_respondents_move_to_a_new_version_their_answers_fit(two_surveys, tmp_path):
@@ -190,10 +199,10 @@ def test_respondents_move_to_a_new_version_their_answers_fit(two_surveys, tmp_pa
             ).scalars().all()
             for name in ("pulse", "other")
         }
-        flagged = session.execute(
-            text("SELECT count(*) FROM detector_outcomes WHERE detector = 'long_string' "
-                 "AND flagged")
-        ).scalar_one()
+    flagged = sum(
+        is_flagged for (_, name), (_, is_flagged, _) in stored_results(database).items()
+        if name == "long_string"
+    )
     assert numbers == {"pulse": [2], "other": [1]}
     assert flagged > 0  # runs of 3 are common in random answers
 
@@ -349,15 +358,18 @@ def test_summary_and_stored_results_agree_when_a_detector_sees_more_in_a_chunk(
     _ingest(database, settings, "other", random_rows(3, n_items=10, seed=11, prefix="m"))
     runs = _run(database, settings, tmp_path)
     assert runs["other"].references and runs["other"].stale == 95
+    results = stored_results(database)
     with database.read() as session:
-        rows = session.execute(
-            text("SELECT r.flags, o.flagged FROM respondents r JOIN detector_outcomes o "
-                 "ON o.respondent_pk = r.id AND o.detector = 'duplicate_answers' "
-                 "WHERE r.respondent_id IN ('twin-a', 'twin-b')")
-        ).all()
+        codes = outcomes.detector_codes(session)
+        other = store.get_survey(session, "other")
+        rows = [
+            (codes.names(found.flag_bits), results[(rid, "duplicate_answers")][1])
+            for rid in ("twin-a", "twin-b")
+            if (found := store.get_respondent(session, other.id, rid)) is not None
+        ]
     assert len(rows) == 2
     for flags, flagged in rows:
-        assert ("duplicate_answers" in flags.split(",")) == bool(flagged)
+        assert ("duplicate_answers" in flags) == bool(flagged)
     assert all(flagged for _, flagged in rows)
 
 

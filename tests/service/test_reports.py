@@ -16,7 +16,7 @@ from service import rescreen, store
 from service.cli import main
 from service.reports import CAUTION_HEAD
 
-from .conftest import make_document, random_rows, respondent
+from .conftest import make_document, random_rows, respondent, stored_results
 
 URL = "/v1/surveys/pulse/responses"
 
@@ -91,12 +91,10 @@ def test_report_renders_every_picture_offline(service, survey):
     assert reply.headers["content-type"].startswith("text/html")
     page = _parse(reply.text)
     plots = {image.get("data-plot"): image for image in page.images}
-    with service.database.read() as session:
-        assessed = {
-            name for (name,) in session.execute(
-                text("SELECT DISTINCT detector FROM detector_outcomes WHERE state = 0")
-            )
-        }
+    assessed = {
+        name for (_, name), (state, _, _) in stored_results(service.database).items()
+        if state == 0
+    }
     expected = {f"distribution-{name}" for name in assessed} | {"overlap", "days", "patterns"}
     assert expected <= set(plots)
     for image in page.images:
