@@ -43,8 +43,6 @@ import pandas as pd
 from sqlalchemy import (
     Integer,
     String,
-    Text,
-    cast,
     literal_column,
     or_,
     select,
@@ -56,10 +54,10 @@ from detectors import MISSING, REGISTRY, ResponseMatrix
 from detectors.scales import scale_scores
 
 from . import store
+from .answers import matrix as stored_matrix
 from .files import write_atomic
 from .models import Decision, Respondent, Survey, Verdict
 from .outcomes import assessed_scores
-from .rescreen import answer_codes
 from .screeners import Screener, screener_for
 from .stat_files import STAT_FORMATS, statistical_names, unique_names, write_labelled
 
@@ -280,9 +278,9 @@ _RESPONDENT_COLUMNS = (
     Respondent.id,
     Respondent.respondent_id,
     Respondent.survey_version_id,
-    # The JSON and time columns are read as stored text and converted a column at a time,
-    # instead of by one Python call per value.
-    cast(Respondent.answers, Text),
+    # The time columns are read as stored text and converted a column at a time, instead of
+    # by one Python call per value.
+    Respondent.answer_codes,
     type_coerce(Respondent.received_at, String),
     type_coerce(Respondent.submitted_at, String),
     Respondent.duration_seconds,
@@ -326,12 +324,19 @@ def _nullable_int8(values: np.ndarray, missing: np.ndarray) -> pd.arrays.Integer
 
 
 def _chunk_frame(session: Session, layout: ExportLayout, rows: Sequence[Any]) -> pd.DataFrame:
-    (pks, ids, version_ids, texts, received, submitted, durations, counts, verdicts,
+    (pks, ids, version_ids, codes, received, submitted, durations, counts, verdicts,
      careless, decisions) = (list(column) for column in zip(*rows, strict=True))
     n = len(pks)
     pk_array = np.array(pks, dtype=np.int64)
     version_array = np.array(version_ids, dtype=np.int64)
-    answers = answer_codes(texts, tuple(layout.items))
+    answers = np.full((n, len(layout.items)), MISSING, dtype=np.int8)
+    column_of = {item: j for j, item in enumerate(layout.items)}
+    for version_id in np.unique(version_array).tolist():
+        mine = np.flatnonzero(version_array == version_id)
+        items = layout.screeners[version_id].instrument.item_ids
+        answers[np.ix_(mine, [column_of[item] for item in items])] = stored_matrix(
+            [codes[i] for i in mine.tolist()], len(items)
+        )
     scores, flags, unknown = assessed_scores(session, layout.detectors, pk_array)
     layout.unregistered_results += unknown
     data: dict[str, Any] = {}

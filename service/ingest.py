@@ -24,6 +24,7 @@ from sqlalchemy.orm import Session
 from detectors import MISSING, ResponseDataError, ResponseMatrix, ResponseProblem
 
 from . import store
+from .answers import answers_of, encode
 from .db import utcnow
 from .errors import (
     CONFLICT_REASON,
@@ -615,7 +616,6 @@ def _store_group(
     codes = detector_codes(session, screened.names)
     screenings = written(screened, codes)
     new_values, old_values = [], []
-    flags_before: dict[int, str] = {}
     k = 0
     for plan, rows in parts:
         replaced = set(plan.replaced)
@@ -623,7 +623,7 @@ def _store_group(
             row = plan.checked.rows[i]
             values = {
                 "survey_version_id": screener.version_id,
-                "answers": row.answers,
+                "answer_codes": encode(row.answers, screener.instrument.item_ids),
                 "answers_digest": plan.digests[i],
                 "started_at": row.started_at,
                 "submitted_at": row.submitted_at,
@@ -636,9 +636,7 @@ def _store_group(
                 **screenings[k].columns(codes),
             }
             if i in replaced:
-                before = stored_rows[plan.ids[i]]
-                old_values.append({"pk": before.id, **values})
-                flags_before[before.id] = flags_column(codes.names(before.flag_bits))
+                old_values.append({"pk": stored_rows[plan.ids[i]].id, **values})
             else:
                 new_values.append(
                     {"survey_id": survey.id, "respondent_id": row.respondent_id, **values}
@@ -651,7 +649,23 @@ def _store_group(
             )
             k += 1
     store.insert_respondents(session, new_values)
-    store.replace_respondents(session, old_values, now, flags_before)
+    history = [
+        {
+            "respondent_pk": before.id,
+            "survey_version_id": before.survey_version_id,
+            "answers": answers_of(session, before.survey_version_id, before.answer_codes),
+            "answers_digest": before.answers_digest,
+            "started_at": before.started_at,
+            "submitted_at": before.submitted_at,
+            "duration_seconds": before.duration_seconds,
+            "meta": before.meta,
+            "received_at": before.received_at,
+            "replaced_at": now,
+            "flags": flags_column(codes.names(before.flag_bits)),
+        }
+        for before in store.respondents_of(session, [row["pk"] for row in old_values])
+    ]
+    store.replace_respondents(session, old_values, history)
 
 
 def _ingested(plan: _Plan, received: int) -> Ingested:

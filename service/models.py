@@ -169,8 +169,10 @@ class Respondent(Base):
     survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
     respondent_id: Mapped[str] = mapped_column(String(200))
     survey_version_id: Mapped[int] = mapped_column(ForeignKey("survey_versions.id"))
-    answers: Mapped[dict[str, Any]] = mapped_column(JSON)
-    #: sha256 of the answered items and their answers: equal digests are duplicates.
+    #: The answers as received, a byte per item of the version (``service.answers``).
+    answer_codes: Mapped[bytes] = mapped_column(LargeBinary)
+    #: sha256 of the answered items and their answers (first 64 bits): equal digests are
+    #: duplicates.
     answers_digest: Mapped[str] = mapped_column(String(64))
     started_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
     submitted_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)

@@ -31,12 +31,13 @@ import numpy as np
 import orjson
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, REGISTRY, DetectorResult, ResponseMatrix, State
+from detectors import REGISTRY, DetectorResult, ResponseMatrix, State
 from detectors.calibration import apply as apply_calibration
 from detectors.screening import reference_calibration
 from detectors.verdict import Verdicts, assess, reference_ranks
 
 from . import store
+from .answers import matrix as stored_matrix
 from .models import Respondent, Verdict
 from .screeners import Screener, reference_data, screener_for
 
@@ -502,16 +503,9 @@ class StoredResult:
 
 
 def _one_row(screener: Screener, respondent: Respondent) -> ResponseMatrix:
-    instrument = screener.instrument
-    answers = respondent.answers or {}
-    values = np.array(
-        [[np.nan if answers.get(item) is None else answers[item] for item in instrument.item_ids]],
-        dtype=np.float64,
-    ).reshape(1, len(instrument.item_ids))
-    codes = np.where(np.isnan(values), MISSING, values).astype(np.int8)
     return ResponseMatrix(
         respondent_ids=np.array([respondent.respondent_id], dtype=object),
-        answers=codes,
+        answers=stored_matrix([respondent.answer_codes], len(screener.instrument.item_ids)),
         durations=np.array([seconds_taken(respondent)], dtype=np.float64),
     )
 

@@ -33,6 +33,7 @@ from detectors import REGISTRY, State, lint
 from detectors.reliability import scale_statistics
 
 from . import outcomes, store
+from .answers import stored_answers
 from .db import utcnow
 from .models import Decision, ReferenceSample, Respondent, Survey, Verdict
 from .rescreen import Target, read_stored
@@ -447,7 +448,7 @@ def _pattern_section(session: Session, survey: Survey, screener: Screener) -> st
         calm = calm[np.linspace(0, len(calm) - 1, PATTERN_ROWS).round().astype(int)]
     if not flagged_pks and not len(calm):
         return '<p class="note">No respondents of the current version yet.</p>'
-    found = store.respondent_answers(session, list(flagged_pks) + calm.tolist())
+    found = stored_answers(session, list(flagged_pks) + calm.tolist())
     items = screener.instrument.item_ids
 
     def block(pks: Sequence[int]) -> tuple[np.ndarray, list[str]]:
@@ -551,7 +552,7 @@ def _drill_section(session: Session, survey: Survey, screener: Screener) -> str:
     if len(pks) >= DRILL_MIN_RESPONDENTS:
         if len(pks) > DRILL_RESPONDENTS:
             pks = pks[np.linspace(0, len(pks) - 1, DRILL_RESPONDENTS).round().astype(int)]
-        found = store.respondent_answers(session, pks.tolist())
+        found = stored_answers(session, pks.tolist())
         values = np.array(
             [[found[pk].answers.get(item) for item in instrument.item_ids] for pk in pks.tolist()],
             dtype=np.float64,

@@ -10,18 +10,18 @@ shape of a result is ``service.outcomes``'.
 from __future__ import annotations
 
 import datetime as dt
-import io
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, ResponseMatrix, fit_references
+from detectors import ResponseMatrix, fit_references
 from detectors.screening import reference_detectors
 
 from . import store
+from .answers import matrix as stored_matrix
 from .db import utcnow
 from .models import ReferenceSample, Survey
 from .outcomes import (
@@ -43,7 +43,6 @@ __all__ = [
     "screening_targets",
     "save_reference",
     "Stored",
-    "answer_codes",
     "read_stored",
     "RescreenCount",
     "rescreen_rows",
@@ -135,34 +134,6 @@ class Stored:
         return rescore | (self.reference_ids != wanted), rescore
 
 
-def answer_codes(texts: Sequence[str], items: tuple[str, ...]) -> np.ndarray:
-    """int8 answer codes (rows x items) from the stored JSON texts of answers, parsed in one
-    vectorised pass (Arrow's JSON reader); null or absent answers become ``MISSING``."""
-    import pyarrow as pa
-    import pyarrow.json as pa_json
-
-    codes = np.full((len(texts), len(items)), MISSING, dtype=np.int8)
-    if not texts:
-        return codes
-    joined = "\n".join(texts)
-    if joined.count("\n") != len(texts) - 1:  # a document stored over several lines
-        joined = "\n".join(" ".join(text.splitlines()) for text in texts)
-    schema = pa.schema([(item, pa.int64()) for item in items])
-    table = pa_json.read_json(
-        io.BytesIO(joined.encode("utf-8")),
-        read_options=pa_json.ReadOptions(block_size=16 << 20),
-        parse_options=pa_json.ParseOptions(
-            explicit_schema=schema, unexpected_field_behavior="ignore"
-        ),
-    )
-    if table.num_rows != len(texts):
-        raise ValueError(f"{len(texts)} stored answer records gave {table.num_rows} rows")
-    for j, item in enumerate(items):
-        # pyarrow-stubs type the fill value as an Arrow scalar; a Python int is accepted too.
-        codes[:, j] = table.column(item).fill_null(int(MISSING)).to_numpy()  # type: ignore[arg-type]
-    return codes
-
-
 def read_stored(
     session: Session,
     survey_id: int,
@@ -170,8 +141,9 @@ def read_stored(
     chunk: int = READ_CHUNK,
     progress: Callable[[int], None] | None = None,
 ) -> Stored:
-    """Read the target's stored respondents ``chunk`` at a time into one matrix (answers parsed
-    column-wise, durations as ``_seconds_taken`` gives them); ``progress(rows_read)``."""
+    """Read the target's stored respondents ``chunk`` at a time into one matrix (the stored
+    answer bytes of a chunk at once, durations as ``seconds_taken`` gives them);
+    ``progress(rows_read)``."""
     items = target.screener.instrument.item_ids
     pks: list[np.ndarray] = []
     versions: list[np.ndarray] = []
@@ -186,11 +158,13 @@ def read_stored(
         rows = store.stored_answer_rows(session, survey_id, target.sources, last, chunk)
         if not rows:
             break
-        pk, rid, version, text, digest, seconds, reference, screened_with = zip(*rows, strict=True)
+        pk, rid, version, codes, digest, seconds, reference, screened_with = zip(
+            *rows, strict=True
+        )
         block_pks = np.fromiter(pk, dtype=np.int64, count=len(rows))
         try:
-            answers.append(answer_codes(text, items))
-        except (ValueError, TypeError) as error:  # Arrow's parse errors are ValueErrors
+            answers.append(stored_matrix(codes, len(items)))
+        except ValueError as error:
             raise ValueError(
                 f"the stored answers of respondents {rid[0]!r} to {rid[-1]!r} cannot be read "
                 f"as answer records: {error}"

@@ -20,16 +20,13 @@ from typing import TYPE_CHECKING, Any
 import orjson
 from sqlalchemy import (
     Row,
-    Text,
     and_,
     bindparam,
     case,
-    cast,
     delete,
     false,
     func,
     insert,
-    literal,
     or_,
     select,
     update,
@@ -107,6 +104,7 @@ __all__ = [
     "arrivals_by_day",
     "survey_flags",
     "respondent_answers",
+    "respondents_of",
 ]
 
 #: Rows per IN (...) list: well under SQLite's bound-parameter limit.
@@ -307,56 +305,27 @@ def insert_respondents(session: Session, rows: list[dict[str, Any]]) -> list[int
 
 
 def replace_respondents(
-    session: Session, rows: list[dict[str, Any]], now: dt.datetime, flags: dict[int, str]
+    session: Session, rows: list[dict[str, Any]], history: list[dict[str, Any]]
 ) -> None:
-    """Move the stored answers of ``rows`` (each with ``pk``) to history, with the flag set
-    ``flags[pk]`` they had, then overwrite them."""
+    """Keep the earlier answers of respondents in ``history`` (``ResponseHistory`` rows),
+    then overwrite the respondents with ``rows`` (each with ``pk``)."""
     if not rows:
         return
-    pks = [r["pk"] for r in rows]
-    history_columns = [
-        "respondent_pk",
-        "survey_version_id",
-        "answers",
-        "answers_digest",
-        "started_at",
-        "submitted_at",
-        "duration_seconds",
-        "meta",
-        "received_at",
-        "flags",
-        "replaced_at",
-    ]
     connection = session.connection()
-    for chunk in _chunks(pks):
-        source = select(
-            Respondent.id,
-            Respondent.survey_version_id,
-            Respondent.answers,
-            Respondent.answers_digest,
-            Respondent.started_at,
-            Respondent.submitted_at,
-            Respondent.duration_seconds,
-            Respondent.meta,
-            Respondent.received_at,
-            literal("", type_=ResponseHistory.flags.type),
-            literal(now, type_=ResponseHistory.replaced_at.type),
-        ).where(Respondent.id.in_(chunk))
-        connection.execute(
-            insert(ResponseHistory.__table__).from_select(history_columns, source)
-        )
-    history = ResponseHistory.__table__
-    connection.execute(
-        update(history)
-        .where(
-            history.c.respondent_pk == bindparam("pk"), history.c.replaced_at == bindparam("at")
-        )
-        .values(flags=bindparam("earlier")),
-        [{"pk": pk, "at": now, "earlier": flags.get(pk, "")} for pk in pks],
-    )
+    if history:
+        connection.execute(insert(ResponseHistory.__table__), history)
     table = Respondent.__table__
     values: dict[str, Any] = {k: bindparam(k) for k in rows[0] if k != "pk"}
     connection.execute(update(table).where(table.c.id == bindparam("pk")).values(values), rows)
+
+
+def respondents_of(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
+    """Every column of the stored respondents with these ids."""
+    out: list[Row[Any]] = []
+    table = Respondent.__table__
+    for chunk in _chunks(list(pks)):
+        out.extend(session.execute(select(*table.c).where(table.c.id.in_(chunk))))
+    return out
 
 
 def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
@@ -611,7 +580,7 @@ def stored_answer_rows(
     session: Session, survey_id: int, version_ids: Sequence[int], after_pk: int, limit: int
 ) -> list[AnyRow]:
     """The next ``limit`` respondents (by id, after ``after_pk``) of these survey versions:
-    id, respondent_id, survey_version_id, answers as JSON text, answers_digest,
+    id, respondent_id, survey_version_id, answer_codes, answers_digest,
     duration_seconds, reference_id, screened_with."""
     return list(
         session.execute(
@@ -619,7 +588,7 @@ def stored_answer_rows(
                 Respondent.id,
                 Respondent.respondent_id,
                 Respondent.survey_version_id,
-                cast(Respondent.answers, Text),
+                Respondent.answer_codes,
                 Respondent.answers_digest,
                 Respondent.duration_seconds,
                 Respondent.reference_id,
@@ -820,12 +789,15 @@ def survey_flags(session: Session, survey_id: int) -> list[AnyRow]:
     )
 
 
-def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, AnyRow]:
-    """pk -> (id, respondent_id, answers) of a few respondents."""
-    out: dict[int, AnyRow] = {}
+def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
+    """pk -> (id, respondent_id, survey_version_id, answer_codes) of a few respondents."""
+    out: dict[int, Row[Any]] = {}
     for chunk in _chunks(list(pks)):
         for row in session.execute(
-            select(Respondent.id, Respondent.respondent_id, Respondent.answers).where(
+            select(
+                Respondent.id, Respondent.respondent_id, Respondent.survey_version_id,
+                Respondent.answer_codes,
+            ).where(
                 Respondent.id.in_(chunk)
             )
         ):

@@ -14,6 +14,7 @@ from sqlalchemy.orm import Session
 from detectors import REGISTRY
 
 from .. import outcomes, screeners, store
+from ..answers import answers_of
 from ..models import Decision, Respondent
 from ..problems import Problem
 from ..schemas import (
@@ -215,7 +216,7 @@ def get_respondent(
             submitted_at=found.submitted_at,
             duration_seconds=found.duration_seconds,
             meta=found.meta,
-            answers=found.answers,
+            answers=answers_of(session, found.survey_version_id, found.answer_codes),
             flag_count=found.flag_count,
             flags=list(codes.names(found.flag_bits)),
             verdict=found.verdict,

@@ -12,6 +12,7 @@ import pytest
 from sqlalchemy import func, select
 
 from detectors import load_instrument
+from service.answers import answers_of
 from service.cli import main
 from service.commands import register_document
 from service.database import Database
@@ -76,7 +77,10 @@ def test_import_sav_then_reimport_gives_duplicates(bfi, bfi_frame, bfi_survey, d
     assert _count(bfi_survey) == 2800
     # Stored answers equal the file's (ids lose the '.0' of SPSS's numeric storage).
     with bfi_survey.read() as session:
-        stored = {r.respondent_id: r.answers for r in session.scalars(select(Respondent))}
+        stored = {
+            r.respondent_id: answers_of(session, r.survey_version_id, r.answer_codes)
+            for r in session.scalars(select(Respondent))
+        }
     for position in (0, 1, 1234, 2799):
         row = frame.iloc[position]
         rid = str(int(row["respondent_id"]))
@@ -104,7 +108,11 @@ def test_import_sav_then_reimport_gives_duplicates(bfi, bfi_frame, bfi_survey, d
     assert code == 0 and "0 stored, 1 replaced, 2799 duplicate(s)" in out
     with bfi_survey.read() as session:
         assert session.scalar(select(func.count()).select_from(ResponseHistory)) == 1
-        answers = session.scalar(select(Respondent.answers).where(Respondent.respondent_id == rid))
+        found = session.execute(
+            select(Respondent.survey_version_id, Respondent.answer_codes)
+            .where(Respondent.respondent_id == rid)
+        ).one()
+        answers = answers_of(session, *found)
     assert answers["A1"] == int(changed.loc[3, "A1"])
 
 

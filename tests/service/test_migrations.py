@@ -12,6 +12,7 @@ from sqlalchemy.orm import Session
 
 from detectors import MISSING, REGISTRY, ResponseMatrix, State, build_detectors, parse_instrument
 from service import outcomes, store
+from service.answers import answers_of
 from service.database import Database
 from service.db import UTCDateTime, _alembic_config, make_engine, upgrade, writer
 from service.ingest import answers_digest
@@ -70,6 +71,7 @@ def _old_database(engine: sa.Engine) -> tuple[list[dict], outcomes.Screened]:
     for i, row in enumerate(rows):
         row["duration_seconds"] = 20.0 + 9 * i
     rows[5]["answers"] = dict(rows[6]["answers"])  # a copy
+    del rows[7]["answers"]["q03"]  # an item left out
     instrument = parse_instrument(document)
     detectors = build_detectors(instrument)
     digest = store.canonical_digest(document)
@@ -158,6 +160,9 @@ def test_compact_results_migration_reads_back_the_same_results(database_url):
                     codes, found.flag_bits, found.verdict, found.careless_score
                 )
                 assert summary == screened.summary(i)
+                assert answers_of(
+                    session, found.survey_version_id, found.answer_codes
+                ) == row["answers"]  # as received: left-out items absent, nulls kept
                 shown = {r.detector: r for r in outcomes.results_of(session, found)}
                 for name in screened.names:
                     result = screened.results[name]

@@ -4,7 +4,8 @@ with their evidence go. Evidence is derived on read by screening the respondent 
 screening is deterministic given the answers, the version, the reference sample and the
 screener); only the evidence of detectors that compare respondents with each other, where
 the screening of the respondent alone would not give back, is kept (``kept_evidence``). The
-answers digest and the screener fingerprint kept per respondent shrink to their first 64 bits.
+answers digest and the screener fingerprint kept per respondent shrink to their first 64 bits,
+and the answers become a byte per item of the respondent's version (``answer_codes``).
 
 Revision ID: 0005
 Revises: 0004
@@ -59,6 +60,7 @@ def upgrade() -> None:
         )
         batch.add_column(sa.Column("results", sa.LargeBinary(), nullable=True))
         batch.add_column(sa.Column("kept_evidence", sa.JSON(), nullable=True))
+        batch.add_column(sa.Column("answer_codes", sa.LargeBinary(), nullable=True))
     connection = op.get_bind()
     names = list(KNOWN) + sorted(
         {row[0] for row in connection.execute(sa.text(
@@ -76,7 +78,8 @@ def upgrade() -> None:
         "screened_with = substr(screened_with, 1, 16)"
     ))
     op.drop_table("detector_outcomes")
-    _drop_columns("respondents", ["flags"])
+    _move_answers(connection)
+    _drop_columns("respondents", ["flags", "answers"])
 
 
 def _move_results(connection, codes: dict[str, int]) -> None:
@@ -130,6 +133,40 @@ def _move_results(connection, codes: dict[str, int]) -> None:
             updates,
         )
         last = high
+
+
+#: Stored answer bytes for an item left out, and for one sent as null (service.answers).
+ABSENT, NULL = -128, -127
+
+
+def _move_answers(connection) -> None:
+    items = {
+        vid: [item["id"] for item in (json.loads(doc) if isinstance(doc, str) else doc)["items"]]
+        for vid, doc in connection.execute(sa.text("SELECT id, document FROM survey_versions"))
+    }
+    last = 0
+    while True:  # bounded: every round moves past the largest id read
+        rows = connection.execute(
+            sa.text(
+                "SELECT id, survey_version_id, answers FROM respondents WHERE id > :last "
+                "ORDER BY id LIMIT :n"
+            ),
+            {"last": last, "n": CHUNK},
+        ).all()
+        if not rows:
+            return
+        updates = []
+        for pk, version_id, answers in rows:
+            given = json.loads(answers) if isinstance(answers, str) else answers
+            codes = np.full(len(items[version_id]), ABSENT, dtype=np.int8)
+            for j, item in enumerate(items[version_id]):
+                if item in given:
+                    codes[j] = NULL if given[item] is None else given[item]
+            updates.append({"pk": pk, "codes": codes.tobytes()})
+        connection.execute(
+            sa.text("UPDATE respondents SET answer_codes = :codes WHERE id = :pk"), updates
+        )
+        last = rows[-1][0]
 
 
 def _drop_columns(table: str, columns: list[str]) -> None:
@@ -190,6 +227,26 @@ def downgrade() -> None:
             ),
             outcomes,
         )
-    _drop_columns("respondents", ["kept_evidence", "results", "flag_bits"])
+    with op.batch_alter_table("respondents") as batch:
+        batch.add_column(sa.Column("answers", sa.JSON(), nullable=True))
+    items = {
+        vid: [item["id"] for item in (json.loads(doc) if isinstance(doc, str) else doc)["items"]]
+        for vid, doc in connection.execute(sa.text("SELECT id, document FROM survey_versions"))
+    }
+    answers = [
+        {"pk": pk, "answers": json.dumps({
+            item: (None if code == NULL else code)
+            for item, code in zip(items[vid], np.frombuffer(codes, np.int8).tolist(), strict=True)
+            if code != ABSENT
+        })}
+        for pk, vid, codes in connection.execute(
+            sa.text("SELECT id, survey_version_id, answer_codes FROM respondents")
+        )
+    ]
+    if answers:
+        connection.execute(
+            sa.text("UPDATE respondents SET answers = :answers WHERE id = :pk"), answers
+        )
+    _drop_columns("respondents", ["kept_evidence", "results", "flag_bits", "answer_codes"])
     op.drop_table("detector_codes")
     _drop_columns("screening_history", ["versions", "packed_results"])
