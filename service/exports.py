@@ -334,7 +334,8 @@ def _chunk_frame(session: Session, layout: ExportLayout, rows: Sequence[Any]) ->
     for version_id in np.unique(version_array).tolist():
         mine = np.flatnonzero(version_array == version_id)
         items = layout.screeners[version_id].instrument.item_ids
-        answers[np.ix_(mine, [column_of[item] for item in items])] = stored_matrix(
+        where = np.array([column_of[item] for item in items], dtype=np.intp)
+        answers[np.ix_(mine, where)] = stored_matrix(
             [codes[i] for i in mine.tolist()], len(items)
         )
     scores, flags, unknown = assessed_scores(session, layout.detectors, pk_array)

@@ -347,9 +347,10 @@ def _kept(screened: Screened, codes: DetectorCodes) -> list[dict[str, Any] | Non
             entry = [column[i] for column in values]
             if all(_empty(value) for value in entry):
                 continue  # no other respondent counted: what screening alone gives back
-            if kept[i] is None:
-                kept[i] = {}
-            kept[i][code] = entry
+            mine = kept[i]
+            if mine is None:
+                mine = kept[i] = {}
+            mine[code] = entry
     return kept
 
 

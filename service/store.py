@@ -700,7 +700,9 @@ def screening_history_of(session: Session, pk: int) -> list[ScreeningHistory]:
 
 def detector_code_map(session: Session) -> dict[str, int]:
     """Detector name -> its stored code."""
-    rows = session.execute(select(DetectorCode.code, DetectorCode.name))
+    rows = session.execute(
+        select(DetectorCode.code, DetectorCode.name).order_by(DetectorCode.code)
+    )
     return {name: code for code, name in rows}
 
 
@@ -791,7 +793,7 @@ def survey_flags(session: Session, survey_id: int) -> list[AnyRow]:
 
 def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
     """pk -> (id, respondent_id, survey_version_id, answer_codes) of a few respondents."""
-    out: dict[int, Row[Any]] = {}
+    out: dict[int, AnyRow] = {}
     for chunk in _chunks(list(pks)):
         for row in session.execute(
             select(

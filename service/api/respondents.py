@@ -324,7 +324,8 @@ def _verdict_reason(session: Session, found: Respondent) -> str | None:
     if found.verdict is None:
         return None
     policy = screeners.screener_for(session, found.survey_version_id).instrument.verdict
-    raised = {REGISTRY[name].family for name in _split(found.flags) if name in REGISTRY}
+    flags = outcomes.detector_codes(session).names(found.flag_bits)
+    raised = {REGISTRY[name].family for name in flags if name in REGISTRY}
     families = [family for family in policy.families if family in raised]
     return explain(
         str(found.verdict), families, found.careless_score,

@@ -152,7 +152,8 @@ def test_compact_results_migration_reads_back_the_same_results(database_url):
     try:
         with database.read() as session:
             codes = outcomes.detector_codes(session)
-            assert list(codes.by_name) == list(REGISTRY)  # codes in registry order
+            # Codes in registry order (a detector added since gets its code when it first runs).
+            assert list(codes.by_name) == [name for name in REGISTRY if name in codes.by_name]
             survey = store.get_survey(session, "pulse")
             for i, row in enumerate(rows):
                 found = store.get_respondent(session, survey.id, row["respondent_id"])

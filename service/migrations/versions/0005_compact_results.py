@@ -199,9 +199,13 @@ def downgrade() -> None:
             sa.Column("flags", sa.String(length=500), nullable=False, server_default="")
         )
     connection = op.get_bind()
-    names = dict(connection.execute(sa.text("SELECT code, name FROM detector_codes")).all())
+    names: dict[int, str] = {
+        int(code): str(name)
+        for code, name in connection.execute(sa.text("SELECT code, name FROM detector_codes"))
+    }
     rows = connection.execute(sa.text("SELECT id, results FROM respondents")).all()
-    outcomes, flags = [], []
+    outcomes: list[dict] = []
+    flags: list[dict] = []
     for pk, results in rows:  # the evidence and sentences are not restored (re-screen)
         packed = np.frombuffer(results or b"", dtype=PACKED)
         flags.append({"pk": pk, "flags": ",".join(
