@@ -2,7 +2,7 @@
 
 A survey has numbered versions (its instrument documents); every respondent keeps the version it
 was screened with. A respondent's row holds its screening: the verdict, the careless score, the
-flag set (a bitmask of ``detector_codes``) and every detector's state, flag, score and cut-off
+flag set (a bitmask of ``detector_codes``) and every detector's state, flag and score
 packed in ``results`` (layout: ``service.outcomes``); evidence is derived on read. Answers are
 stored as received, so any later re-screen can use them; earlier answers replaced with
 ``?replace=true`` move to ``response_history``. Reviews are append-only.
@@ -186,7 +186,7 @@ class Respondent(Base):
     flag_count: Mapped[int] = mapped_column(SmallInteger, default=0)
     #: The raised flags: bit ``code`` set for each flagging detector (``DetectorCode``).
     flag_bits: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
-    #: Every detector's code, state, flag, score and cut-off, packed (``outcomes.PACKED``).
+    #: Every detector's code, state, flag and score, packed (``outcomes.PACKED``).
     results: Mapped[bytes | None] = mapped_column(LargeBinary, default=None)
     #: The evidence of detectors that compare respondents with each other (which screening
     #: the respondent alone would not give back), by detector code; None when there is none.

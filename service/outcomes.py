@@ -6,7 +6,7 @@ A respondent's row holds its whole screening (see ``models.Respondent``):
   of stable detector codes (``detector_codes``: a detector's code is given on first sight and
   never changes), so a listing filters on a detector with one bit test;
 - ``results``: every detector's result packed as :data:`PACKED` records (code, state and flag
-  in one byte, score as float64, cut-off as float32), in the screener's order;
+  in one byte, score as float64), in the screener's order;
 - ``kept_evidence``: the evidence of detectors that compare respondents with each other
   (``compares_respondents``), whose evidence the respondent screened alone would not give
   back; None when there is none.
@@ -72,10 +72,10 @@ __all__ = [
 
 #: Reason stored for a sample-dependent detector before the survey has a reference sample.
 NO_REFERENCE = "no reference sample yet"
-#: One detector's stored result: its code, ``state | 4 * flagged``, score and cut-off.
-PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8"), ("cutoff", "<f4")])
-#: One detector's earlier result in the screening history (no cut-off).
-EARLIER = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8")])
+#: One detector's stored result: its code, ``state | 4 * flagged`` and score.
+PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8")])
+#: One detector's earlier result in the screening history (the same record).
+EARLIER = PACKED
 _FLAGGED = 4
 #: Flag bits available in a signed 64-bit column.
 MAX_CODES = 63
@@ -319,15 +319,11 @@ def _packed(screened: Screened, codes: DetectorCodes) -> np.ndarray:
         screened.flags.T.astype(np.uint8) * _FLAGGED
     )
     packed["score"] = np.nan
-    packed["cutoff"] = np.nan
     for j, name in enumerate(screened.names):
         result = screened.results[name]
         if result is not None:
             scores = np.asarray(result.scores, dtype=np.float64)
-            cutoffs = np.asarray(result.cutoffs, dtype=np.float64)
             packed["score"][:, j] = np.where(np.isfinite(scores), scores, np.nan)
-            with np.errstate(over="ignore"):
-                packed["cutoff"][:, j] = np.where(np.isfinite(cutoffs), cutoffs, np.nan)
     return packed
 
 
@@ -420,7 +416,6 @@ class ResultColumns:
     states: np.ndarray  # int8, -1 where absent
     flagged: np.ndarray  # bool
     scores: np.ndarray  # float64, NaN unless a score was stored
-    cutoffs: np.ndarray  # float64 (stored as float32), NaN where none
     #: Stored results of detectors outside ``names``.
     others: int = 0
     codes: DetectorCodes | None = None
@@ -461,7 +456,6 @@ def result_columns(
         states=np.full((n, len(names)), -1, dtype=np.int8),
         flagged=np.zeros((n, len(names)), dtype=bool),
         scores=np.full((n, len(names)), np.nan),
-        cutoffs=np.full((n, len(names)), np.nan),
         others=int((~mine).sum()),
         codes=codes,
     )
@@ -469,7 +463,6 @@ def result_columns(
     out.states[rows, cols] = chosen["mark"] & 3
     out.flagged[rows, cols] = (chosen["mark"] & _FLAGGED) != 0
     out.scores[rows, cols] = chosen["score"]
-    out.cutoffs[rows, cols] = chosen["cutoff"]
     return out
 
 
@@ -536,7 +529,7 @@ def results_of(session: Session, respondent: Respondent) -> list[StoredResult]:
         reference_id = respondent.reference_id if name in screened.sample_names else None
         if name not in screener.detectors:  # a detector no longer run
             out.append(StoredResult(
-                name, "", state, score, _finite_one(entry["cutoff"]), flagged, None, {}, "",
+                name, "", state, score, None, flagged, None, {}, "",
                 None,
             ))
             continue
@@ -625,18 +618,49 @@ def detector_tallies(session: Session, survey_id: int, pks: np.ndarray) -> dict[
 
 
 def assessed_sample(session: Session, pks: np.ndarray) -> dict[str, list[tuple]]:
-    """Per detector, (score, flagged, cutoff) of its assessed results for respondents ``pks``."""
+    """Per detector, (score, flagged, cutoff) of its assessed results for respondents ``pks``:
+    scores and flags as stored, cut-offs derived by screening them again."""
     blobs = store.packed_results_of(session, pks.tolist())
-    columns = result_columns(list(blobs.values()), detector_codes(session))
+    order = list(blobs)
+    columns = result_columns([blobs[pk] for pk in order], detector_codes(session))
+    cutoffs = _cutoffs_now(session, order, columns.names)
     samples: dict[str, list[tuple]] = {}
     for j, name in enumerate(columns.names):
         assessed = columns.present[:, j] & (columns.states[:, j] == State.ASSESSED)
         if assessed.any():
             samples[name] = list(zip(
                 columns.scores[assessed, j].tolist(), columns.flagged[assessed, j].tolist(),
-                columns.cutoffs[assessed, j].tolist(), strict=True,
+                cutoffs[assessed, j].tolist(), strict=True,
             ))
     return samples
+
+
+def _cutoffs_now(session: Session, pks: Sequence[int], names: Sequence[str]) -> np.ndarray:
+    """(respondents, detectors) cut-offs of these respondents, screened again with their
+    versions' screeners and reference samples, a group of respondents at a time (NaN where a
+    detector gives none)."""
+    out = np.full((len(pks), len(names)), np.nan)
+    at = {pk: i for i, pk in enumerate(pks)}
+    column = {name: j for j, name in enumerate(names)}
+    groups: dict[tuple[int, int | None], list[Any]] = {}
+    for row in store.respondents_of(session, pks):
+        groups.setdefault((row.survey_version_id, row.reference_id), []).append(row)
+    for (version_id, reference_id), members in groups.items():
+        screener = screener_for(session, version_id)
+        matrix = ResponseMatrix(
+            respondent_ids=np.array([m.respondent_id for m in members], dtype=object),
+            answers=stored_matrix(
+                [m.answer_codes for m in members], len(screener.instrument.item_ids)
+            ),
+            durations=np.array([seconds_taken(m) for m in members], dtype=np.float64),
+        )
+        screened = screen_matrix(screener, matrix, reference_data(session, reference_id))
+        rows = np.array([at[m.id] for m in members], dtype=np.intp)
+        for name, result in screened.results.items():
+            if result is not None and name in column:
+                cutoffs = np.asarray(result.cutoffs, dtype=np.float64)
+                out[rows, column[name]] = np.where(np.isfinite(cutoffs), cutoffs, np.nan)
+    return out
 
 
 def flag_set_counts(session: Session, survey_id: int) -> list[tuple[tuple[str, ...], int]]:

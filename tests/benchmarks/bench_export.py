@@ -98,7 +98,6 @@ def generate(url: str, n: int, k: int) -> None:
         packed["code"] = [numbers[name] for name in detectors]
         packed["mark"] = flags * 4  # assessed (state 0), flagged or not
         packed["score"] = rng.random((m, len(detectors)))
-        packed["cutoff"] = 0.5
         width = len(detectors) * outcomes.PACKED.itemsize
         blob = packed.tobytes()
         bits = (flags * (1 << np.array([numbers[n] for n in detectors]))).sum(axis=1)

@@ -386,7 +386,7 @@ def test_empty_survey_and_results_of_retired_detectors(service, stored, tmp_path
     ).status_code == 201
     with service.database.write() as session:
         code = outcomes.detector_codes(session, ["retired_index"]).by_name["retired_index"]
-        retired = np.array([(code, 0, 0.5, 0.4)], dtype=outcomes.PACKED).tobytes()
+        retired = np.array([(code, 0, 0.5)], dtype=outcomes.PACKED).tobytes()
         for found in session.scalars(select(Respondent).order_by(Respondent.id).limit(3)):
             found.results = found.results + retired
     with service.database.read() as session:

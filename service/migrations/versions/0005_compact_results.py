@@ -1,5 +1,5 @@
-"""Compact results: one row per respondent holds every detector's state, flag, score and
-cut-off (packed), the flag set as a bitmask of stable detector codes; the per-detector rows
+"""Compact results: one row per respondent holds every detector's state, flag and score
+(packed), the flag set as a bitmask of stable detector codes; the per-detector rows
 with their evidence go. Evidence is derived on read by screening the respondent again (the
 screening is deterministic given the answers, the version, the reference sample and the
 screener); only the evidence of detectors that compare respondents with each other, where
@@ -39,7 +39,7 @@ COMPARING = {
     "speeding": ("relative_speed", "median_duration_seconds"),
 }
 #: The packed layout of one result (service.outcomes.PACKED at this revision).
-PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8"), ("cutoff", "<f4")])
+PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8")])
 CHUNK = 20_000
 
 
@@ -94,7 +94,7 @@ def _move_results(connection, codes: dict[str, int]) -> None:
         low, high = pks[0], pks[-1]
         rows = connection.execute(
             sa.text(
-                "SELECT respondent_pk, detector, state, flagged, score, cutoff, evidence "
+                "SELECT respondent_pk, detector, state, flagged, score, evidence "
                 "FROM detector_outcomes WHERE respondent_pk BETWEEN :low AND :high "
                 "ORDER BY respondent_pk, detector"
             ),
@@ -102,8 +102,8 @@ def _move_results(connection, codes: dict[str, int]) -> None:
         ).all()
         by_pk: dict[int, list] = {}
         kept: dict[int, dict] = {}
-        for pk, name, state, flagged, score, cutoff, evidence in rows:
-            by_pk.setdefault(pk, []).append((codes[name], state, flagged, score, cutoff))
+        for pk, name, state, flagged, score, evidence in rows:
+            by_pk.setdefault(pk, []).append((codes[name], state, flagged, score))
             if name in COMPARING and int(state) == 0:
                 value = json.loads(evidence) if isinstance(evidence, str) else evidence
                 kept.setdefault(pk, {})[str(codes[name])] = [
@@ -114,10 +114,9 @@ def _move_results(connection, codes: dict[str, int]) -> None:
             entries = sorted(by_pk.get(pk, []))
             packed = np.zeros(len(entries), dtype=PACKED)
             bits = 0
-            for i, (code, state, flagged, score, cutoff) in enumerate(entries):
+            for i, (code, state, flagged, score) in enumerate(entries):
                 packed[i] = (
-                    code, int(state) | (4 if flagged else 0),
-                    np.nan if score is None else score, np.nan if cutoff is None else cutoff,
+                    code, int(state) | (4 if flagged else 0), np.nan if score is None else score
                 )
                 if flagged:
                     bits |= 1 << code
@@ -215,7 +214,7 @@ def downgrade() -> None:
             {
                 "pk": pk, "name": names[int(p["code"])], "state": int(p["mark"]) & 3,
                 "score": None if np.isnan(p["score"]) else float(p["score"]),
-                "cutoff": None if np.isnan(p["cutoff"]) else float(p["cutoff"]),
+                "cutoff": None,
                 "flagged": bool(p["mark"] & 4),
             }
             for p in packed
