@@ -79,7 +79,15 @@ def _size(database) -> int:
         path = Path(engine.url.database)
         return path.stat().st_size
     with engine.connect().execution_options(isolation_level="AUTOCOMMIT") as connection:
-        connection.exec_driver_sql("VACUUM FULL")
+        # only this run's own tables: a database-wide VACUUM FULL locks other schemas too
+        # (a test dropping its schema at the same time deadlocked with it)
+        tables = connection.exec_driver_sql(
+            "SELECT quote_ident(c.relname) FROM pg_class c "
+            "JOIN pg_namespace n ON n.oid = c.relnamespace "
+            "WHERE n.nspname = current_schema() AND c.relkind = 'r'"
+        ).scalars().all()
+        for table in tables:
+            connection.exec_driver_sql(f"VACUUM FULL {table}")
         return int(
             connection.exec_driver_sql(
                 "SELECT coalesce(sum(pg_total_relation_size(c.oid)), 0) FROM pg_class c "
