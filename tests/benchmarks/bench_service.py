@@ -398,19 +398,11 @@ END = "<!-- end service speed -->"
 
 
 def write_figures(lines: list[str]) -> None:
-    import datetime as dt
+    from figures import write_figures as write_file
+    from figures import write_readme_block
 
-    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
-                            capture_output=True, text=True).stdout.strip()
-    stamp = (f"Written by `tests/benchmarks/bench_service.py` on {dt.date.today()} at commit "
-             f"`{commit}` (load average {os.getloadavg()[0]:.1f} when it ended).")
-    block = stamp + "\n\n```\n" + "\n".join(lines) + "\n```\n"
-    (ROOT / "docs" / "speed-service.md").write_text("# Speed of the service\n\n" + block)
-    readme = ROOT / "README.md"
-    content = readme.read_text()
-    head, rest = content.split(START, 1)
-    _, tail = rest.split(END, 1)
-    readme.write_text(f"{head}{START}\n{block}{END}{tail}")
+    written = write_file("speed-service.md", "Speed of the service", "bench_service.py", lines)
+    write_readme_block(START, END, written.read_text().split("\n", 2)[2].rstrip("\n"))
 
 
 if __name__ == "__main__":
