@@ -16,11 +16,11 @@ from .mahalanobis import (
     _by_missing_count,
     _chunks,
     _content_answers,
-    _mismatch,
     _missing_columns,
     _precision,
     _solve_missing,
     known_distances,
+    reference_unusable,
 )
 from .responses import MISSING, ResponseMatrix
 
@@ -216,13 +216,8 @@ class ContentNonresponsivity(Detector):
                 states, reasons, slice(None), State.NOT_APPLICABLE,
                 "fewer than 3 items other than attention checks",
             )
-        elif list(reference.get("items", [])) != item_ids:
-            mark(
-                states, reasons, slice(None), State.NOT_ASSESSED,
-                _mismatch(list(reference.get("items", [])), item_ids),
-            )
-        elif reference.get("problem"):
-            mark(states, reasons, slice(None), State.NOT_ASSESSED, str(reference["problem"]))
+        elif (unusable := reference_unusable(reference, item_ids)) is not None:
+            mark(states, reasons, slice(None), State.NOT_ASSESSED, unusable)
         else:
             self._ratios(matrix, columns, reference, ratio, centre, spread, distance, answered)
             least = max(1, math.ceil(self.min_answered_share * p - 1e-9))

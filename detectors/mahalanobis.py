@@ -164,6 +164,16 @@ def _mismatch(reference_items: list[str], item_ids: list[str]) -> str:
     )
 
 
+def reference_unusable(reference: Mapping[str, Any], item_ids: list[str]) -> str | None:
+    """Why a stored covariance reference cannot serve these content items (estimated on other
+    items, or not estimable), or None."""
+    if list(reference.get("items", [])) != item_ids:
+        return _mismatch(list(reference.get("items", [])), item_ids)
+    if reference.get("problem"):
+        return str(reference["problem"])
+    return None
+
+
 def _precision(covariance: np.ndarray) -> np.ndarray:
     """Inverse covariance, computed on the correlation scale and made exactly symmetric."""
     scale = np.sqrt(np.diag(covariance))
@@ -575,19 +585,13 @@ class Mahalanobis(Detector):
         top_items = np.full((n, _TOP_ITEMS), -1, dtype=np.int32)
         answered = np.zeros(n, dtype=np.int32)
         item_ids = [instrument.item_ids[c] for c in columns]
-        problem = reference.get("problem")
         if p == 0:
             mark(
                 states, reasons, slice(None), State.NOT_APPLICABLE,
                 "no items other than attention checks",
             )
-        elif list(reference.get("items", [])) != item_ids:
-            mark(
-                states, reasons, slice(None), State.NOT_ASSESSED,
-                _mismatch(list(reference.get("items", [])), item_ids),
-            )
-        elif problem:
-            mark(states, reasons, slice(None), State.NOT_ASSESSED, str(problem))
+        elif (unusable := reference_unusable(reference, item_ids)) is not None:
+            mark(states, reasons, slice(None), State.NOT_ASSESSED, unusable)
         else:
             self._check_distribution(reference["estimator"])
             self._distances(

@@ -80,6 +80,11 @@ def start_server(database_url: str, port: int) -> subprocess.Popen:
         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
         env={**os.environ, "HEEDFUL_LOG_LEVEL": "warning"},
     )
+    return _answering(process, port, "the server")
+
+
+def _answering(process: subprocess.Popen, port: int, what: str) -> subprocess.Popen:
+    """``process`` once its /healthz answers on ``port`` (bounded: 60 s)."""
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         try:
@@ -88,7 +93,7 @@ def start_server(database_url: str, port: int) -> subprocess.Popen:
         except httpx.TransportError:
             time.sleep(0.1)
     process.kill()
-    raise SystemExit("the server did not start within 60 s")
+    raise SystemExit(f"{what} did not start within 60 s")
 
 
 def start_bare(port: int) -> subprocess.Popen:
@@ -98,15 +103,7 @@ def start_bare(port: int) -> subprocess.Popen:
         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
         env={**os.environ, "PYTHONPATH": str(ROOT)},
     )
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        try:
-            if httpx.get(f"http://{HOST}:{port}/healthz", timeout=1).status_code == 200:
-                return process
-        except httpx.TransportError:
-            time.sleep(0.1)
-    process.kill()
-    raise SystemExit("the bare endpoint did not start within 60 s")
+    return _answering(process, port, "the bare endpoint")
 
 
 def stop(process: subprocess.Popen) -> None:
