@@ -11,13 +11,16 @@ Why
 
 The budget
     The verdict policy states ``review_rate``, the share of ordinary respondents it means to
-    send to review. It is split evenly over the counted families that hold a calibrated index
-    (Bonferroni): each family may flag ``review_rate / F`` of ordinary respondents, so the
-    share flagged by any family is at most ``review_rate``. Within a family the indices are
-    calibrated jointly, by the distribution of their *smallest* upper-tail share (the min-p
-    or max-T adjustment of Westfall & Young 1993): every index of the family gets the same
-    upper-tail share ``t_f``, chosen so that ``review_rate / F`` of the cleaned reference lies
-    beyond the cut-off of at least one of them. Correlated indices (several person-fit indices
+    send to review. ``score_review_share`` of it is the careless score's own review hurdle
+    (``detectors.verdict.score_cutoff``); the rest, B = ``review_rate x (1 -
+    score_review_share)``, is split evenly over the counted families that hold a calibrated
+    index (Bonferroni): each family may flag B / F of ordinary respondents, so the share
+    flagged by any family is at most B. Within a family the indices are calibrated jointly,
+    by the distribution of their *smallest* upper-tail share (the min-p or max-T adjustment of
+    Westfall & Young 1993): every index of the family gets the same upper-tail share ``t_f``,
+    chosen so that B / F of the cleaned reference lies beyond the cut-off of at least one of
+    them. An index's stated rate is its share among the reference respondents no other
+    family flags. Correlated indices (several person-fit indices
     react to the same random answering) then cost the budget once, not once each.
 
 Cleaning the reference
