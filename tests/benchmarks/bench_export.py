@@ -1,11 +1,9 @@
 """Benchmark: exporting a stored survey of 1,000,000 respondents x 50 items (SQLite).
 
-Generates the survey straight into a SQLite database with bulk inserts (answers, one result per
-respondent and registered detector, a verdict, a careless score, reviews for 1%), then runs
+Generates the survey straight into a SQLite database with bulk inserts (answers as a byte per
+item, every detector's packed result, a verdict, a careless score, reviews for 1%), then runs
 ``write_export`` once per format, each in a fresh process, and prints the wall time and that
-process's peak memory. Also prints how long the stored answer documents of one export chunk take
-to parse with Arrow's JSON reader (the exporter's way) and with one ``orjson.loads`` per row
-followed by ``DataFrame.from_records``.
+process's peak memory.
 
     python tests/benchmarks/bench_export.py                 # 1,000,000 x 50
     python tests/benchmarks/bench_export.py --respondents 200000 --keep /tmp/bench.db
@@ -23,7 +21,6 @@ import time
 from pathlib import Path
 
 import numpy as np
-import orjson
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
@@ -34,19 +31,15 @@ GENERATE_CHUNK = 50_000
 
 
 def _document(k: int) -> dict:
-    items = [
-        {"id": f"q{i + 1:02d}", "text": f"Statement {i + 1} of the bench survey",
-         "scale": f"s{i // 10}", "keyed": 1 if i % 2 == 0 else -1, "block": f"page{i // 10}"}
-        for i in range(k)
-    ]
-    labels = ["Strongly disagree", "Disagree", "Neither", "Agree", "Strongly agree"]
-    return {"survey": SURVEY, "title": "Bench", "items": items,
-            "response_format": {"points": 5, "lowest": 1, "labels": labels}}
+    from bench_survey import bench_document
+
+    return bench_document(SURVEY, "Bench", k)
 
 
 def generate(url: str, n: int, k: int) -> None:
     from detectors import REGISTRY
     from service import outcomes, store
+    from service.answers import NULL
     from service.commands import register_document
     from service.database import Database
     from service.db import make_engine, upgrade
@@ -59,11 +52,10 @@ def generate(url: str, n: int, k: int) -> None:
         survey = store.get_survey(session, SURVEY)
         survey_id, version_id = survey.id, survey.current_version_id
     rng = np.random.default_rng(5)
-    items = [f"q{i + 1:02d}" for i in range(k)]
     detectors = list(REGISTRY)
     start = dt.datetime(2027, 5, 1, tzinfo=dt.UTC)
     respondent_sql = (
-        "INSERT INTO respondents (id, survey_id, respondent_id, survey_version_id, answers, "
+        "INSERT INTO respondents (id, survey_id, respondent_id, survey_version_id, answer_codes, "
         "answers_digest, submitted_at, duration_seconds, received_at, screened_at, flag_count, "
         "flag_bits, verdict, careless_score, review_decision, results) "
         "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
@@ -77,13 +69,9 @@ def generate(url: str, n: int, k: int) -> None:
         keyed = np.where(np.arange(k) % 2 == 0, 1, -1)
         answers = np.clip(np.rint(3 + keyed * trait + rng.normal(0, 0.8, (m, k))), 1, 5)
         missing = rng.random((m, k)) < 0.02
-        codes = answers.astype(np.int64).tolist()
-        gaps = missing.tolist()
-        documents = [
-            orjson.dumps({item: (None if gap[j] else row[j]) for j, item in enumerate(items)})
-            .decode()
-            for row, gap in zip(codes, gaps, strict=True)
-        ]
+        # stored as service.answers does: a byte per item, an explicit null as NULL
+        stored = np.where(missing, NULL, answers).astype(np.int8)
+        documents = [row.tobytes() for row in stored]
         received = [
             (start + dt.timedelta(seconds=int(s))).strftime("%Y-%m-%d %H:%M:%S.%f")
             for s in (first + np.arange(m)) * 2
@@ -133,33 +121,6 @@ def child(url: str, fmt: str, out: str) -> None:
           f"peak {peak:,.0f} MB  file {size:,.0f} MB", flush=True)
 
 
-def parse_comparison(url: str, chunk: int) -> None:
-    import pandas as pd
-    from sqlalchemy import text
-
-    from service.db import make_engine
-    from service.rescreen import answer_codes as _answers
-
-    engine = make_engine(url)
-    with engine.connect() as connection:
-        texts = [row[0] for row in connection.execute(
-            text("SELECT answers FROM respondents ORDER BY id LIMIT :n"), {"n": chunk}
-        )]
-    engine.dispose()
-    items = list(orjson.loads(texts[0]))
-    start = time.perf_counter()
-    arrow = _answers(texts, items)
-    arrow_seconds = time.perf_counter() - start
-    start = time.perf_counter()
-    records = pd.DataFrame.from_records([orjson.loads(t) for t in texts], columns=items)
-    per_row = records.to_numpy(dtype=np.float64, na_value=np.nan)
-    per_row_seconds = time.perf_counter() - start
-    assert np.array_equal(np.where(arrow == -128, np.nan, arrow), per_row, equal_nan=True)
-    print(f"  parsing {len(texts):,} stored answer documents: Arrow JSON reader "
-          f"{arrow_seconds:.2f} s, orjson.loads per row + DataFrame.from_records "
-          f"{per_row_seconds:.2f} s")
-
-
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--respondents", type=int, default=1_000_000)
@@ -180,9 +141,6 @@ def main() -> None:
             generate(url, args.respondents, args.items)
             print(f"generated {args.respondents:,} respondents x {args.items} items in "
                   f"{time.perf_counter() - start:.0f} s ({path.stat().st_size / 1e6:,.0f} MB)")
-        from service.exports import EXPORT_CHUNK
-
-        parse_comparison(url, EXPORT_CHUNK)
         print(f"write_export, {args.respondents:,} x {args.items} from SQLite, one process each:")
         for fmt in args.formats.split(","):
             out = Path(folder) / f"export.{fmt}"

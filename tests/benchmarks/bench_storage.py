@@ -32,14 +32,9 @@ BATCH = 5_000
 
 
 def _document(k: int) -> dict:
-    items = [
-        {"id": f"q{i + 1:02d}", "text": f"Statement {i + 1} of the storage survey",
-         "scale": f"s{i // 10}", "keyed": 1 if i % 2 == 0 else -1, "block": f"page{i // 10}"}
-        for i in range(k)
-    ]
-    labels = ["Strongly disagree", "Disagree", "Neither", "Agree", "Strongly agree"]
-    return {"survey": SURVEY, "title": "Storage bench", "items": items,
-            "response_format": {"points": 5, "lowest": 1, "labels": labels}}
+    from bench_survey import bench_document
+
+    return bench_document(SURVEY, "Storage bench", k)
 
 
 def _rows(rng: np.random.Generator, first: int, m: int, k: int) -> list[dict]:
