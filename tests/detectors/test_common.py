@@ -25,6 +25,23 @@ def test_every_detector_module_is_registered():
     }
     registered = {cls.__module__.rsplit(".", 1)[1] for cls in REGISTRY.values()}
     assert modules == registered
+    # Each class is registered under its own name, in its own module (looked up lazily).
+    assert all(REGISTRY[name].name == name for name in REGISTRY)
+
+
+def test_the_package_exports_what_its_type_checking_imports_name():
+    import ast
+    from pathlib import Path
+
+    tree = ast.parse(Path(detectors.__file__).read_text(encoding="utf-8"))
+    typed = {
+        alias.name
+        for node in ast.walk(tree)
+        if isinstance(node, ast.ImportFrom) and node.level == 1
+        for alias in node.names
+    }
+    assert typed == set(detectors.__all__) == set(detectors._ORIGINS)
+    assert all(getattr(detectors, name) is not None for name in detectors.__all__)
 
 
 def common_instrument():

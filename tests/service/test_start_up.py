@@ -86,6 +86,32 @@ def test_database_commands_import_nothing_heavy(tmp_path):
         assert loaded == [], argv
 
 
+def test_registering_imports_only_the_detectors_the_document_configures(tmp_path):
+    # The document configures one detector's settings: only that detector's module is needed
+    # to check it.
+    document = make_document()
+    document["screening"] = {"long_string": {"run_cutoff": 8}}
+    instrument = tmp_path / "instrument.json"
+    instrument.write_text(json.dumps(document), encoding="utf-8")
+    database = f"sqlite:///{tmp_path / 'start.db'}"
+    assert _loaded("db", "upgrade", "--database", database, cwd=tmp_path)[0] == 0
+    modules = ["detectors." + name for name in detector_names()] + ["detectors.screening"]
+    done = subprocess.run(
+        [sys.executable, "-c", RUN, json.dumps(modules), "survey", "register", str(instrument),
+         "--database", database],
+        cwd=tmp_path, capture_output=True, text=True, timeout=120,
+    )
+    reply = json.loads(done.stderr.rstrip().splitlines()[-1].removeprefix("LOADED "))
+    assert reply["code"] == 0, done.stderr
+    assert [m for m in reply["loaded"] if not m.startswith("alembic")] == ["detectors.long_string"]
+
+
+def detector_names() -> list[str]:
+    from detectors import REGISTRY
+
+    return list(REGISTRY)
+
+
 def test_the_library_imports_without_scipy_stats_or_pandas():
     code = (
         "import sys, detectors; "
