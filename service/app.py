@@ -14,10 +14,12 @@ from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 
 from . import problems
-from .api import detectors, exports, health, reports, respondents, responses, surveys
+from .api import detectors, exports, health, metrics, reports, respondents, responses, surveys
 from .database import Database
 from .db import make_engine, upgrade
 from .ingest_queue import IngestQueue
+from .metrics import Metrics
+from .observability import RequestContext
 from .schemas import ProblemOut
 from .settings import Settings, get_settings
 
@@ -82,8 +84,11 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.settings = settings
     app.state.database = database
     app.state.ingest_queue = ingest_queue
+    app.state.metrics = Metrics()
+    app.state.metrics.watch_queue(ingest_queue.depth)
+    app.add_middleware(RequestContext, metrics=app.state.metrics)
     problems.install(app)
-    for module in (health, surveys, responses, respondents, reports, exports, detectors):
+    for module in (health, surveys, responses, respondents, reports, exports, detectors, metrics):
         app.include_router(module.router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app

@@ -39,6 +39,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     import uvicorn
 
     from .app import create_app, prepare_process
+    from .observability import log_config
 
     overrides: dict[str, Any] = {}
     if args.host:
@@ -52,7 +53,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
           f"(docs: http://{settings.host}:{settings.port}/docs)", flush=True)
     uvicorn.run(
         app, host=settings.host, port=settings.port, log_level=settings.log_level,
-        access_log=args.access_log,
+        log_config=log_config(settings.log_level, settings.log_format == "json", args.access_log),
+        access_log=False,
     )
     return EXIT_OK
 
@@ -319,7 +321,10 @@ def register(subparsers: Any) -> None:
     p = subparsers.add_parser("serve", help="run the screening web service")
     p.add_argument("--host", help="address to listen on (default: HEEDFUL_HOST, else 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default: HEEDFUL_PORT, else 8000)")
-    p.add_argument("--access-log", action="store_true", help="log every request line")
+    p.add_argument(
+        "--access-log", action="store_true",
+        help="log a line per request: method, route template, status, time (never the path)",
+    )
     add_database_option(p)
     p.set_defaults(func=guard(cmd_serve))
 

@@ -70,6 +70,7 @@ class RespondentConflict(ServiceError):
 
 
 class SignatureRefused(ServiceError):
-    def __init__(self, reason: str):
+    def __init__(self, reason: str, code: str = "signature"):
         self.reason = reason
+        self.code = code  # a short word for logs and metrics (security.WebhookRejected.code)
         super().__init__(f"The webhook signature was refused: {reason}.")

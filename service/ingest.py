@@ -430,7 +430,7 @@ def check_signature(
             settings.webhook_tolerance_seconds,
         )
     except WebhookRejected as error:
-        raise SignatureRefused(error.reason) from None
+        raise SignatureRefused(error.reason, error.code) from None
 
 
 def admit_signed(

@@ -61,6 +61,10 @@ class IngestQueue:
         self._queue.put(_Job(submission, future))
         return future
 
+    def depth(self) -> int:
+        """Posts waiting for the writer (approximate, as any queue size read from outside)."""
+        return self._queue.qsize()
+
     def close(self, timeout: float = 30.0) -> None:
         with self._lock:
             thread, self._thread = self._thread, None

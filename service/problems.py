@@ -49,6 +49,7 @@ _TITLES = {
     413: "Request body too large",
     415: "Unsupported media type",
     422: "Invalid input",
+    429: "Too many requests",
     500: "Internal error",
     503: "Service unavailable",
 }
@@ -75,6 +76,9 @@ class Problem(Exception):
         self.errors = errors
         self.headers = headers
         self.extensions = extensions
+        #: Why, in a word, for the log and the metrics when the type alone does not say
+        #: (which check refused a signature); never shown in the reply.
+        self.cause: str | None = None
         super().__init__(detail)
 
     def document(self, instance: str) -> dict[str, Any]:
@@ -165,16 +169,42 @@ def from_service(error: ServiceError) -> Problem:
             ],
         )
     if isinstance(error, SignatureRefused):
-        return Problem(401, str(error), kind="bad-signature")
+        problem = Problem(401, str(error), kind="bad-signature")
+        problem.cause = error.code
+        return problem
     return Problem(422, str(error), kind="invalid-input")
 
 
 def _respond(request: Request, problem: Problem) -> JSONResponse:
+    _note(request, problem)
     return JSONResponse(
         problem.document(request.url.path),
         status_code=problem.status,
         media_type=PROBLEM_JSON,
         headers=problem.headers,
+    )
+
+
+def _note(request: Request, problem: Problem) -> None:
+    """A log line and a count for every refusal or failure: the route template (never the path, which may
+    name a respondent), the survey, the status and the reason; no body, detail or field."""
+    reason = problem.kind or f"http-{problem.status}"
+    if problem.cause:
+        reason = f"{reason}:{problem.cause}"
+    metrics = getattr(request.app.state, "metrics", None)
+    if metrics is not None:
+        metrics.refusals.labels(str(problem.status), reason).inc()
+    route = getattr(request.scope.get("route"), "path_format", None) or "(unmatched)"
+    survey = request.scope.get("path_params", {}).get("survey")
+    event = "failed" if problem.status >= 500 else "refused"
+    log.log(
+        logging.ERROR if problem.status >= 500 else logging.INFO,
+        "%s %s %s on %s %s", event, problem.status, reason, request.method, route,
+        extra={
+            "event": event, "method": request.method, "route": route,
+            "survey": survey[:100] if isinstance(survey, str) else None,
+            "status": problem.status, "reason": reason,
+        },
     )
 
 
@@ -222,9 +252,33 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, error: Exception) -> JSONResponse:
+        if _database_unavailable(error):
+            problem = Problem(
+                503, "The database is unavailable; nothing was stored. Try again shortly.",
+                kind="database-unavailable", headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
+            )
+            problem.cause = type(error).__name__
+            return _respond(request, problem)
         # Only the type is logged: request bodies (answers, meta) never reach the log.
-        log.error("unexpected %s on %s %s", type(error).__name__, request.method, request.url.path)
-        return _respond(request, Problem(500, "The server failed; nothing was stored."))
+        problem = Problem(500, "The server failed; nothing was stored.")
+        problem.cause = type(error).__name__
+        return _respond(request, problem)
+
+
+#: What a 503 asks the caller to wait before trying again.
+RETRY_AFTER_SECONDS = 5
+
+
+def _database_unavailable(error: BaseException) -> bool:
+    """Whether the database could not be reached or is busy (as opposed to a bug): the driver's
+    operational errors (connection refused or lost, SQLite's file locked) and a lost connection
+    noticed by the pool."""
+    from sqlalchemy.exc import DBAPIError, OperationalError
+    from sqlalchemy.exc import TimeoutError as PoolTimeout
+
+    if isinstance(error, OperationalError | PoolTimeout):
+        return True
+    return isinstance(error, DBAPIError) and bool(error.connection_invalidated)
 
 
 def problem_schema() -> dict[str, Any]:

@@ -91,8 +91,11 @@ def sign_webhook(secret: str, webhook_id: str, timestamp: int | str, body: bytes
 class WebhookRejected(Exception):
     """A signed delivery failed verification; ``reason`` says why (safe to show the sender)."""
 
-    def __init__(self, reason: str):
+    def __init__(self, reason: str, code: str):
         self.reason = reason
+        #: A short word for logs and metrics: missing-headers, bad-timestamp, stale-timestamp,
+        #: no-signature, signature-mismatch.
+        self.code = code
         super().__init__(reason)
 
 
@@ -117,15 +120,18 @@ def verify_webhook(
         if not value
     ]
     if missing:
-        raise WebhookRejected(f"missing header(s): {', '.join(missing)}")
+        raise WebhookRejected(f"missing header(s): {', '.join(missing)}", "missing-headers")
     assert webhook_id is not None and timestamp is not None and signature_header is not None
     if not timestamp.isdigit():
-        raise WebhookRejected("webhook-timestamp must be whole seconds since 1970-01-01 UTC")
+        raise WebhookRejected(
+            "webhook-timestamp must be whole seconds since 1970-01-01 UTC", "bad-timestamp"
+        )
     now = time.time() if now is None else now
     if abs(now - int(timestamp)) > tolerance_seconds:
         raise WebhookRejected(
             f"webhook-timestamp is more than {tolerance_seconds} seconds away from the "
-            "server's clock"
+            "server's clock",
+            "stale-timestamp",
         )
     offered = []
     for part in signature_header.split():
@@ -136,11 +142,13 @@ def verify_webhook(
             except (binascii.Error, ValueError):
                 continue
     if not offered:
-        raise WebhookRejected("webhook-signature holds no v1 signature")
+        raise WebhookRejected("webhook-signature holds no v1 signature", "no-signature")
     content = f"{webhook_id}.{timestamp}.".encode() + body
     for secret in secrets_to_try:
         expected = hmac.new(_key(secret), content, hashlib.sha256).digest()
         # Check every offered signature, so timing does not tell which one was close.
         if any([hmac.compare_digest(expected, candidate) for candidate in offered]):
             return
-    raise WebhookRejected("no signature matches the survey's webhook secret")
+    raise WebhookRejected(
+        "no signature matches the survey's webhook secret", "signature-mismatch"
+    )

@@ -6,6 +6,7 @@ Bad values fail when the settings are built (at start-up), never at the first re
 from __future__ import annotations
 
 from functools import lru_cache
+from typing import Literal
 
 from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -50,6 +51,17 @@ class Settings(BaseSettings):
     )
     page_limit_max: int = Field(default=1000, ge=1, description="Largest `limit` of a page.")
     log_level: str = Field(default="info", description="Log level of `heedful serve`.")
+    log_format: Literal["json", "text"] = Field(
+        default="json", description="`json`: one JSON object per log line; `text`: plain lines."
+    )
+    metrics_token: str | None = Field(
+        default=None,
+        min_length=16,
+        description=(
+            "Bearer token that `GET /metrics` requires. Unset: `/metrics` answers requests from "
+            "the loopback address only."
+        ),
+    )
 
     @field_validator("database_url")
     @classmethod

@@ -139,6 +139,7 @@ async def post_responses(
                 for p in error.problems
             ],
         ) from None
+    request.app.state.metrics.count_ingested(ingested)
     reply = ingested.reply()
     # The reply is built by the use case in the documented shape; it is sent as it is, since a
     # second validation of thousands of result rows would cost more than the screening.
