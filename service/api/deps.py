@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from .. import store
 from ..database import Database
+from ..metrics import Metrics
 from ..models import Role
 from ..problems import Problem
 from ..security import token_lookup, tokens_match
@@ -19,6 +20,7 @@ __all__ = [
     "Caller",
     "DatabaseDep",
     "SettingsDep",
+    "MetricsDep",
     "authenticate",
     "authenticate_in",
     "require",
@@ -38,8 +40,13 @@ async def get_settings(request: Request) -> Settings:
     return request.app.state.settings
 
 
+async def get_metrics(request: Request) -> Metrics:
+    return request.app.state.metrics
+
+
 DatabaseDep = Annotated[Database, Depends(get_database)]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
+MetricsDep = Annotated[Metrics, Depends(get_metrics)]
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,7 @@ from starlette.background import BackgroundTask
 
 from .. import exports
 from .common import errors
-from .deps import DatabaseDep, Reader
+from .deps import DatabaseDep, MetricsDep, Reader
 from .surveys import survey_or_404
 
 router = APIRouter(tags=["exports"])
@@ -62,6 +62,7 @@ def export_survey(
     survey: str,
     caller: Reader,
     database: DatabaseDep,
+    metrics: MetricsDep,
     fmt: Annotated[
         ExportFormat,
         Query(alias="format", description="csv, parquet, sav (SPSS) or dta (Stata)."),
@@ -79,9 +80,10 @@ def export_survey(
         with database.read() as session:
             found = survey_or_404(session, survey)
             name = f"{found.survey}{exports.SUFFIXES[fmt]}"
-            summary = exports.write_export(
-                session, found, fmt, folder / name, without=without or ()
-            )
+            with metrics.job("export"):
+                summary = exports.write_export(
+                    session, found, fmt, folder / name, without=without or ()
+                )
     except BaseException:
         shutil.rmtree(folder, ignore_errors=True)
         raise

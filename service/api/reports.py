@@ -7,7 +7,7 @@ from fastapi.responses import HTMLResponse
 
 from ..reports import build_report
 from .common import EVIDENCE_NOTE, errors
-from .deps import DatabaseDep, Reader
+from .deps import DatabaseDep, MetricsDep, Reader
 from .surveys import survey_or_404
 
 router = APIRouter(tags=["reports"])
@@ -42,10 +42,13 @@ router = APIRouter(tags=["reports"])
         }
     }),
 )
-def survey_report(survey: str, caller: Reader, database: DatabaseDep) -> HTMLResponse:
+def survey_report(
+    survey: str, caller: Reader, database: DatabaseDep, metrics: MetricsDep
+) -> HTMLResponse:
     with database.read() as session:
         found = survey_or_404(session, survey)
-        page = build_report(session, found)
+        with metrics.job("report"):
+            page = build_report(session, found)
     return HTMLResponse(page)
 
 

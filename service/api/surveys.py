@@ -33,7 +33,7 @@ from ..schemas import (
     VersionInfo,
 )
 from .common import EVIDENCE_NOTE, errors, read_json
-from .deps import Admin, DatabaseDep, Reader, SettingsDep, authenticate
+from .deps import Admin, DatabaseDep, MetricsDep, Reader, SettingsDep, authenticate
 
 router = APIRouter(tags=["surveys"])
 
@@ -253,11 +253,12 @@ def rotate_webhook_secret(
     responses=errors(401, 403, 404),
 )
 def rescreen_survey(
-    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep
+    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep, metrics: MetricsDep
 ) -> RescreenReply:
     with database.write() as session:
         found = survey_or_404(session, survey)
-        return RescreenReply.model_validate(rescreen(session, found, settings).reply())
+        with metrics.job("rescreen"):
+            return RescreenReply.model_validate(rescreen(session, found, settings).reply())
 
 
 @router.get(

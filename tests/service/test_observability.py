@@ -77,8 +77,12 @@ def test_metrics_count_posts_flags_refusals_and_requests(service, survey):
     }
     assert flags_raised  # the straightliner raises at least one flag
 
+    report = service.client.get("/v1/surveys/pulse/report", headers=admin)
+    assert report.status_code == 200
     text = service.client.get("/metrics", headers=admin).text
     got = samples(text)
+    assert got[("heedful_jobs_total", (("kind", "report"), ("outcome", "done")))] == 1
+    assert got[("heedful_job_duration_seconds_count", (("kind", "report"),))] == 1
     assert got[("heedful_respondents_total", (("outcome", "stored"),))] == 2
     assert got[("heedful_respondents_total", (("outcome", "duplicate"),))] == 1
     for name in flags_raised:
