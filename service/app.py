@@ -18,6 +18,7 @@ from .api import detectors, exports, health, metrics, reports, respondents, resp
 from .database import Database
 from .db import make_engine, upgrade
 from .ingest_queue import IngestQueue
+from .limits import Limits
 from .metrics import Metrics
 from .observability import RequestContext
 from .schemas import ProblemOut
@@ -84,6 +85,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.settings = settings
     app.state.database = database
     app.state.ingest_queue = ingest_queue
+    app.state.limits = Limits(settings)
     app.state.metrics = Metrics()
     app.state.metrics.watch_queue(ingest_queue.depth)
     app.add_middleware(RequestContext, metrics=app.state.metrics)

@@ -8,7 +8,10 @@ the command line prints them. ::
      ├── UnknownSurvey        no survey registered under this id
      ├── NoVersion            the survey has no registered version
      ├── RespondentConflict   respondents already stored with other answers (no replace)
-     └── SignatureRefused     a webhook signature that does not verify
+     ├── SignatureRefused     a webhook signature that does not verify
+     ├── TooManyRequests      a caller over its rate limit, or an address over its budget of
+     │                        failed credentials
+     └── WriterBusy           too many posts already wait for the writer
 """
 
 from __future__ import annotations
@@ -22,6 +25,8 @@ __all__ = [
     "RespondentConflict",
     "Conflict",
     "SignatureRefused",
+    "TooManyRequests",
+    "WriterBusy",
     "CONFLICT_REASON",
 ]
 
@@ -74,3 +79,26 @@ class SignatureRefused(ServiceError):
         self.reason = reason
         self.code = code  # a short word for logs and metrics (security.WebhookRejected.code)
         super().__init__(f"The webhook signature was refused: {reason}.")
+
+
+class TooManyRequests(ServiceError):
+    def __init__(self, code: str, retry_after: int):
+        self.code = code  # rate-limit or failed-credentials
+        self.retry_after = retry_after
+        what = (
+            "This key (or, for signed posts, this survey) is over its rate limit"
+            if code == "rate-limit"
+            else "Too many wrong keys or signatures came from this address"
+        )
+        super().__init__(f"{what}; try again in {retry_after} s.")
+
+
+class WriterBusy(ServiceError):
+    def __init__(self, waiting_posts: int, waiting_respondents: int, retry_after: int):
+        self.waiting_posts = waiting_posts
+        self.waiting_respondents = waiting_respondents
+        self.retry_after = retry_after
+        super().__init__(
+            f"{waiting_posts} post(s) with {waiting_respondents} respondent(s) already wait to be "
+            f"stored; nothing was stored. Try again in {retry_after} s."
+        )

@@ -47,7 +47,7 @@ from .outcomes import (
 )
 from .schemas import ResponseIn
 from .screeners import Screener, reference_data, screener_for
-from .security import WebhookRejected, verify_webhook
+from .security import WebhookRejected, check_webhook_headers, verify_webhook
 from .settings import Settings
 
 __all__ = [
@@ -71,6 +71,7 @@ __all__ = [
     "read_credentials",
     "forget_credentials",
     "check_signature",
+    "check_signature_headers",
 ]
 
 _ROWS = TypeAdapter(list[ResponseIn])
@@ -429,6 +430,17 @@ def check_signature(
             credentials.candidates(dt.datetime.now(dt.UTC)), *signature, body,
             settings.webhook_tolerance_seconds,
         )
+    except WebhookRejected as error:
+        raise SignatureRefused(error.reason, error.code) from None
+
+
+def check_signature_headers(
+    signature: tuple[str | None, str | None, str | None], settings: Settings
+) -> None:
+    """The checks of a signed delivery that need no body (headers, timestamp). Raises
+    ``SignatureRefused``."""
+    try:
+        check_webhook_headers(*signature, settings.webhook_tolerance_seconds)
     except WebhookRejected as error:
         raise SignatureRefused(error.reason, error.code) from None
 

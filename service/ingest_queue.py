@@ -12,9 +12,9 @@ from __future__ import annotations
 
 import datetime as dt
 import logging
-import queue
 import threading
 import time
+from collections import deque
 from concurrent.futures import Future
 from dataclasses import dataclass
 
@@ -22,6 +22,7 @@ from sqlalchemy.exc import DBAPIError, IntegrityError
 
 from . import store
 from .database import Database
+from .errors import WriterBusy
 from .ingest import DEFERRED, Submission, ingest_many
 from .settings import Settings
 
@@ -31,6 +32,12 @@ log = logging.getLogger("heedful.service")
 
 #: Bounds of one group: posts, and respondents over all its posts.
 MAX_POSTS, MAX_ROWS = 256, 20_000
+#: A post of at most this many respondents goes in the fast lane: every group takes the waiting
+#: fast-lane posts first, so a single response waits behind at most the one group being written.
+SMALL_POST = 100
+#: Respondents of large posts (batches) one group takes at most (a group always takes one large
+#: post when one waits, so batches are never starved either).
+LARGE_ROWS_PER_GROUP = 10_000
 #: Rounds per group for submissions deferred behind an earlier one touching the same respondent.
 MAX_ROUNDS = MAX_POSTS
 #: How often accepted webhook ids older than twice the timestamp tolerance are forgotten
@@ -45,31 +52,52 @@ class _Job:
 
 
 class IngestQueue:
-    """A writer thread fed by :meth:`submit`; start it lazily, :meth:`close` it at shutdown."""
+    """A writer thread fed by :meth:`submit`; start it lazily, :meth:`close` it at shutdown.
+
+    Posts wait in two lanes (small posts and batches); at most ``max_waiting_posts`` posts and
+    ``max_waiting_respondents`` respondents wait at once, beyond which :meth:`submit` raises
+    ``WriterBusy``.
+    """
 
     def __init__(self, database: Database, settings: Settings):
         self.database = database
         self.settings = settings
-        self._queue: queue.Queue[_Job | None] = queue.Queue()
+        self._small: deque[_Job] = deque()
+        self._large: deque[_Job] = deque()
+        self._waiting_rows = 0
+        self._closing = False
+        self._ready = threading.Condition()
         self._thread: threading.Thread | None = None
         self._lock = threading.Lock()
         self._pruned_at = time.monotonic()
 
     def submit(self, submission: Submission) -> Future:
+        """Queue a post for the writer; raises ``WriterBusy`` when too much already waits."""
         future: Future = Future()
+        rows = len(submission.rows)
         self._ensure_started()
-        self._queue.put(_Job(submission, future))
+        with self._ready:
+            posts = len(self._small) + len(self._large)
+            if posts >= self.settings.max_waiting_posts or (
+                posts and self._waiting_rows + rows > self.settings.max_waiting_respondents
+            ):
+                raise WriterBusy(posts, self._waiting_rows, retry_after=1 + posts // 500)
+            (self._small if rows <= SMALL_POST else self._large).append(_Job(submission, future))
+            self._waiting_rows += rows
+            self._ready.notify()
         return future
 
     def depth(self) -> int:
-        """Posts waiting for the writer (approximate, as any queue size read from outside)."""
-        return self._queue.qsize()
+        """Posts waiting for the writer (not counting the group being written)."""
+        return len(self._small) + len(self._large)
 
     def close(self, timeout: float = 30.0) -> None:
         with self._lock:
             thread, self._thread = self._thread, None
         if thread is not None:
-            self._queue.put(None)
+            with self._ready:
+                self._closing = True
+                self._ready.notify()
             thread.join(timeout)
 
     def _ensure_started(self) -> None:
@@ -77,32 +105,46 @@ class IngestQueue:
             return
         with self._lock:
             if self._thread is None:
+                self._closing = False
                 self._thread = threading.Thread(
                     target=self._run, name="heedful-ingest", daemon=True
                 )
                 self._thread.start()
 
-    def _run(self) -> None:
-        while True:
-            first = self._queue.get()
-            if first is None:
-                return
-            group, rows = [first], len(first.submission.rows)
-            stop = False
-            while len(group) < MAX_POSTS and rows < MAX_ROWS:
-                try:
-                    job = self._queue.get_nowait()
-                except queue.Empty:
-                    break
-                if job is None:
-                    stop = True
-                    break
+    def _next_group(self) -> list[_Job] | None:
+        """The waiting small posts first, then batches within the group's bounds; None when
+        closing with nothing left to write."""
+        with self._ready:
+            while not self._small and not self._large:
+                if self._closing:
+                    return None
+                self._ready.wait()
+            group: list[_Job] = []
+            rows = 0
+            while self._small and len(group) < MAX_POSTS and rows < MAX_ROWS:
+                job = self._small.popleft()
                 group.append(job)
                 rows += len(job.submission.rows)
+            large_rows = 0
+            while self._large and len(group) < MAX_POSTS:
+                size = len(self._large[0].submission.rows)
+                taken_one = large_rows > 0
+                if taken_one and (large_rows + size > LARGE_ROWS_PER_GROUP
+                                  or rows + size > MAX_ROWS):
+                    break
+                group.append(self._large.popleft())
+                large_rows += size
+                rows += size
+            self._waiting_rows -= rows
+            return group
+
+    def _run(self) -> None:
+        while True:
+            group = self._next_group()
+            if group is None:
+                return
             self._process(group)
             self._maybe_prune()
-            if stop:
-                return
 
     def _maybe_prune(self) -> None:
         if time.monotonic() - self._pruned_at < PRUNE_EVERY_SECONDS:

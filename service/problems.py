@@ -28,7 +28,9 @@ from .errors import (
     RespondentConflict,
     ServiceError,
     SignatureRefused,
+    TooManyRequests,
     UnknownSurvey,
+    WriterBusy,
 )
 
 __all__ = [
@@ -172,6 +174,17 @@ def from_service(error: ServiceError) -> Problem:
         problem = Problem(401, str(error), kind="bad-signature")
         problem.cause = error.code
         return problem
+    if isinstance(error, TooManyRequests):
+        problem = Problem(
+            429, str(error), kind="too-many-requests",
+            headers={"Retry-After": str(error.retry_after)},
+        )
+        problem.cause = error.code
+        return problem
+    if isinstance(error, WriterBusy):
+        return Problem(
+            503, str(error), kind="writer-busy", headers={"Retry-After": str(error.retry_after)}
+        )
     return Problem(422, str(error), kind="invalid-input")
 
 

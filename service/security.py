@@ -99,17 +99,21 @@ class WebhookRejected(Exception):
         super().__init__(reason)
 
 
-def verify_webhook(
-    secrets_to_try: Iterable[str],
+#: The refusal of a signature that verifies under none of the survey's secrets (also given for
+#: a survey that does not exist, so that forged posts cannot list surveys).
+NO_MATCH = "no signature matches the survey's webhook secret"
+
+
+def check_webhook_headers(
     webhook_id: str | None,
     timestamp: str | None,
     signature_header: str | None,
-    body: bytes,
     tolerance_seconds: int,
     now: float | None = None,
-) -> None:
-    """Raise :class:`WebhookRejected` unless one ``v1`` signature verifies under one secret and
-    the timestamp lies within ``tolerance_seconds`` of now (either way)."""
+) -> list[bytes]:
+    """What can be checked before the body is read: the three headers are present, the
+    timestamp lies within ``tolerance_seconds`` of now (either way), and at least one ``v1``
+    signature is offered. Returns the offered signatures; raises :class:`WebhookRejected`."""
     missing = [
         name
         for name, value in (
@@ -143,12 +147,25 @@ def verify_webhook(
                 continue
     if not offered:
         raise WebhookRejected("webhook-signature holds no v1 signature", "no-signature")
+    return offered
+
+
+def verify_webhook(
+    secrets_to_try: Iterable[str],
+    webhook_id: str | None,
+    timestamp: str | None,
+    signature_header: str | None,
+    body: bytes,
+    tolerance_seconds: int,
+    now: float | None = None,
+) -> None:
+    """Raise :class:`WebhookRejected` unless one ``v1`` signature verifies under one secret and
+    the timestamp lies within ``tolerance_seconds`` of now (either way)."""
+    offered = check_webhook_headers(webhook_id, timestamp, signature_header, tolerance_seconds, now)
     content = f"{webhook_id}.{timestamp}.".encode() + body
     for secret in secrets_to_try:
         expected = hmac.new(_key(secret), content, hashlib.sha256).digest()
         # Check every offered signature, so timing does not tell which one was close.
         if any([hmac.compare_digest(expected, candidate) for candidate in offered]):
             return
-    raise WebhookRejected(
-        "no signature matches the survey's webhook secret", "signature-mismatch"
-    )
+    raise WebhookRejected(NO_MATCH, "signature-mismatch")

@@ -51,6 +51,29 @@ class Settings(BaseSettings):
     )
     page_limit_max: int = Field(default=1000, ge=1, description="Largest `limit` of a page.")
     log_level: str = Field(default="info", description="Log level of `heedful serve`.")
+    rate_limit_per_second: float = Field(
+        default=1000.0, ge=0,
+        description="Requests a second each key (for signed posts: each survey) may make on "
+        "average; 0 switches the limit off.",
+    )
+    rate_limit_burst: int = Field(
+        default=2000, ge=1, description="Requests a key may make at once above its rate."
+    )
+    failed_auth_per_second: float = Field(
+        default=1.0, ge=0,
+        description="Wrong keys or signatures a second a client address may present on average "
+        "once its burst is used; 0 switches the limit off.",
+    )
+    failed_auth_burst: int = Field(
+        default=50, ge=1, description="Wrong keys or signatures an address may present at once."
+    )
+    max_waiting_posts: int = Field(
+        default=2000, ge=1, description="Posts that may wait for the writer; more get 503."
+    )
+    max_waiting_respondents: int = Field(
+        default=250_000, ge=1,
+        description="Respondents that may wait for the writer over all posts; more get 503.",
+    )
     log_format: Literal["json", "text"] = Field(
         default="json", description="`json`: one JSON object per log line; `text`: plain lines."
     )

@@ -28,8 +28,10 @@ _DESCRIPTIONS = {
     409: "Conflict with stored data",
     413: "Body too large or too many respondents",
     415: "Body is not JSON",
-    422: "Invalid input; `errors` lists every field at fault",
-    503: "Database unreachable",
+    422: "Invalid input; `errors` lists the fields at fault (the first 100 of a post's, with "
+    "`problem_count`)",
+    429: "Over the key's rate limit, or too many wrong keys from this address; see Retry-After",
+    503: "Database unreachable, or too many posts waiting for the writer; see Retry-After",
 }
 
 
@@ -37,8 +39,10 @@ def errors(
     *codes: int, also: Mapping[int | str, dict[str, Any]] | None = None
 ) -> dict[int | str, dict[str, Any]]:
     """OpenAPI responses entries: those of ``also`` (another success reply, say), then problem
-    documents with these status codes."""
+    documents with these status codes (and 429 and 503 where a caller is checked)."""
     entries: dict[int | str, dict[str, Any]] = dict(also or {})
+    if 401 in codes:  # whoever checks a caller may refuse one over its limits, or be unavailable
+        codes = tuple(sorted({*codes, 429, 503}))
     for code in codes:
         entries[code] = {
             "description": _DESCRIPTIONS[code],

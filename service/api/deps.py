@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from .. import store
 from ..database import Database
+from ..limits import Limits
 from ..metrics import Metrics
 from ..models import Role
 from ..problems import Problem
@@ -91,7 +92,16 @@ def require(*roles: Role):
     allowed = set(roles) | {Role.ADMIN}
 
     def dependency(request: Request, database: DatabaseDep) -> Caller:
-        caller = authenticate(database, request.headers.get("authorization"))
+        limits: Limits = request.app.state.limits
+        address = request.client.host if request.client else None
+        limits.check_address(address)
+        try:
+            caller = authenticate(database, request.headers.get("authorization"))
+        except Problem as refused:
+            if refused.status == 401:
+                limits.failed(address)
+            raise
+        limits.admit(caller.name)
         if caller.role not in allowed:
             names = ", ".join(sorted(r.value for r in allowed))
             raise Problem(

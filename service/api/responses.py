@@ -12,26 +12,32 @@ from fastapi.concurrency import run_in_threadpool
 from detectors import ResponseDataError
 
 from ..database import Database
+from ..errors import SignatureRefused, UnknownSurvey
 from ..ingest import (
     BodyFieldProblem,
     IngestOptions,
     Submission,
     WebhookCredentials,
     check_signature,
+    check_signature_headers,
     read_credentials,
     remembered_credentials,
 )
 from ..ingest_queue import IngestQueue
+from ..limits import Limits
 from ..models import Role
 from ..problems import Problem, field_error
 from ..schemas import IngestReply, ResponseIn
+from ..security import NO_MATCH
 from ..settings import Settings
 from .common import errors, parse_json, read_body
-from .deps import SettingsDep, authenticate
+from .deps import Caller, SettingsDep, authenticate
 
 router = APIRouter(tags=["responses"])
 
 _FIELDS = set(ResponseIn.model_fields)
+#: Problems a 422 reply lists at most (``problem_count`` says how many there were).
+MAX_LISTED_PROBLEMS = 100
 
 
 @router.post(
@@ -103,41 +109,63 @@ async def post_responses(
 ) -> Response:
     headers = request.headers
     signed = "webhook-signature" in headers or "webhook-id" in headers
-    authorization = headers.get("authorization")
-    body = await read_body(request, settings.max_body_bytes)
-    document = parse_json(body, headers.get("content-type"))
-    rows, batch = _rows_of(document, settings)
     database = request.app.state.database
-    options = IngestOptions(replace=replace, partial=partial)
+    limits: Limits = request.app.state.limits
+    address = request.client.host if request.client else None
+    # The caller is checked before the body is parsed: a key before the body is read; a
+    # signature's headers, timestamp and survey before it, its digest right after.
+    limits.check_address(address)
     if signed:
         signature = (
             headers.get("webhook-id"), headers.get("webhook-timestamp"),
             headers.get("webhook-signature"),
         )
-        # Checked before the post is queued, so forged posts never occupy the writer; with the
-        # survey's secrets in memory (read less than a few seconds ago), without a thread.
-        credentials = remembered_credentials(database.memo, survey)
-        if credentials is None:
-            credentials = await run_in_threadpool(_read_credentials, database, survey)
-        check_signature(credentials, signature, body, settings)
+        try:
+            # With the survey's secrets in memory (read less than a few seconds ago), without
+            # a thread; an unknown survey is refused like a wrong signature, so that forged
+            # posts cannot tell which surveys exist.
+            credentials = remembered_credentials(database.memo, survey)
+            if credentials is None:
+                credentials = await run_in_threadpool(_read_credentials, database, survey)
+            check_signature_headers(signature, settings)
+            body = await read_body(request, settings.max_body_bytes)
+            check_signature(credentials, signature, body, settings)
+        except SignatureRefused:
+            limits.failed(address)
+            raise
+        limits.admit(f"survey:{survey}")
         options = IngestOptions(replace=replace, partial=partial, webhook_id=signature[0])
     else:
-        await run_in_threadpool(_authorize, database, authorization)
+        try:
+            caller = await run_in_threadpool(_authorize, database, headers.get("authorization"))
+        except Problem as refused:
+            if refused.status == 401:
+                limits.failed(address)
+            raise
+        limits.admit(caller.name)
+        body = await read_body(request, settings.max_body_bytes)
+        options = IngestOptions(replace=replace, partial=partial)
+    document = parse_json(body, headers.get("content-type"))
+    rows, batch = _rows_of(document, settings)
     queue: IngestQueue = request.app.state.ingest_queue
     try:
         ingested = await asyncio.wrap_future(queue.submit(Submission(survey, rows, options)))
     except ResponseDataError as error:
+        listed = error.problems[:MAX_LISTED_PROBLEMS]
+        more = len(error.problems) - len(listed)
         raise Problem(
             422,
-            f"{len(error.problems)} problem(s) in the responses; nothing was stored.",
+            f"{len(error.problems)} problem(s) in the responses; nothing was stored."
+            + (f" The first {len(listed)} are listed." if more else ""),
             kind="invalid-responses",
             errors=[
                 field_error(
                     _pointer(batch, p), p.reason, row=p.row,
                     respondent_id=p.respondent_id, item=p.column,
                 )
-                for p in error.problems
+                for p in listed
             ],
+            problem_count=len(error.problems),
         ) from None
     request.app.state.metrics.count_ingested(ingested)
     reply = ingested.reply()
@@ -149,10 +177,13 @@ async def post_responses(
 
 def _read_credentials(database: Database, survey: str) -> WebhookCredentials:
     with database.read() as session:
-        return read_credentials(session, survey)
+        try:
+            return read_credentials(session, survey)
+        except UnknownSurvey:
+            raise SignatureRefused(NO_MATCH, "unknown-survey") from None
 
 
-def _authorize(database: Any, authorization: str | None) -> None:
+def _authorize(database: Any, authorization: str | None) -> Caller:
     caller = authenticate(database, authorization)
     if caller.role not in (Role.INGEST, Role.ADMIN):
         raise Problem(
@@ -161,6 +192,7 @@ def _authorize(database: Any, authorization: str | None) -> None:
             "or admin key.",
             kind="forbidden",
         )
+    return caller
 
 
 def _rows_of(document: Any, settings: Settings) -> tuple[list[Any], bool]:

@@ -152,7 +152,10 @@ def test_refused_signatures_and_keys_never_reach_the_writer(service, survey, mon
         "/v1/surveys/nowhere/responses", content=body,
         headers=signed_headers(survey["webhook_secret"], body),
     )
-    assert unknown.status_code == 404 and unknown.json()["type"] == "/problems/unknown-survey"
+    # A signed post to a survey that does not exist is refused like a wrong signature, word for
+    # word, so that forged posts cannot tell which surveys exist.
+    assert unknown.status_code == 401 and unknown.json()["type"] == "/problems/bad-signature"
+    assert unknown.json()["detail"] == forged.json()["detail"]
     analyst = service.client.post(
         URL, content=body, headers={**service.auth(service.analyst), "content-type": JSON}
     )
