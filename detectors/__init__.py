@@ -23,7 +23,16 @@ if TYPE_CHECKING:
     )
     from .instrument import Instrument, Item, ResponseFormat
     from .lint import LintNote, lint
-    from .responses import MISSING, CheckedResponses, ResponseMatrix, matrix_from_frame
+    from .responses import (
+        MISSING,
+        CheckedAnswers,
+        CheckedIds,
+        CheckedResponses,
+        ResponseMatrix,
+        check_answers,
+        check_respondent_ids,
+        matrix_from_frame,
+    )
     from .screening import Screening, build_detectors, fit_references, screen
 
 
@@ -40,6 +49,8 @@ _ORIGINS = {
     "LintNote": ".lint", "lint": ".lint",
     "MISSING": ".responses", "CheckedResponses": ".responses",
     "ResponseMatrix": ".responses", "matrix_from_frame": ".responses",
+    "CheckedAnswers": ".responses", "CheckedIds": ".responses",
+    "check_answers": ".responses", "check_respondent_ids": ".responses",
     "Screening": ".screening", "build_detectors": ".screening",
     "fit_references": ".screening", "screen": ".screening",
 }
@@ -58,6 +69,8 @@ __all__ = [
     "FAMILIES",
     "MISSING",
     "REGISTRY",
+    "CheckedAnswers",
+    "CheckedIds",
     "CheckedResponses",
     "Detector",
     "DetectorResult",
@@ -76,6 +89,8 @@ __all__ = [
     "SettingError",
     "State",
     "build_detectors",
+    "check_answers",
+    "check_respondent_ids",
     "fit_references",
     "get_detector",
     "lint",

@@ -2,12 +2,15 @@
 
 Answers are kept as 8-bit integer codes with :data:`MISSING` for an unanswered item, so a
 million respondents by fifty items takes 50 MB and the detectors can compare whole columns.
-:func:`matrix_from_frame` builds a matrix from a table (CSV, Parquet, the service's batches)
-and checks every cell, reporting all problems with their row and column.
+:func:`check_answers` holds the rules every input path shares (ids non-empty and unique,
+answers whole numbers within their item's range), reporting every problem with its row,
+respondent and item; :func:`matrix_from_frame` reads a table (CSV, Parquet, SPSS) into numbers
+and builds a matrix through it, and the service checks posted rows through it.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import TYPE_CHECKING
@@ -20,7 +23,16 @@ from .instrument import Instrument
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["MISSING", "ResponseMatrix", "CheckedResponses", "matrix_from_frame"]
+__all__ = [
+    "MISSING",
+    "ResponseMatrix",
+    "CheckedResponses",
+    "CheckedIds",
+    "CheckedAnswers",
+    "check_respondent_ids",
+    "check_answers",
+    "matrix_from_frame",
+]
 
 #: Code of an unanswered item (never a valid answer: codes lie in -50..59).
 MISSING = np.int8(-128)
@@ -116,6 +128,180 @@ class CheckedResponses:
     problems: list[ResponseProblem]
 
 
+@dataclass(frozen=True)
+class CheckedIds:
+    """Respondent ids as checked: stripped, with the rows whose id is empty or repeated."""
+
+    respondent_ids: np.ndarray  # object, shape (n,): stripped ids, None where empty
+    invalid: np.ndarray  # bool, shape (n,)
+    problems: list[ResponseProblem]  # in row order
+
+
+@dataclass(frozen=True)
+class CheckedAnswers:
+    """Answers checked against an instrument: codes, invalid rows and their problems."""
+
+    respondent_ids: np.ndarray | None  # as in :class:`CheckedIds`; None when ids were not given
+    answers: np.ndarray  # int8, shape (n, k): codes, MISSING where unanswered or invalid
+    invalid: np.ndarray  # bool, shape (n,): rows with at least one problem
+    problems: list[ResponseProblem]  # by row; in a row the id first, then items in order
+
+
+#: Rows listed in a repeated id's message before "...".
+_ROWS_SHOWN = 5
+
+
+def _row_numbers(rows: np.ndarray | Sequence[int] | None, n: int) -> np.ndarray:
+    numbers = np.arange(1, n + 1) if rows is None else np.asarray(rows, dtype=np.int64)
+    if numbers.shape != (n,):
+        raise ValueError(f"one row number is needed per respondent; got {numbers.shape}")
+    return numbers
+
+
+def check_respondent_ids(
+    respondent_ids: Sequence[object] | np.ndarray | pd.Series,
+    *,
+    rows: np.ndarray | Sequence[int] | None = None,
+    id_column: str = "respondent_id",
+) -> CheckedIds:
+    """Check respondent ids: none empty, none repeated.
+
+    Parameters
+    ----------
+    respondent_ids : sequence of str (None, NaN or blank = empty), shape (n,)
+        Surrounding white space is not part of an id.
+    rows : sequence of int, optional
+        The 1-based row number to name for each id (default 1..n).
+    id_column : str
+        The column or field named in the problems.
+
+    Returns
+    -------
+    CheckedIds
+        Every row of a repeated id is invalid, each named with all the rows of its id.
+    """
+    import pandas as pd
+
+    raw = respondent_ids if isinstance(respondent_ids, pd.Series) else pd.Series(
+        np.asarray(respondent_ids, dtype=object)
+    )
+    ids = raw.astype("string").str.strip()
+    n = len(ids)
+    numbers = _row_numbers(rows, n)
+    empty = (ids.isna() | (ids == "")).to_numpy(dtype=bool)
+    duplicated = ids.duplicated(keep=False).to_numpy(dtype=bool) & ~empty
+    stripped = ids.to_numpy(dtype=object)
+    stripped[empty] = None  # also replaces pandas' NA
+    found: list[tuple[int, ResponseProblem]] = [
+        (r, ResponseProblem(int(numbers[r]), None, id_column, "respondent id is empty"))
+        for r in np.flatnonzero(empty).tolist()
+    ]
+    if duplicated.any():
+        # Messages are built for the repeated rows only.
+        where: dict[str, list[int]] = {}
+        for r in np.flatnonzero(duplicated).tolist():
+            where.setdefault(stripped[r], []).append(r)
+        for rid, group in where.items():
+            shown = ", ".join(str(numbers[r]) for r in group[:_ROWS_SHOWN])
+            more = " ..." if len(group) > _ROWS_SHOWN else ""
+            reason = f"respondent id {rid!r} appears more than once (rows {shown}{more})"
+            found += [(r, ResponseProblem(int(numbers[r]), rid, id_column, reason)) for r in group]
+    found.sort(key=lambda entry: entry[0])
+    return CheckedIds(
+        respondent_ids=stripped, invalid=empty | duplicated, problems=[p for _, p in found]
+    )
+
+
+def check_answers(
+    instrument: Instrument,
+    answers: np.ndarray,
+    respondent_ids: Sequence[object] | np.ndarray | pd.Series | None = None,
+    *,
+    rows: np.ndarray | Sequence[int] | None = None,
+    id_column: str = "respondent_id",
+) -> CheckedAnswers:
+    """Check answers (and respondent ids) against an instrument; the one place for these rules.
+
+    An answer must be a whole number within its item's answer range; an id must be non-empty
+    and appear once (:func:`check_respondent_ids`). Reading cells into numbers (text, true or
+    false) is the caller's part.
+
+    Parameters
+    ----------
+    instrument : Instrument
+    answers : ndarray of float, shape (n, k)
+        One column per item in the instrument's order; NaN where unanswered.
+    respondent_ids : sequence of str, shape (n,), optional
+        When None, ids are not checked and problems name no respondent.
+    rows, id_column
+        As for :func:`check_respondent_ids`.
+
+    Returns
+    -------
+    CheckedAnswers
+        The codes (invalid cells left MISSING), the invalid rows, and every problem with its
+        row, respondent and item.
+
+    Examples
+    --------
+    >>> from detectors import parse_instrument
+    >>> instrument = parse_instrument({
+    ...     "survey": "demo", "response_format": {"points": 5, "lowest": 1},
+    ...     "items": [{"id": "q1", "text": "One.", "scale": "s"},
+    ...               {"id": "q2", "text": "Two.", "scale": "s"}]})
+    >>> checked = check_answers(instrument, np.array([[1, 2.5], [8, np.nan]]), ["a", "b"])
+    >>> for problem in checked.problems:
+    ...     print(problem)
+    row 1, respondent 'a', column 'q2': not a whole number: 2.5
+    row 2, respondent 'b', column 'q1': 8 is outside the answer range 1..5
+    >>> checked.invalid.tolist()
+    [True, True]
+    """
+    values = np.asarray(answers, dtype=np.float64)
+    items = instrument.item_ids
+    if values.ndim != 2 or values.shape[1] != len(items):
+        raise ValueError(f"answers must have shape (n, {len(items)}); got {values.shape}")
+    n = values.shape[0]
+    numbers = _row_numbers(rows, n)
+    ids = None if respondent_ids is None else check_respondent_ids(
+        respondent_ids, rows=numbers, id_column=id_column
+    )
+    lowest, highest = instrument.lowest, instrument.highest
+    present = ~np.isnan(values)
+    fractional = present & (values != np.round(values))
+    outside = present & ~fractional & ((values < lowest) | (values > highest))
+    good = present & ~fractional & ~outside
+    codes = np.full(values.shape, MISSING, dtype=np.int8)
+    codes[good] = values[good].astype(np.int8)
+    invalid = (fractional | outside).any(axis=1)
+    if ids is not None:
+        invalid |= ids.invalid
+
+    # Messages for the bad cells only, ordered by row, then the id, then the items.
+    found: list[tuple[int, int, ResponseProblem]] = []
+    if ids is not None:
+        found += [(p.row or 0, -1, p) for p in ids.problems]
+    named = None if ids is None else ids.respondent_ids
+
+    def cell(r: int, j: int, reason: str) -> tuple[int, int, ResponseProblem]:
+        rid = None if named is None else named[r]
+        return (int(numbers[r]), j, ResponseProblem(int(numbers[r]), rid, items[j], reason))
+
+    for r, j in zip(*np.nonzero(fractional), strict=True):
+        found.append(cell(int(r), int(j), f"not a whole number: {values[r, j]:g}"))
+    for r, j in zip(*np.nonzero(outside), strict=True):
+        found.append(
+            cell(
+                int(r), int(j),
+                f"{values[r, j]:g} is outside the answer range {lowest[j]}..{highest[j]}",
+            )
+        )
+    found.sort(key=lambda entry: entry[:2])
+    return CheckedAnswers(
+        respondent_ids=named, answers=codes, invalid=invalid, problems=[p for *_, p in found]
+    )
+
+
 def matrix_from_frame(
     instrument: Instrument,
     frame: pd.DataFrame,
@@ -124,6 +310,9 @@ def matrix_from_frame(
     skip_invalid: bool = False,
 ) -> CheckedResponses:
     """Check a table of responses and convert it into a :class:`ResponseMatrix`.
+
+    Cells are read into numbers here; ids and answers are then checked by
+    :func:`check_answers`.
 
     Parameters
     ----------
@@ -166,91 +355,66 @@ def matrix_from_frame(
         raise ResponseDataError(table_problems)
 
     n = len(frame)
-    raw_ids = frame[id_column]
-    ids = raw_ids.astype("string").str.strip()
-    row_reasons: dict[int, list[tuple[str | None, str]]] = {}
-
-    def add(rows: np.ndarray, column: str | None, reasons: list[str] | str) -> None:
-        for position, row in enumerate(rows.tolist()):
-            text = reasons if isinstance(reasons, str) else reasons[position]
-            row_reasons.setdefault(row, []).append((column, text))
-
-    empty_id = (ids.isna() | (ids == "")).to_numpy()
-    add(np.flatnonzero(empty_id), id_column, "respondent id is empty")
-    duplicated = ids.duplicated(keep=False).to_numpy() & ~empty_id
-    if duplicated.any():
-        rows = np.flatnonzero(duplicated)
-        first_row = pd.Series(rows, index=ids.to_numpy()[rows]).groupby(level=0).transform("min")
-        add(
-            rows,
-            id_column,
-            [
-                f"respondent id {ids.iloc[r]!r} appears more than once (first at row {f + 1})"
-                for r, f in zip(rows.tolist(), first_row.to_numpy().tolist(), strict=True)
-            ],
-        )
-
-    answers = np.full((n, len(items)), MISSING, dtype=np.int8)
-    lowest, highest = instrument.lowest, instrument.highest
+    # Cells that cannot be read as numbers: (row, column order, column, reason).
+    unread: list[tuple[int, int, str, str]] = []
+    values = np.full((n, len(items)), np.nan)
     for j, item_id in enumerate(items):
         column = frame[item_id]
         if column.dtype == object or pd.api.types.is_string_dtype(column.dtype):
             text = column.astype("string").str.strip()
             blank = text.isna() | (text == "")
-            values = pd.to_numeric(text.where(~blank), errors="coerce").to_numpy(dtype=np.float64)
-            not_number = np.isnan(values) & ~blank.to_numpy()
-            if not_number.any():
-                rows = np.flatnonzero(not_number)
-                add(rows, item_id, [f"not a number: {text.iloc[r]!r}" for r in rows.tolist()])
-        elif pd.api.types.is_bool_dtype(column.dtype):
-            rows = np.arange(n)
-            add(rows, item_id, "answers must be whole numbers, not true/false")
-            continue
-        else:
-            values = column.to_numpy(dtype=np.float64, na_value=np.nan)
-        present = ~np.isnan(values)
-        fractional = present & (values != np.round(values))
-        if fractional.any():
-            rows = np.flatnonzero(fractional)
-            add(rows, item_id, [f"not a whole number: {values[r]:g}" for r in rows.tolist()])
-        outside = present & ~fractional & ((values < lowest[j]) | (values > highest[j]))
-        if outside.any():
-            rows = np.flatnonzero(outside)
-            add(
-                rows,
-                item_id,
-                [f"{values[r]:g} is outside the answer range {lowest[j]}..{highest[j]}" for r in rows.tolist()],
+            values[:, j] = pd.to_numeric(text.where(~blank), errors="coerce").to_numpy(
+                dtype=np.float64
             )
-        good = present & ~fractional & ~outside
-        answers[good, j] = values[good].astype(np.int8)
+            not_number = np.isnan(values[:, j]) & ~blank.to_numpy()
+            unread += [
+                (r, j, item_id, f"not a number: {text.iloc[r]!r}")
+                for r in np.flatnonzero(not_number).tolist()
+            ]
+        elif pd.api.types.is_bool_dtype(column.dtype):
+            unread += [
+                (r, j, item_id, "answers must be whole numbers, not true/false") for r in range(n)
+            ]
+        else:
+            values[:, j] = column.to_numpy(dtype=np.float64, na_value=np.nan)
 
     durations = None
     if duration_column and duration_column in columns:
         durations = pd.to_numeric(frame[duration_column], errors="coerce").to_numpy(dtype=np.float64)
         given = frame[duration_column].notna().to_numpy()
         bad = given & (np.isnan(durations) | (durations < 0))
-        if bad.any():
-            rows = np.flatnonzero(bad)
-            add(rows, duration_column, "duration must be a number of seconds >= 0")
+        unread += [
+            (r, len(items), duration_column, "duration must be a number of seconds >= 0")
+            for r in np.flatnonzero(bad).tolist()
+        ]
 
-    problems = [
-        ResponseProblem(row + 1, None if empty_id[row] else str(ids.iloc[row]), column, reason)
-        for row in sorted(row_reasons)
-        for column, reason in row_reasons[row]
+    checked = check_answers(instrument, values, frame[id_column], id_column=id_column)
+    ids = checked.respondent_ids
+    assert ids is not None
+    order = {item_id: j for j, item_id in enumerate(items)}
+    found = [
+        (p.row - 1, order.get(p.column or "", -1), p)
+        for p in checked.problems
+        if p.row is not None
     ]
+    found += [(r, j, ResponseProblem(r + 1, ids[r], c, t)) for r, j, c, t in unread]
+    found.sort(key=lambda entry: entry[:2])
+    problems = [p for *_, p in found]
     if problems and not skip_invalid:
         raise ResponseDataError(problems)
 
+    row_reasons: dict[int, list[str]] = {}
+    for r, _, p in found:
+        row_reasons.setdefault(r, []).append(f"{p.column}: {p.reason}" if p.column else p.reason)
+    bad_rows = sorted(row_reasons)
     keep = np.ones(n, dtype=bool)
-    keep[list(row_reasons)] = False
-    rejected = frame.iloc[sorted(row_reasons)].copy()
-    rejected.insert(0, "row", [r + 1 for r in sorted(row_reasons)])
-    rejected["reason"] = [
-        "; ".join(f"{c}: {t}" if c else t for c, t in row_reasons[r]) for r in sorted(row_reasons)
-    ]
+    keep[bad_rows] = False
+    rejected = frame.iloc[bad_rows].copy()
+    rejected.insert(0, "row", [r + 1 for r in bad_rows])
+    rejected["reason"] = ["; ".join(row_reasons[r]) for r in bad_rows]
     matrix = ResponseMatrix(
-        respondent_ids=ids.to_numpy(dtype=object)[keep],
-        answers=answers[keep],
+        respondent_ids=ids[keep],
+        answers=checked.answers[keep],
         durations=None if durations is None else durations[keep],
     )
     return CheckedResponses(matrix=matrix, rejected=rejected, problems=problems)

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from detectors import ResponseDataError, ResponseProblem
+from detectors import ResponseDataError, ResponseProblem, check_respondent_ids
 
 from . import store
 from .errors import CONFLICT_REASON, RespondentConflict
@@ -107,23 +107,6 @@ def posted_rows(
     return rows
 
 
-def _duplicate_ids(ids: pd.Series) -> dict[int, str]:
-    """0-based row -> reason, for every row whose (non-empty) id appears more than once."""
-    text = ids.astype("string").str.strip()
-    repeated = text.duplicated(keep=False) & text.notna() & (text != "")
-    out = {}
-    if repeated.any():
-        rows = np.flatnonzero(repeated.to_numpy())
-        groups: dict[str, list[int]] = {}
-        for row in rows.tolist():
-            groups.setdefault(str(text.iloc[row]), []).append(row)
-        for rid, where in groups.items():
-            listed = ", ".join(str(r + 1) for r in where[:5]) + (" ..." if len(where) > 5 else "")
-            for row in where:
-                out[row] = f"respondent id {rid!r} appears more than once in the file (rows {listed})"
-    return out
-
-
 def import_table(
     database: Any,
     survey_id: str,
@@ -168,18 +151,14 @@ def import_table(
         )
         problems: list[ResponseProblem] = []
         conflicts = 0
-        duplicated = _duplicate_ids(frame[id_column])
-        if duplicated and not partial:
-            problems += [
-                ResponseProblem(row + 1, str(frame[id_column].iloc[row]), id_column, reason)
-                for row, reason in sorted(duplicated.items())
-            ]
-        for row, reason in sorted(duplicated.items()) if partial else []:
-            report.rejected.append(
-                {"row": row + 1, "respondent_id": str(frame[id_column].iloc[row]),
-                 "problems": [{"item": id_column, "reason": reason}]}
-            )
-        file_rows = [r for r in range(len(frame)) if r not in duplicated]
+        # Ids are checked over the whole file (a repeated id may lie in two batches); rows with
+        # a bad id are not posted.
+        ids = check_respondent_ids(frame[id_column], id_column=id_column)
+        if partial:
+            report.rejected += _rejected(ids.problems)
+        else:
+            problems += ids.problems
+        file_rows = np.flatnonzero(~ids.invalid).tolist()
         options = IngestOptions(replace=replace, partial=partial)
         for start in range(0, len(file_rows), batch_size):
             # Rows become posted dicts a batch at a time (a million at once would not fit).
@@ -228,3 +207,14 @@ def import_table(
             raise ImportRefused(problems, conflicts)  # leaving the block rolls back
         report.rejected.sort(key=lambda r: r["row"])
         return report
+
+
+def _rejected(problems: list[ResponseProblem]) -> list[dict[str, Any]]:
+    """Rejected rows as the report lists them, from problems in row order."""
+    rows: dict[int | None, dict[str, Any]] = {}
+    for p in problems:
+        entry = rows.setdefault(
+            p.row, {"row": p.row, "respondent_id": p.respondent_id, "problems": []}
+        )
+        entry["problems"].append({"item": p.column, "reason": p.reason})
+    return list(rows.values())

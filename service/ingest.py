@@ -21,7 +21,7 @@ import numpy as np
 from pydantic import TypeAdapter, ValidationError
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, ResponseDataError, ResponseMatrix, ResponseProblem
+from detectors import ResponseDataError, ResponseMatrix, ResponseProblem, check_answers
 
 from . import store
 from .answers import answers_of, encode
@@ -98,8 +98,22 @@ class BodyFieldProblem(ResponseProblem):
     so that its JSON pointer names the field itself."""
 
 
+def _leaves_to_library(raw: Any, loc: list[str], kind: str, items: Mapping[str, int]) -> bool:
+    """Whether a schema error is one the library's checks name in their own words, so a post
+    and a file get the same reason: a blank respondent id, a fractional answer to an item."""
+    if not isinstance(raw, dict):
+        return False
+    if loc == ["respondent_id"]:
+        return kind == "string_too_short" and isinstance(raw.get("respondent_id"), str)
+    answers = raw.get("answers")
+    return (
+        len(loc) == 2 and loc[0] == "answers" and loc[1] in items and isinstance(answers, dict)
+        and _fractional(answers.get(loc[1]))
+    )
+
+
 def _schema_problems(
-    raw_rows: Sequence[Any],
+    raw_rows: Sequence[Any], items: Mapping[str, int]
 ) -> tuple[dict[int, ResponseIn], list[ResponseProblem]]:
     try:
         return dict(enumerate(_ROWS.validate_python(raw_rows))), []
@@ -111,10 +125,11 @@ def _schema_problems(
         try:
             good[position] = _ROW.validate_python(raw)
         except ValidationError as error:
-            rid = raw.get("respondent_id") if isinstance(raw, dict) else None
-            rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
+            rid = _given_id(raw)
             for entry in error.errors():
                 loc = [str(p) for p in entry["loc"]]
+                if _leaves_to_library(raw, loc, entry["type"], items):
+                    continue
                 if loc and loc[0] == "answers" and len(loc) > 1:
                     problems.append(ResponseProblem(position + 1, rid, loc[1], entry["msg"]))
                 else:
@@ -123,56 +138,46 @@ def _schema_problems(
     return good, problems
 
 
-def _answer_problems(
-    screener: Screener, position: int, respondent_id: str | None, answers: dict[str, Any]
-) -> list[ResponseProblem]:
-    """Unknown items and answers out of range in one row's answers (its type errors are
-    reported by the schema), so that a row failing the schema still has every problem listed."""
-    index, instrument = screener.item_index, screener.instrument
-    problems = []
-    for item, value in answers.items():
-        if item not in index:
-            problems.append(
-                ResponseProblem(
-                    position + 1, respondent_id, item,
-                    f"unknown item: not in version {screener.number} of survey "
-                    f"{instrument.survey!r}",
-                )
-            )
-            continue
-        j = index[item]
-        if isinstance(value, int) and not isinstance(value, bool) and not (
-            instrument.lowest[j] <= value <= instrument.highest[j]
-        ):
-            problems.append(
-                ResponseProblem(
-                    position + 1, respondent_id, item,
-                    f"{value:g} is outside the answer range "
-                    f"{instrument.lowest[j]}..{instrument.highest[j]}",
-                )
-            )
-    return problems
+def _given_id(raw: Any) -> str | None:
+    """The respondent id of a row the schema refused, if it is text (stripped; None if blank)."""
+    rid = raw.get("respondent_id") if isinstance(raw, dict) else None
+    return rid.strip() or None if isinstance(rid, str) else None
+
+
+def _fractional(value: Any) -> bool:
+    return isinstance(value, float) and bool(np.isfinite(value)) and value != round(value)
+
+
+def _number(value: Any) -> float | None:
+    """A posted answer the library's checks judge: an integer, or a finite number with a
+    fractional part (a whole float is left to the schema, which takes integers only)."""
+    if isinstance(value, int) and not isinstance(value, bool):
+        return float(value)
+    return value if _fractional(value) else None
 
 
 def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int) -> Checked:
     """Validate posted rows against the schema and the survey version's items; build the matrix
-    of the valid ones. Problems name the row (1-based), the respondent and the item."""
-    parsed, problems = _schema_problems(raw_rows)
-    instrument = screener.instrument
-    for position, raw in enumerate(raw_rows):
-        if position in parsed or not isinstance(raw, dict):
-            continue
-        answers = raw.get("answers")
-        if isinstance(answers, dict):
-            rid = raw.get("respondent_id")
-            rid = rid.strip() if isinstance(rid, str) and rid.strip() else None
-            problems.extend(
-                _answer_problems(screener, position, rid, {str(k): v for k, v in answers.items()})
-            )
-    seen: dict[str, int] = {}
-    for position, row in parsed.items():
-        unknown = dict.fromkeys(sorted(row.answers.keys() - screener.item_index.keys()))
-        problems.extend(_answer_problems(screener, position, row.respondent_id, unknown))
+    of the valid ones. Problems name the row (1-based), the respondent and the item.
+
+    The schema (types, fields) and the size of ``meta`` are checked here; respondent ids and
+    answers go through the library's :func:`detectors.check_answers`, as a file's rows do."""
+    parsed, problems = _schema_problems(raw_rows, screener.item_index)
+    instrument, index = screener.instrument, screener.item_index
+    items = instrument.item_ids
+    n = len(raw_rows)
+    positions = sorted(parsed)
+    rows = [parsed[p] for p in positions]
+    values = np.full((n, len(items)), np.nan)
+    values[positions] = np.array(
+        [list(map(row.answers.get, items)) for row in rows], dtype=np.float64
+    ).reshape(len(rows), len(items))
+    ids: list[str | None] = [None] * n
+    for position, row in zip(positions, rows, strict=True):
+        ids[position] = row.respondent_id
+        unknown = row.answers.keys() - index.keys()
+        if unknown:
+            problems += _unknown_items(screener, position, row.respondent_id, sorted(unknown))
         if row.meta is not None and max_meta_bytes >= 0:
             size = len(json.dumps(row.meta, separators=(",", ":")).encode("utf-8"))
             if size > max_meta_bytes:
@@ -182,53 +187,64 @@ def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int)
                         f"meta is {size} bytes as JSON; at most {max_meta_bytes} are accepted",
                     )
                 )
-        if row.respondent_id in seen:
-            first = seen[row.respondent_id]
-            for where in (first, position):
-                problems.append(
-                    ResponseProblem(
-                        where + 1, row.respondent_id, "respondent_id",
-                        f"respondent id appears more than once in this post (rows {first + 1} "
-                        f"and {position + 1})",
-                    )
-                )
+    # A row the schema refused still has its id and answers checked, so that every problem of
+    # it is listed and its id counts when looking for repeated ones.
+    id_refused: set[int] = set()
+    for position, raw in enumerate(raw_rows if len(parsed) < n else ()):
+        if position in parsed:
+            continue
+        given = raw.get("respondent_id") if isinstance(raw, dict) else None
+        if isinstance(given, str):
+            ids[position] = given
         else:
-            seen[row.respondent_id] = position
-    positions = sorted(parsed)
-    rows = [parsed[p] for p in positions]
-    items = instrument.item_ids
-    values = np.array(
-        [[row.answers.get(item) for item in items] for row in rows], dtype=np.float64
-    ).reshape(len(rows), len(items))
-    present = ~np.isnan(values)
-    outside = present & ((values < instrument.lowest) | (values > instrument.highest))
-    for r, j in zip(*np.nonzero(outside), strict=True):
-        problems.append(
-            ResponseProblem(
-                positions[r] + 1,
-                rows[r].respondent_id,
-                items[j],
-                f"{values[r, j]:g} is outside the answer range "
-                f"{instrument.lowest[j]}..{instrument.highest[j]}",
-            )
-        )
-    values[~present | outside] = MISSING
+            id_refused.add(position)  # the schema has named it (missing, or not text)
+        answers = raw.get("answers") if isinstance(raw, dict) else None
+        if not isinstance(answers, dict):
+            continue
+        answers = {str(k): v for k, v in answers.items()}
+        not_items = [item for item in answers if item not in index]
+        problems += _unknown_items(screener, position, _given_id(raw), not_items)
+        for item, value in answers.items():
+            number = _number(value) if item in index else None
+            if number is not None:
+                values[position, index[item]] = number
+    checked = check_answers(instrument, values, ids)
+    problems += [
+        p for p in checked.problems
+        if not (p.row is not None and p.row - 1 in id_refused and p.column == "respondent_id")
+    ]
+    problems.sort(key=lambda p: (p.row or 0))
     bad = {p.row - 1 for p in problems if p.row is not None}
     keep = np.array([p not in bad for p in positions], dtype=bool)
+    kept = np.asarray(positions, dtype=np.intp)[keep]
     durations = np.array([seconds_taken(row) for row in rows], dtype=np.float64)
     matrix = ResponseMatrix(
         respondent_ids=np.array([row.respondent_id for row in rows], dtype=object)[keep],
-        answers=values.astype(np.int8)[keep],
+        answers=checked.answers[kept],
         durations=durations[keep],
     )
-    problems.sort(key=lambda p: (p.row or 0))
     return Checked(
         rows=[row for row, k in zip(rows, keep.tolist(), strict=True) if k],
-        positions=[p for p, k in zip(positions, keep.tolist(), strict=True) if k],
+        positions=kept.tolist(),
         matrix=matrix,
         problems=problems,
         bad_positions=bad,
     )
+
+
+def _unknown_items(
+    screener: Screener, position: int, respondent_id: str | None, unknown: Sequence[str]
+) -> list[ResponseProblem]:
+    """Answers to items the survey version does not have (a post names items per row; a file's
+    columns are checked as a whole)."""
+    return [
+        ResponseProblem(
+            position + 1, respondent_id, item,
+            f"unknown item: not in version {screener.number} of survey "
+            f"{screener.instrument.survey!r}",
+        )
+        for item in unknown
+    ]
 
 
 def answers_digest(answers: Mapping[str, int | None]) -> str:

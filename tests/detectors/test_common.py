@@ -144,7 +144,7 @@ def test_a_single_respondent_is_handled(name, data):
 #: Modules whose docstrings carry runnable examples (every detector, plus these).
 EXAMPLE_MODULES = sorted(
     {cls.__module__ for cls in REGISTRY.values()}
-    | {"detectors.scales", "detectors.reliability"}
+    | {"detectors.scales", "detectors.reliability", "detectors.responses"}
 )
 
 

@@ -42,7 +42,7 @@ def test_every_cell_problem_is_listed_with_row_and_column(inst):
     assert any(t.startswith("row 3, respondent 'a'") and "appears more than once" in t for t in text)
     assert any(t.startswith("row 1, respondent 'a'") and "appears more than once" in t for t in text)
     assert "row 4, column 'respondent_id': respondent id is empty" in text
-    assert "(first at row 1)" in str(caught.value)
+    assert "(rows 1, 3)" in str(caught.value)
 
 
 def test_message_shows_first_twenty_and_the_count(inst):

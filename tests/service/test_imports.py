@@ -140,7 +140,7 @@ def test_import_other_formats_and_invalid_rows(bfi, bfi_frame, bfi_survey, datab
                         "--database", database_url, "--batch-size", 7)
     assert code == 0 and "297 stored" in out and "3 rejected" in out
     assert f"row 11, respondent {frame.loc[10, 'respondent_id']!r}, C2: 7 is outside" in out
-    assert "row 22" in out and "appears more than once in the file (rows 21, 22)" in out
+    assert "row 22" in out and "appears more than once (rows 21, 22)" in out
     assert _count(bfi_survey) == 297
 
 
