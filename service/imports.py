@@ -3,7 +3,8 @@
 The file's rows go through the same use case as the webhook (``ingest.ingest``), in batches, so
 an import is checked, screened, stored and de-duplicated exactly like posted responses: the same
 respondent with the same answers is a duplicate, other answers under a stored respondent id are
-a conflict unless ``replace`` is given.
+a conflict unless ``replace`` is given. Respondent ids are checked over the whole file first
+(``detectors.check_respondent_ids``), so an id repeated across two batches is found too.
 
 The whole file is one transaction: by default any invalid row or conflict anywhere in the file
 means nothing is stored (every problem is reported); with ``partial`` the valid rows are stored

@@ -88,3 +88,42 @@ def test_from_arrays_rejects_bad_shape(inst):
 
     with pytest.raises(ValueError, match=r"shape \(n, 3\)"):
         ResponseMatrix.from_arrays(inst, np.ones((2, 4)))
+
+
+def test_check_answers_names_given_rows_and_leaves_bad_cells_missing(inst):
+    from detectors import check_answers
+
+    values = np.array([[1, 5, np.nan], [0, 2.5, 3], [4, 4, 4]])
+    checked = check_answers(inst, values, ["a", " b ", "c"], rows=[10, 20, 30])
+    assert checked.answers.tolist() == [[1, 5, MISSING], [MISSING, MISSING, 3], [4, 4, 4]]
+    assert checked.answers.dtype == np.int8
+    assert checked.invalid.tolist() == [False, True, False]
+    assert checked.respondent_ids.tolist() == ["a", "b", "c"]
+    assert [str(p) for p in checked.problems] == [
+        "row 20, respondent 'b', column 'q01': 0 is outside the answer range 1..5",
+        "row 20, respondent 'b', column 'q02': not a whole number: 2.5",
+    ]
+    # Without ids, only the answers are checked and no respondent is named.
+    checked = check_answers(inst, values)
+    assert checked.respondent_ids is None and checked.invalid.tolist() == [False, True, False]
+    assert checked.problems[0].respondent_id is None and checked.problems[0].row == 2
+    with pytest.raises(ValueError, match=r"shape \(n, 3\)"):
+        check_answers(inst, np.ones((2, 4)))
+
+
+def test_a_repeated_id_names_its_first_five_rows_on_every_row():
+    from detectors import check_respondent_ids
+
+    ids = ["x"] * 7 + ["y", "", None, float("nan"), " y"]
+    checked = check_respondent_ids(ids, id_column="rid")
+    assert checked.invalid.tolist() == [True] * 12
+    reasons = {(p.row, p.respondent_id, p.column, p.reason) for p in checked.problems}
+    x_reason = "respondent id 'x' appears more than once (rows 1, 2, 3, 4, 5 ...)"
+    y_reason = "respondent id 'y' appears more than once (rows 8, 12)"
+    assert reasons == (
+        {(r, "x", "rid", x_reason) for r in range(1, 8)}
+        | {(8, "y", "rid", y_reason), (12, "y", "rid", y_reason)}
+        | {(r, None, "rid", "respondent id is empty") for r in (9, 10, 11)}
+    )
+    assert [p.row for p in checked.problems] == list(range(1, 13))
+    assert checked.respondent_ids.tolist()[7:] == ["y", None, None, None, "y"]
