@@ -267,13 +267,13 @@ def check_answers(
         respondent_ids, rows=numbers, id_column=id_column
     )
     lowest, highest = instrument.lowest, instrument.highest
-    present = ~np.isnan(values)
-    fractional = present & (values != np.round(values))
-    outside = present & ~fractional & ((values < lowest) | (values > highest))
-    good = present & ~fractional & ~outside
-    codes = np.full(values.shape, MISSING, dtype=np.int8)
-    codes[good] = values[good].astype(np.int8)
-    invalid = (fractional | outside).any(axis=1)
+    # Whole-array passes for every cell; the reasons are worked out on the bad rows only.
+    in_range = (values >= lowest) & (values <= highest)  # False where missing
+    truncated = np.where(in_range, values, 0).astype(np.int8)  # codes lie in -50..59
+    good = in_range & (truncated == values)
+    codes = np.where(good, truncated, MISSING)
+    invalid = (~good & ~np.isnan(values)).any(axis=1)
+    bad_rows = np.flatnonzero(invalid)
     if ids is not None:
         invalid |= ids.invalid
 
@@ -287,13 +287,17 @@ def check_answers(
         rid = None if named is None else named[r]
         return (int(numbers[r]), j, ResponseProblem(int(numbers[r]), rid, items[j], reason))
 
+    bad = values[bad_rows]
+    present = ~np.isnan(bad)
+    fractional = present & (bad != np.round(bad))
+    outside = present & ~fractional & ((bad < lowest) | (bad > highest))
     for r, j in zip(*np.nonzero(fractional), strict=True):
-        found.append(cell(int(r), int(j), f"not a whole number: {values[r, j]:g}"))
+        found.append(cell(int(bad_rows[r]), int(j), f"not a whole number: {bad[r, j]:g}"))
     for r, j in zip(*np.nonzero(outside), strict=True):
         found.append(
             cell(
-                int(r), int(j),
-                f"{values[r, j]:g} is outside the answer range {lowest[j]}..{highest[j]}",
+                int(bad_rows[r]), int(j),
+                f"{bad[r, j]:g} is outside the answer range {lowest[j]}..{highest[j]}",
             )
         )
     found.sort(key=lambda entry: entry[:2])
