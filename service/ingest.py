@@ -189,15 +189,18 @@ def check_rows(screener: Screener, raw_rows: Sequence[Any], max_meta_bytes: int)
                 )
     # A row the schema refused still has its id and answers checked, so that every problem of
     # it is listed and its id counts when looking for repeated ones.
-    id_refused: set[int] = set()
+    id_refused = {  # ids the schema has named (missing, not text, too long)
+        p.row - 1 for p in problems
+        if isinstance(p, BodyFieldProblem) and p.column == "respondent_id" and p.row is not None
+    }
     for position, raw in enumerate(raw_rows if len(parsed) < n else ()):
         if position in parsed:
             continue
         given = raw.get("respondent_id") if isinstance(raw, dict) else None
-        if isinstance(given, str):
+        if isinstance(given, str) and position not in id_refused:
             ids[position] = given
         else:
-            id_refused.add(position)  # the schema has named it (missing, or not text)
+            id_refused.add(position)
         answers = raw.get("answers") if isinstance(raw, dict) else None
         if not isinstance(answers, dict):
             continue
