@@ -5,7 +5,8 @@ takes all of them (up to a bound), screens their respondents together and writes
 transaction (``ingest.ingest_many``). Each post is answered only after that commit. Under load
 this spreads the fixed cost of a screening call and of a commit over many posts; a lone post is
 written at once. A post refused for its own reasons (bad rows, conflict, signature) does not
-affect the others of its group.
+affect the others of its group; a group whose write fails all the same is written again one post
+at a time, so that only the post at fault fails.
 """
 
 from __future__ import annotations
@@ -162,16 +163,16 @@ class IngestQueue:
         for _ in range(MAX_ROUNDS):
             try:
                 results = self._write([job.submission for job in pending])
-            except (IntegrityError, DBAPIError):
-                # Another process stored one of these respondents (or ids) first: write the
-                # posts one at a time, so each sees what is committed.
+            except Exception as error:
+                if len(pending) == 1 and not isinstance(error, IntegrityError | DBAPIError):
+                    log.error("ingestion failed: %s", type(error).__name__)
+                    pending[0].future.set_exception(error)
+                    return
+                # Another process stored one of these respondents (or ids) first, or one post
+                # holds what the database refuses: write the posts one at a time, so each sees
+                # what is committed and only the post at fault fails.
                 for job in pending:
                     self._one_at_a_time(job)
-                return
-            except Exception as error:  # a bug: every waiting post gets the error
-                log.error("ingestion failed: %s", type(error).__name__)
-                for job in pending:
-                    job.future.set_exception(error)
                 return
             waiting = []
             for job, result in zip(pending, results, strict=True):
@@ -200,6 +201,7 @@ class IngestQueue:
                     job.future.set_exception(error)
                 continue
             except Exception as error:
+                log.error("ingestion failed: %s", type(error).__name__)
                 job.future.set_exception(error)
                 return
             if isinstance(result, BaseException):

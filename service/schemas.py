@@ -5,7 +5,16 @@ from __future__ import annotations
 import datetime as dt
 from typing import Annotated, Any, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StrictInt, StringConstraints
+from pydantic import (
+    AfterValidator,
+    AwareDatetime,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StrictInt,
+    StringConstraints,
+    field_validator,
+)
 
 from .models import Decision, Verdict
 
@@ -63,6 +72,38 @@ CarelessScoreField = Annotated[
 RespondentId = Annotated[
     str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)
 ]
+#: Deepest nesting of objects and lists in a respondent's ``meta`` (the JSON writer used for
+#: storage stops at 254 levels; no survey platform needs more than a few).
+MAX_META_DEPTH = 64
+
+
+def _representable_in_utc(value: dt.datetime) -> dt.datetime:
+    """Times are stored in UTC: refuse one whose UTC reading falls outside years 1..9999."""
+    try:
+        value.astimezone(dt.UTC)
+    except OverflowError:
+        raise ValueError(
+            "time is outside the years 1..9999 when converted to UTC"
+        ) from None
+    return value
+
+
+ZonedTime = Annotated[AwareDatetime, AfterValidator(_representable_in_utc)]
+
+
+def meta_depth(value: Any) -> int:
+    """How deeply objects and lists nest in ``value`` (a scalar is 0), without recursion."""
+    if not isinstance(value, dict | list):
+        return 0
+    deepest, stack = 0, [(value, 1)]
+    while stack:
+        node, depth = stack.pop()
+        children = node.values() if isinstance(node, dict) else node
+        deepest = max(deepest, depth)
+        if deepest > MAX_META_DEPTH:
+            break
+        stack.extend((child, depth + 1) for child in children if isinstance(child, dict | list))
+    return deepest
 
 
 # Ingestion ---------------------------------------------------------------------------------------
@@ -90,12 +131,21 @@ class ResponseIn(BaseModel):
     answers: dict[str, StrictInt | None] = Field(
         description="Item id to the answer code; null or an absent item is unanswered."
     )
-    started_at: AwareDatetime | None = None
-    submitted_at: AwareDatetime | None = None
+    started_at: ZonedTime | None = None
+    submitted_at: ZonedTime | None = None
     duration_seconds: float | None = Field(default=None, ge=0)
     meta: dict[str, Any] | None = Field(
-        default=None, description="Small free-form object, stored but never logged or screened."
+        default=None,
+        description="Small free-form object, stored but never logged or screened; objects and "
+        f"lists nested at most {MAX_META_DEPTH} levels deep.",
     )
+
+    @field_validator("meta")
+    @classmethod
+    def _not_too_deep(cls, value: dict[str, Any] | None) -> dict[str, Any] | None:
+        if value is not None and meta_depth(value) > MAX_META_DEPTH:
+            raise ValueError(f"meta nests objects and lists more than {MAX_META_DEPTH} levels deep")
+        return value
 
 
 class BatchIn(BaseModel):

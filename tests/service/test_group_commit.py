@@ -7,6 +7,7 @@ import json
 import threading
 
 import numpy as np
+import pytest
 from sqlalchemy import func, select
 
 from detectors import REGISTRY, ResponseDataError, ResponseMatrix, State, parse_instrument, screen
@@ -186,3 +187,82 @@ def test_screeners_belong_to_their_database(tmp_path):
     finally:
         for database in databases:
             database.dispose()
+
+
+def _nested(levels: int) -> dict:
+    meta: dict = {}
+    for _ in range(levels - 1):
+        meta = {"a": meta}
+    return meta
+
+
+def _grouped(queue: IngestQueue, submissions: list[ingest.Submission]) -> list:
+    """Submit posts while the writer is held, so that they are written as one group."""
+    hold = threading.Event()
+    original = queue._write
+
+    def held(group):
+        hold.wait(30)
+        return original(group)
+
+    queue._write = held  # type: ignore[method-assign]
+    blocker = queue.submit(ingest.Submission("pulse", random_rows(1, prefix="first")))
+    futures = [queue.submit(submission) for submission in submissions]
+    hold.set()
+    blocker.result(timeout=60)
+    outcomes_ = []
+    for future in futures:
+        try:
+            outcomes_.append(future.result(timeout=60))
+        except Exception as error:  # noqa: BLE001 - the refusal is the outcome under test
+            outcomes_.append(error)
+    queue.close()
+    return outcomes_
+
+
+BAD_FIELDS = {
+    # The time leaves years 1..9999 once converted to UTC (stored in UTC).
+    "submitted_at": {"submitted_at": "0001-01-01T00:00:00+01:00"},
+    "started_at": {"started_at": "9999-12-31T23:30:00-01:00"},
+    # The JSON writer used for storage stops at 254 levels.
+    "meta": {"meta": _nested(300)},
+}
+
+
+@pytest.mark.parametrize("field", sorted(BAD_FIELDS))
+def test_a_bad_post_fails_alone_among_two_surveys(service, survey, settings, field):
+    other = make_document(survey="other")
+    reply = service.client.post("/v1/surveys", json=other, headers=service.auth(service.admin))
+    assert reply.status_code == 201, reply.text
+    rows = random_rows(6, seed=3)
+    bad = {**rows[5], "respondent_id": "culprit", **BAD_FIELDS[field]}
+    submissions = [
+        ingest.Submission("pulse" if i % 2 else "other", [row]) for i, row in enumerate(rows[:5])
+    ]
+    submissions.insert(2, ingest.Submission("pulse", [bad]))
+    outcomes_ = _grouped(IngestQueue(service.database, settings), submissions)
+    refused = outcomes_.pop(2)
+    assert isinstance(refused, ResponseDataError)
+    assert [p.column for p in refused.problems] == [field]
+    assert all(isinstance(o, ingest.Ingested) and o.stored == 1 for o in outcomes_), outcomes_
+    with service.database.read() as session:
+        assert session.scalar(select(func.count()).select_from(Respondent)) == 6
+    reply = service.client.post(URL, json=bad, headers=service.auth(service.ingest))
+    assert reply.status_code == 422, reply.text
+    assert reply.json()["errors"][0]["pointer"] == f"#/{field}"
+
+
+def test_an_unforeseen_failure_in_a_group_fails_only_its_post(service, survey, settings):
+    def fail_on_culprit(session, submissions, settings):
+        if any(row["respondent_id"] == "culprit" for s in submissions for row in s.rows):
+            raise RuntimeError("refused by the store")
+        return ingest.ingest_many(session, submissions, settings)
+
+    rows = random_rows(5, seed=4)
+    submissions = [ingest.Submission("pulse", [row]) for row in rows]
+    submissions.insert(1, ingest.Submission("pulse", [{**rows[0], "respondent_id": "culprit"}]))
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr("service.ingest_queue.ingest_many", fail_on_culprit)
+        outcomes_ = _grouped(IngestQueue(service.database, settings), submissions)
+    assert isinstance(outcomes_.pop(1), RuntimeError)
+    assert [o.stored for o in outcomes_] == [1] * 5
