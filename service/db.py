@@ -43,6 +43,18 @@ def utcnow() -> dt.datetime:
     return dt.datetime.now(dt.UTC)
 
 
+def storable_time(value: dt.datetime) -> dt.datetime:
+    """``value`` unchanged if it can be stored (a time zone, years 1..9999 once in UTC); else
+    ``ValueError`` saying why."""
+    if value.tzinfo is None or value.utcoffset() is None:
+        raise ValueError("time must carry a time zone")
+    try:
+        value.astimezone(dt.UTC)
+    except OverflowError:
+        raise ValueError("time is outside the years 1..9999 when converted to UTC") from None
+    return value
+
+
 class UTCDateTime(TypeDecorator[dt.datetime]):
     """A timestamp stored in UTC and always returned timezone-aware (SQLite keeps no zone)."""
 

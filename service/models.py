@@ -282,6 +282,10 @@ class Review(Base):
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
 
 
+#: Longest ``webhook-id`` kept (longer ones are refused before anything is stored).
+WEBHOOK_ID_LENGTH = 200
+
+
 class WebhookDelivery(Base):
     """Webhook ids already accepted, so a replayed delivery is answered as a duplicate."""
 
@@ -290,7 +294,7 @@ class WebhookDelivery(Base):
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
-    webhook_id: Mapped[str] = mapped_column(String(200))
+    webhook_id: Mapped[str] = mapped_column(String(WEBHOOK_ID_LENGTH))
     received_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), index=True)
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import unicodedata
 from typing import Annotated, Any, Literal
 
 from pydantic import (
@@ -16,6 +17,7 @@ from pydantic import (
     field_validator,
 )
 
+from .db import storable_time
 from .models import Decision, Verdict
 
 __all__ = [
@@ -53,6 +55,8 @@ __all__ = [
     "Health",
     "ProblemOut",
     "FieldErrorOut",
+    "ZonedTime",
+    "MAX_META_DEPTH",
 ]
 
 VerdictField = Annotated[
@@ -69,26 +73,32 @@ CarelessScoreField = Annotated[
         "[0, 1], combining the carelessness indices; null before a reference sample exists."
     ),
 ]
+
+
+def _printable_id(value: str) -> str:
+    """Refuse control and format characters (Unicode Cc, Cf: NUL, zero-width, bidi controls):
+    ids differing only by them look the same to a person, and NUL cannot be stored."""
+    for position, character in enumerate(value):
+        if unicodedata.category(character) in ("Cc", "Cf"):
+            raise ValueError(
+                f"respondent id holds a control or format character (U+{ord(character):04X}) "
+                f"at position {position + 1}"
+            )
+    return value
+
+
 RespondentId = Annotated[
-    str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)
+    str,
+    StringConstraints(strip_whitespace=True, min_length=1, max_length=200),
+    AfterValidator(_printable_id),
 ]
 #: Deepest nesting of objects and lists in a respondent's ``meta`` (the JSON writer used for
 #: storage stops at 254 levels; no survey platform needs more than a few).
 MAX_META_DEPTH = 64
 
 
-def _representable_in_utc(value: dt.datetime) -> dt.datetime:
-    """Times are stored in UTC: refuse one whose UTC reading falls outside years 1..9999."""
-    try:
-        value.astimezone(dt.UTC)
-    except OverflowError:
-        raise ValueError(
-            "time is outside the years 1..9999 when converted to UTC"
-        ) from None
-    return value
-
-
-ZonedTime = Annotated[AwareDatetime, AfterValidator(_representable_in_utc)]
+#: A time with a zone that can be stored in UTC.
+ZonedTime = Annotated[AwareDatetime, AfterValidator(storable_time)]
 
 
 def meta_depth(value: Any) -> int:

@@ -33,7 +33,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Session
 
-from .db import utcnow
+from .db import storable_time, utcnow
 from .models import (
     ApiKey,
     Decision,
@@ -407,17 +407,30 @@ class Cursor:
         field = sort.lstrip("-")
         try:
             if field == "received_at":
-                value = dt.datetime.fromisoformat(value)
+                value = storable_time(dt.datetime.fromisoformat(value))
             elif field == "flag_count":
-                value = int(value)
+                value = _within(int(value), LARGEST_SMALLINT)
             elif field == "careless_score":
                 value = float(value)
             else:
                 value = str(value)
-            pk = int(pk)
-        except (TypeError, ValueError) as error:
+                if "\x00" in value:
+                    raise ValueError("NUL in a respondent id")
+            pk = _within(int(pk), LARGEST_INT)
+        except (TypeError, ValueError, OverflowError) as error:
             raise BadCursor("the cursor is not one this service issued") from error
         return cls(sort, value, pk)
+
+
+#: Largest values of the SmallInteger and Integer columns (flag count, row id) compared with
+#: values from a request.
+LARGEST_SMALLINT, LARGEST_INT = 2**15 - 1, 2**31 - 1
+
+
+def _within(value: int, largest: int) -> int:
+    if not 0 <= value <= largest:
+        raise ValueError(f"{value} is outside 0..{largest}")
+    return value
 
 
 @dataclass(frozen=True)

@@ -8,7 +8,6 @@ from typing import Annotated, Literal
 from urllib.parse import urlencode
 
 from fastapi import APIRouter, Query, Request, Response
-from pydantic import AwareDatetime
 from sqlalchemy.orm import Session
 
 from detectors import REGISTRY
@@ -27,6 +26,7 @@ from ..schemas import (
     ReviewIn,
     ReviewOut,
     ScreeningHistoryEntry,
+    ZonedTime,
 )
 from .common import EVIDENCE_NOTE, errors
 from .deps import Admin, DatabaseDep, Reader, SettingsDep
@@ -94,12 +94,15 @@ def list_respondents(
         Query(description="Only this latest review decision; `none` for not yet reviewed."),
     ] = None,
     received_after: Annotated[
-        AwareDatetime | None, Query(description="Received at or after this time.")
+        ZonedTime | None, Query(description="Received at or after this time.")
     ] = None,
     received_before: Annotated[
-        AwareDatetime | None, Query(description="Received before this time.")
+        ZonedTime | None, Query(description="Received before this time.")
     ] = None,
-    min_flags: Annotated[int | None, Query(ge=0, description="At least this many flags.")] = None,
+    min_flags: Annotated[
+        int | None,
+        Query(ge=0, le=store.LARGEST_SMALLINT, description="At least this many flags."),
+    ] = None,
     verdict: Annotated[
         Literal["ok", "review", "likely_careless"] | None,
         Query(description="Only respondents with this verdict."),

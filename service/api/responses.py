@@ -25,7 +25,7 @@ from ..ingest import (
 )
 from ..ingest_queue import IngestQueue
 from ..limits import Limits
-from ..models import Role
+from ..models import WEBHOOK_ID_LENGTH, Role
 from ..problems import Problem, field_error
 from ..schemas import IngestReply, ResponseIn
 from ..security import NO_MATCH
@@ -109,6 +109,15 @@ async def post_responses(
 ) -> Response:
     headers = request.headers
     signed = "webhook-signature" in headers or "webhook-id" in headers
+    webhook_id = headers.get("webhook-id")
+    if webhook_id is not None and len(webhook_id) > WEBHOOK_ID_LENGTH:
+        raise Problem(
+            422,
+            f"The webhook-id header has {len(webhook_id)} characters; at most "
+            f"{WEBHOOK_ID_LENGTH} are accepted.",
+            kind="invalid-request",
+            errors=[field_error("header:webhook-id", f"at most {WEBHOOK_ID_LENGTH} characters")],
+        )
     database = request.app.state.database
     limits: Limits = request.app.state.limits
     address = request.client.host if request.client else None

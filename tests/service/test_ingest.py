@@ -6,6 +6,7 @@ from __future__ import annotations
 import time
 
 import numpy as np
+import pytest
 from sqlalchemy import func, select
 
 from detectors import REGISTRY, ResponseMatrix, parse_instrument, screen
@@ -313,3 +314,29 @@ def test_remembered_webhook_secrets_expire(monkeypatch):
     ingest.forget_credentials(memo, "pulse")
     assert ingest.remembered_credentials(memo, "pulse") is None
     assert ingest.remembered_credentials(memo, "other") is None
+
+
+@pytest.mark.parametrize(
+    "rid",
+    ["a\x00b", "v0001\u200b", "\u202ev0001", "v00\u200d01", "v\x07001"],
+    ids=["nul", "zero-width-space", "right-to-left-override", "zero-width-joiner", "bell"],
+)
+def test_control_and_format_characters_in_respondent_ids_are_refused(service, survey, rid):
+    reply = service.client.post(
+        URL, json=respondent(rid, [2, 4, 2, 4, 2, 4, 2, 4]), headers=service.auth(service.ingest)
+    )
+    assert reply.status_code == 422, reply.text
+    [error] = reply.json()["errors"]
+    assert error["pointer"] == "#/respondent_id" and "control or format" in error["detail"]
+    assert _count(service, Respondent) == 0
+
+
+def test_an_overlong_webhook_id_is_refused(service, survey):
+    body = body_of(respondent("w1", [2, 4, 2, 4, 2, 4, 2, 4]))
+    headers = signed_headers(survey["webhook_secret"], body, webhook_id="m" * 201)
+    reply = service.client.post(URL, content=body, headers=headers)
+    assert reply.status_code == 422, reply.text
+    assert [e["pointer"] for e in reply.json()["errors"]] == ["header:webhook-id"]
+    longest = signed_headers(survey["webhook_secret"], body, webhook_id="m" * 200)
+    assert service.client.post(URL, content=body, headers=longest).status_code == 201
+    assert _count(service, WebhookDelivery) == 1

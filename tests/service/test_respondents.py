@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import base64
 import csv
 import datetime as dt
 import io
+import json
 
 import pytest
 from sqlalchemy import func, select
@@ -99,6 +101,36 @@ def test_bad_queries_are_problems(service, filled):
     assert service.client.get(
         f"{BASE}/respondents", headers={**reader, "Accept": "image/png"}
     ).status_code == 406
+
+
+def _cursor(*parts) -> str:
+    raw = json.dumps(list(parts)).encode()
+    return base64.urlsafe_b64encode(raw).decode().rstrip("=")
+
+
+@pytest.mark.parametrize(
+    ("params", "pointer"),
+    [
+        ({"min_flags": 2**63}, "query:min_flags"),
+        ({"received_after": "0001-01-01T00:00:00+01:00"}, "query:received_after"),
+        ({"received_before": "9999-12-31T23:30:00-01:00"}, "query:received_before"),
+        ({"cursor": _cursor("-flag_count", 2**70, 1)}, "query:cursor"),
+        ({"cursor": _cursor("-flag_count", 1, 2**63)}, "query:cursor"),
+        ({"cursor": _cursor("-flag_count", 1, -1)}, "query:cursor"),
+        ({"sort": "received_at", "cursor": _cursor("received_at", "2027-01-01T00:00:00", 5)},
+         "query:cursor"),
+        ({"sort": "received_at", "cursor": _cursor("received_at", "0001-01-01T00:00+01:00", 5)},
+         "query:cursor"),
+        ({"sort": "respondent_id", "cursor": _cursor("respondent_id", "a\x00b", 5)},
+         "query:cursor"),
+    ],
+)
+def test_crafted_queries_are_refused_not_failed(service, filled, params, pointer):
+    reply = service.client.get(
+        f"{BASE}/respondents", params=params, headers=service.auth(service.analyst)
+    )
+    assert reply.status_code == 422, reply.text
+    assert [e["pointer"] for e in reply.json()["errors"]] == [pointer]
 
 
 def test_csv_has_the_same_rows_and_a_next_link(service, filled):
