@@ -3,13 +3,18 @@ register`` and the demo."""
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from typing import Any
 
 from . import store
 from .database import Database
 
-__all__ = ["Registration", "register_survey"]
+__all__ = ["Registration", "register_survey", "SURVEY_ID"]
+
+#: A survey id the service accepts: the instrument's id characters, starting with a letter or
+#: digit, so that it is a safe URL path segment and file name (never ``.`` or ``..``).
+SURVEY_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]*")
 
 
 @dataclass(frozen=True)
@@ -29,9 +34,20 @@ def register_survey(database: Database, document: Any) -> Registration:
     """Parse and check an instrument document (``InstrumentError`` names every problem), then
     store it: a new survey, a new version of a changed one, or nothing new when the same
     document is already the current version."""
-    from detectors import lint, parse_instrument
+    from detectors import InstrumentError, lint, parse_instrument
+    from detectors.errors import FieldProblem
 
     instrument = parse_instrument(document)
+    if not SURVEY_ID.fullmatch(instrument.survey):
+        raise InstrumentError(
+            [
+                FieldProblem(
+                    "survey",
+                    f"survey id {instrument.survey!r} must start with a letter or digit (it "
+                    "names the survey in URLs and file names)",
+                )
+            ]
+        )
     notes = lint(instrument)
     with database.write() as session:
         registered = store.register_version(

@@ -191,7 +191,7 @@ def _respondent_or_404(session, survey_id: int, survey: str, respondent: str):
 
 
 @router.get(
-    "/v1/surveys/{survey}/respondents/{respondent}",
+    "/v1/surveys/{survey}/respondents/{respondent:path}",
     operation_id="getRespondent",
     summary="A respondent's answers, every detector's result with evidence, reviews and history",
     description=(
@@ -265,7 +265,7 @@ def get_respondent(
 
 
 @router.post(
-    "/v1/surveys/{survey}/respondents/{respondent}/review",
+    "/v1/surveys/{survey}/respondents/{respondent:path}/review",
     operation_id="reviewRespondent",
     summary="Record a review decision (keep, exclude, undecided) with a note; append-only",
     description=(
@@ -296,7 +296,7 @@ def review_respondent(
 
 
 @router.delete(
-    "/v1/surveys/{survey}/respondents/{respondent}",
+    "/v1/surveys/{survey}/respondents/{respondent:path}",
     operation_id="eraseRespondent",
     summary="Erase a respondent's answers, results and review notes (keeps an audit line)",
     description=(

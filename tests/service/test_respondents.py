@@ -7,6 +7,7 @@ import csv
 import datetime as dt
 import io
 import json
+from urllib.parse import quote
 
 import pytest
 from sqlalchemy import func, select
@@ -267,3 +268,27 @@ def test_verdict_and_careless_score_after_a_reference(service, filled):
             assert reason.startswith("careless score"), reason
         else:
             assert reason.startswith("flagged by"), reason
+
+
+@pytest.mark.parametrize("rid", ["a/b", "x/review", "/lead", "trail/", "50%/100%", "q?a#b"])
+def test_ids_with_slashes_and_url_characters_can_be_read_reviewed_and_erased(
+    service, survey, rid
+):
+    reply = service.client.post(
+        f"{BASE}/responses", json={"respondent_id": rid, "answers": {"q01": 2, "q02": 4}},
+        headers=service.auth(service.ingest),
+    )
+    assert reply.status_code == 201, reply.text
+    path = f"{BASE}/respondents/{quote(rid, safe='')}"
+    detail = service.client.get(path, headers=service.auth(service.analyst))
+    assert detail.status_code == 200, detail.text
+    assert detail.json()["respondent_id"] == rid
+    review = service.client.post(
+        f"{path}/review", json={"decision": "keep", "note": "read"},
+        headers=service.auth(service.analyst),
+    )
+    assert review.status_code == 201, review.text
+    assert service.client.delete(path, headers=service.auth(service.admin)).status_code == 204
+    with service.database.read() as session:
+        assert session.scalar(select(func.count()).select_from(Respondent)) == 0
+        assert session.scalar(select(func.count()).select_from(Erasure)) == 1

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 from detectors import REGISTRY, lint, parse_instrument
 
 from .conftest import make_document, random_rows
@@ -58,6 +60,17 @@ def test_invalid_instrument_names_every_field(service):
                                                "content-type": "application/json"},
     )
     assert malformed.status_code == 400
+
+
+@pytest.mark.parametrize("survey_id", ["..", ".", ".hidden", "-rf", "_x"])
+def test_survey_ids_that_are_not_a_safe_slug_are_refused(service, survey_id):
+    reply = service.client.post(
+        "/v1/surveys", json=make_document(survey=survey_id), headers=service.auth(service.admin)
+    )
+    assert reply.status_code == 422, reply.text
+    assert [e["pointer"] for e in reply.json()["errors"]] == ["#/survey"]
+    listed = service.client.get("/v1/surveys", headers=service.auth(service.admin)).json()
+    assert listed["data"] == []
 
 
 def test_list_and_show_surveys_secret_for_admin_only(service, survey):
