@@ -55,7 +55,7 @@ from detectors.scales import scale_scores
 
 from . import store
 from .answers import matrix as stored_matrix
-from .files import write_atomic
+from .files import formula_safe, write_atomic
 from .models import Decision, Respondent, Survey, Verdict
 from .outcomes import assessed_scores
 from .screeners import Screener, screener_for
@@ -451,6 +451,8 @@ def _arrow_table(frame: pd.DataFrame, layout: ExportLayout, schema: Any, for_csv
                 pc.strftime(stamps, format="%Y-%m-%dT%H:%M:%SZ")  # type: ignore[arg-type]
                 if for_csv else stamps
             )
+        elif column.kind == "text" and for_csv:
+            array = formula_safe(pa.array(values, type=pa.string(), from_pandas=True))
         elif column.kind == "float" and for_csv:
             array = pa.array(values.to_numpy().round(CSV_DECIMALS), type=pa.float64())
         else:
@@ -472,7 +474,9 @@ def _write_streamed(
         if for_csv:
             # The header is written here, quoted only where needed (Arrow quotes every name).
             header = io.StringIO()
-            csv.writer(header, lineterminator="\n").writerow(schema.names)
+            csv.writer(header, lineterminator="\n").writerow(
+                [formula_safe(name) for name in schema.names]
+            )
             handle.write(header.getvalue().encode("utf-8"))
             writer: Any = pacsv.CSVWriter(
                 handle, schema,

@@ -12,7 +12,10 @@ import pandas as pd
 
 from detectors import ResponseDataError, ResponseProblem, Screening, State
 
-__all__ = ["read_table", "write_atomic", "screening_records", "write_screening", "OUTPUT_FORMATS"]
+__all__ = [
+    "read_table", "write_atomic", "screening_records", "write_screening", "OUTPUT_FORMATS",
+    "FORMULA_STARTS", "formula_safe",
+]
 
 OUTPUT_FORMATS = ("csv", "json", "parquet")
 #: Carried by every JSON screening document, which may travel far from the command line.
@@ -21,6 +24,11 @@ SCREENING_NOTE = (
     "verdict on a person: read the evidence before excluding anyone or withholding an "
     "incentive, and do not use them for automated decisions about people."
 )
+#: A text cell starting with one of these is taken for a formula by spreadsheet programs (CSV
+#: injection: ``=HYPERLINK(...)``, ``@SUM(A1)``); every CSV writer of the service puts a single
+#: quote before such a cell, which a spreadsheet shows as text. Common practice, no source.
+FORMULA_STARTS = "=+-@\t\r"
+_FORMULA_PATTERN = "^[=+\\-@\t\r]"
 _READERS = {
     ".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet",
     ".sav": "labelled", ".zsav": "labelled", ".dta": "labelled",
@@ -158,7 +166,8 @@ def write_screening(screening: Screening, out: str | Path, fmt: str) -> None:
 
 def write_csv(frame: pd.DataFrame, path: str | Path) -> None:
     """CSV through Arrow's writer (several times faster than pandas' on wide tables); scores
-    rounded to 6 decimals, missing values as empty cells, text quoted only where needed."""
+    rounded to 6 decimals, missing values as empty cells, text quoted only where needed and
+    made ``formula_safe``."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
@@ -166,8 +175,34 @@ def write_csv(frame: pd.DataFrame, path: str | Path) -> None:
     for column in rounded.columns:
         if rounded[column].dtype == np.float64:
             rounded[column] = rounded[column].round(6)
-    table = pa.Table.from_pandas(rounded, preserve_index=False)
+    table = _formula_safe_table(pa.Table.from_pandas(rounded, preserve_index=False))
     pacsv.write_csv(table, str(path), pacsv.WriteOptions(quoting_style="needed"))
+
+
+def formula_safe(values: Any) -> Any:
+    """Text cells for a CSV file, each starting with a quote where it would start a formula
+    (``FORMULA_STARTS``): a ``str``, or an Arrow string array (missing values stay missing)."""
+    if isinstance(values, str):
+        return "'" + values if values and values[0] in FORMULA_STARTS else values
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    quote, nothing = pa.scalar("'", type=values.type), pa.scalar("", type=values.type)
+    risky = pc.match_substring_regex(values, _FORMULA_PATTERN)
+    return pc.if_else(risky, pc.binary_join_element_wise(quote, values, nothing), values)
+
+
+def _formula_safe_table(table: Any) -> Any:
+    """The table with every text column and every column name made ``formula_safe``."""
+    import pyarrow as pa
+
+    columns = [
+        formula_safe(column) if pa.types.is_string(column.type) or pa.types.is_large_string(
+            column.type
+        ) else column
+        for column in table.columns
+    ]
+    return pa.table(columns, names=[formula_safe(name) for name in table.column_names])
 
 
 def format_from_path(path: str | Path | None, default: str = "csv") -> str:

@@ -14,6 +14,7 @@ from detectors import REGISTRY
 
 from .. import outcomes, screeners, store
 from ..answers import answers_of
+from ..files import formula_safe
 from ..models import Decision, Respondent
 from ..problems import Problem
 from ..schemas import (
@@ -165,7 +166,7 @@ def list_respondents(
     for row in data:
         writer.writerow(
             [
-                row.respondent_id, row.flag_count, ";".join(row.flags),
+                formula_safe(row.respondent_id), row.flag_count, formula_safe(";".join(row.flags)),
                 row.verdict.value if row.verdict else "",
                 "" if row.careless_score is None else f"{row.careless_score:.6g}",
                 row.review_decision.value if row.review_decision else "",

@@ -3,6 +3,7 @@ leaving out excluded and flagged respondents; the endpoint and the command."""
 
 from __future__ import annotations
 
+import csv
 import io
 import re
 from typing import get_args
@@ -18,6 +19,7 @@ from detectors.scales import scale_scores
 from service import exports, file_commands, outcomes, store
 from service.api import exports as export_api
 from service.cli import main
+from service.files import formula_safe, write_csv
 from service.models import Respondent
 from service.stat_files import NAME_LIMITS, statistical_names
 
@@ -415,3 +417,38 @@ def test_small_chunks_give_the_same_file_contents(service, stored, tmp_path, fmt
     many, _ = _read(tmp_path / f"many.{fmt}", fmt)
     one = one[one["respondent_id"] != "r00004"].reset_index(drop=True)
     pd.testing.assert_frame_equal(one, many)
+
+
+#: Cells a spreadsheet program would take for a formula (CSV injection; common practice, no
+#: source), and look-alikes it would not.
+RISKY_IDS = ['=HYPERLINK("http://127.0.0.1/x","y")', "+1+2", "@SUM(A1)", "-1", "=1"]
+PLAIN_IDS = ["a-1", "b=2", "'c"]
+
+
+def test_text_cells_that_start_a_formula_are_quoted_in_every_csv(service, survey, tmp_path):
+    rows = [
+        {"respondent_id": rid, "answers": {"q01": 1 + i % 5, "q02": 5 - i % 5}}
+        for i, rid in enumerate(RISKY_IDS + PLAIN_IDS)
+    ]
+    reply = service.client.post(
+        f"{BASE}/responses", json={"responses": rows}, headers=service.auth(service.ingest)
+    )
+    assert reply.status_code == 201, reply.text
+    expected = {f"'{rid}" for rid in RISKY_IDS} | set(PLAIN_IDS)
+    export = service.client.get(f"{BASE}/export", headers=service.auth(service.analyst))
+    listing = service.client.get(
+        f"{BASE}/respondents", headers={**service.auth(service.analyst), "Accept": "text/csv"}
+    )
+    for reply in (export, listing):
+        assert reply.status_code == 200, reply.text
+        cells = list(csv.DictReader(io.StringIO(reply.text)))
+        assert {cell["respondent_id"] for cell in cells} == expected
+    frame = pd.DataFrame(
+        {"respondent_id": RISKY_IDS + ["\tx", "\rx"] + PLAIN_IDS, "score": -1.5}
+    )
+    write_csv(frame, tmp_path / "s.csv")
+    read = pd.read_csv(tmp_path / "s.csv", dtype={"respondent_id": str}, keep_default_na=False)
+    assert read["respondent_id"].tolist() == [
+        formula_safe(rid) for rid in frame["respondent_id"]
+    ] == [f"'{rid}" for rid in RISKY_IDS + ["\tx", "\rx"]] + PLAIN_IDS
+    assert (read["score"] == -1.5).all()  # numbers are never quoted
