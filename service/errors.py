@@ -11,7 +11,8 @@ the command line prints them. ::
      ├── SignatureRefused     a webhook signature that does not verify
      ├── TooManyRequests      a caller over its rate limit, or an address over its budget of
      │                        failed credentials
-     └── WriterBusy           too many posts already wait for the writer
+     ├── WriterBusy           too many posts already wait for the writer
+     └── WebhookIdReused      a webhook id already accepted with another body
 """
 
 from __future__ import annotations
@@ -27,6 +28,7 @@ __all__ = [
     "SignatureRefused",
     "TooManyRequests",
     "WriterBusy",
+    "WebhookIdReused",
     "CONFLICT_REASON",
 ]
 
@@ -101,4 +103,13 @@ class WriterBusy(ServiceError):
         super().__init__(
             f"{waiting_posts} post(s) with {waiting_respondents} respondent(s) already wait to be "
             f"stored; nothing was stored. Try again in {retry_after} s."
+        )
+
+
+class WebhookIdReused(ServiceError):
+    def __init__(self, webhook_id: str):
+        self.webhook_id = webhook_id
+        super().__init__(
+            "This webhook-id was already accepted with another body; nothing was stored. A "
+            "retried delivery must carry the same body, a new message a new webhook-id."
         )

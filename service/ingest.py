@@ -11,6 +11,7 @@ raises domain errors (``service.errors``); only the web edge turns them into pro
 from __future__ import annotations
 
 import datetime as dt
+import hashlib
 import json
 import time
 from collections.abc import Mapping, Sequence
@@ -34,6 +35,7 @@ from .errors import (
     ServiceError,
     SignatureRefused,
     UnknownSurvey,
+    WebhookIdReused,
 )
 from .models import Survey
 from .outcomes import (
@@ -58,6 +60,7 @@ __all__ = [
     "seconds_taken",
     "answers_digest",
     "IngestOptions",
+    "delivery_digest",
     "Submission",
     "DEFERRED",
     "Ingested",
@@ -265,6 +268,13 @@ class IngestOptions:
     replace: bool = False
     partial: bool = False
     webhook_id: str | None = None
+    #: ``delivery_digest`` of a signed body: the same webhook id with another body is refused.
+    body_digest: str | None = None
+
+
+def delivery_digest(body: bytes) -> str:
+    """First 64 bits of a delivery body's sha256 (hex): tells a replay from another body."""
+    return hashlib.sha256(body).hexdigest()[:16]
 
 
 @dataclass
@@ -535,7 +545,7 @@ def ingest_many(
         )
 
     # Replayed webhook ids and stored respondents, one query per survey.
-    seen_deliveries: dict[int, set[str]] = {}
+    seen_deliveries: dict[int, dict[str, str | None]] = {}
     existing: dict[int, dict[str, Any]] = {}
     for survey_id in {plan.survey.id for plan in plans}:
         mine = [plan for plan in plans if plan.survey.id == survey_id]
@@ -555,14 +565,22 @@ def ingest_many(
             continue  # the same delivery twice in one call: the second waits (a replay)
         if any((survey_id, rid) in claimed for rid in plan.ids):
             continue  # deferred until the earlier submission is committed
-        plan.replayed = webhook_id is not None and webhook_id in seen_deliveries[survey_id]
+        if webhook_id is not None and webhook_id in seen_deliveries[survey_id]:
+            plan.replayed = True
+            earlier, body = seen_deliveries[survey_id][webhook_id], plan.options.body_digest
+            if earlier is not None and body is not None and earlier != body:
+                results[plan.index] = WebhookIdReused(webhook_id)
+                continue
         stored_rows = existing[survey_id]
         conflicts = []
         for i, (rid, digest) in enumerate(zip(plan.ids, plan.digests, strict=True)):
             stored = stored_rows.get(rid)
             if stored is None:
                 (plan.duplicates if plan.replayed else plan.new).append(i)
-            elif plan.replayed or stored.answers_digest == digest:
+            elif plan.replayed or (
+                stored.answers_digest == digest
+                and not (plan.options.replace and _details_differ(stored, plan.checked.rows[i]))
+            ):
                 plan.duplicates.append(i)
             elif plan.options.replace:
                 plan.replaced.append(i)
@@ -617,11 +635,22 @@ def ingest_many(
         if plan.options.webhook_id is not None and not plan.replayed:
             deliveries.append(
                 {"survey_id": plan.survey.id, "webhook_id": plan.options.webhook_id,
-                 "received_at": now}
+                 "received_at": now, "body_digest": plan.options.body_digest}
             )
         results[plan.index] = _ingested(plan, len(submissions[plan.index].rows))
     store.record_deliveries(session, deliveries)
     return results
+
+
+def _details_differ(stored: Any, row: ResponseIn) -> bool:
+    """Whether a post with the stored answers brings other times, duration or meta (which
+    ``replace`` stores, and the speed is judged again on)."""
+    return (
+        stored.started_at != row.started_at
+        or stored.submitted_at != row.submitted_at
+        or stored.duration_seconds != row.duration_seconds
+        or stored.meta != row.meta
+    )
 
 
 def _store_group(

@@ -31,6 +31,7 @@ from .errors import (
     TooManyRequests,
     UnknownSurvey,
     WriterBusy,
+    WebhookIdReused,
 )
 
 __all__ = [
@@ -184,6 +185,11 @@ def from_service(error: ServiceError) -> Problem:
     if isinstance(error, WriterBusy):
         return Problem(
             503, str(error), kind="writer-busy", headers={"Retry-After": str(error.retry_after)}
+        )
+    if isinstance(error, WebhookIdReused):
+        return Problem(
+            409, str(error), kind="webhook-id-reused",
+            errors=[field_error("header:webhook-id", "already used for another body")],
         )
     return Problem(422, str(error), kind="invalid-input")
 

@@ -263,7 +263,7 @@ def existing_respondents(
     session: Session, survey_id: int, respondent_ids: Sequence[str]
 ) -> dict[str, AnyRow]:
     """respondent id -> (id, respondent_id, answers_digest, flag_bits, flag_count, verdict,
-    careless_score) of stored ones."""
+    careless_score, started_at, submitted_at, duration_seconds, meta) of stored ones."""
     out: dict[str, AnyRow] = {}
     for chunk in _chunks(list(respondent_ids)):
         rows = session.execute(
@@ -275,6 +275,10 @@ def existing_respondents(
                 Respondent.flag_count,
                 Respondent.verdict,
                 Respondent.careless_score,
+                Respondent.started_at,
+                Respondent.submitted_at,
+                Respondent.duration_seconds,
+                Respondent.meta,
             ).where(Respondent.survey_id == survey_id, Respondent.respondent_id.in_(chunk))
         )
         for row in rows:
@@ -345,17 +349,19 @@ def json_text(value: Any) -> str:
     return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY).decode()
 
 
-def deliveries_seen(session: Session, survey_id: int, webhook_ids: Sequence[str]) -> set[str]:
-    """Which of these webhook ids were already accepted for the survey."""
-    seen: set[str] = set()
+def deliveries_seen(
+    session: Session, survey_id: int, webhook_ids: Sequence[str]
+) -> dict[str, str | None]:
+    """Which of these webhook ids were already accepted for the survey, each with the digest of
+    its body (None when accepted before digests were kept)."""
+    seen: dict[str, str | None] = {}
     for chunk in _chunks(list(webhook_ids)):
-        seen.update(
-            session.scalars(
-                select(WebhookDelivery.webhook_id).where(
-                    WebhookDelivery.survey_id == survey_id, WebhookDelivery.webhook_id.in_(chunk)
-                )
+        rows = session.execute(
+            select(WebhookDelivery.webhook_id, WebhookDelivery.body_digest).where(
+                WebhookDelivery.survey_id == survey_id, WebhookDelivery.webhook_id.in_(chunk)
             )
         )
+        seen.update((webhook_id, digest) for webhook_id, digest in rows)
     return seen
 
 

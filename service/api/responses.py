@@ -20,6 +20,7 @@ from ..ingest import (
     WebhookCredentials,
     check_signature,
     check_signature_headers,
+    delivery_digest,
     read_credentials,
     remembered_credentials,
 )
@@ -144,6 +145,16 @@ async def post_responses(
             raise
         limits.admit(f"survey:{survey}")
         options = IngestOptions(replace=replace, partial=partial, webhook_id=signature[0])
+        # Checked before the post is queued, so forged posts never occupy the writer; with the
+        # survey's secrets in memory (read less than a few seconds ago), without a thread.
+        credentials = remembered_credentials(database.memo, survey)
+        if credentials is None:
+            credentials = await run_in_threadpool(_read_credentials, database, survey)
+        check_signature(credentials, signature, body, settings)
+        options = IngestOptions(
+            replace=replace, partial=partial, webhook_id=signature[0],
+            body_digest=delivery_digest(body),
+        )
     else:
         try:
             caller = await run_in_threadpool(_authorize, database, headers.get("authorization"))

@@ -59,3 +59,52 @@ def test_started_and_submitted_at_give_the_duration(service, survey):
     rescreen = service.client.post("/v1/surveys/pulse/rescreen", headers=service.auth(service.admin))
     assert rescreen.status_code == 200, rescreen.text
     check()
+
+
+def test_a_corrected_duration_or_meta_replaces_with_replace_and_is_judged_again(service, survey):
+    answers = [1, 2, 3, 4, 5, 4, 3, 2]
+    ingest_key = service.auth(service.ingest)
+    first = respondent("p1", answers, duration_seconds=240.0, meta={"channel": "email"})
+    assert service.client.post(URL, json=first, headers=ingest_key).status_code == 201
+    # 12 s for 8 items: 1.5 s per item (hand-computed), under the 2-second cut-off.
+    corrected = {**first, "duration_seconds": 12.0}
+    plain = service.client.post(URL, json=corrected, headers=ingest_key)
+    assert plain.status_code == 200 and plain.json()["results"][0]["status"] == "duplicate"
+    replaced = service.client.post(URL, params={"replace": "true"}, json=corrected,
+                                   headers=ingest_key)
+    assert replaced.status_code == 201, replaced.text
+    assert replaced.json()["results"][0]["status"] == "replaced"
+    assert "speeding" in replaced.json()["results"][0]["flags"]
+    assert _speeding(service, "p1")["evidence"]["duration_seconds"] == 12.0
+    new_meta = {**corrected, "meta": {"channel": "sms"}}
+    again = service.client.post(URL, params={"replace": "true"}, json=new_meta, headers=ingest_key)
+    assert again.json()["results"][0]["status"] == "replaced"
+    same = service.client.post(URL, params={"replace": "true"}, json=new_meta, headers=ingest_key)
+    assert same.status_code == 200 and same.json()["results"][0]["status"] == "duplicate"
+    detail = service.client.get(
+        "/v1/surveys/pulse/respondents/p1", headers=service.auth(service.analyst)
+    ).json()
+    assert detail["meta"] == {"channel": "sms"} and detail["duration_seconds"] == 12.0
+    assert len(detail["history"]) == 2  # the earlier duration and meta are kept there
+
+
+def test_a_webhook_id_reused_for_another_body_is_a_conflict(service, survey):
+    secret = survey["webhook_secret"]
+    body = body_of(respondent("w1", [2, 4, 2, 4, 2, 4, 2, 4]))
+    assert service.client.post(
+        URL, content=body, headers=signed_headers(secret, body, webhook_id="msg_7")
+    ).status_code == 201
+    other = body_of(respondent("w2", [3, 3, 2, 4, 2, 4, 1, 5]))
+    reused = service.client.post(
+        URL, content=other, headers=signed_headers(secret, other, webhook_id="msg_7")
+    )
+    assert reused.status_code == 409, reused.text
+    assert reused.json()["type"] == "/problems/webhook-id-reused"
+    assert [e["pointer"] for e in reused.json()["errors"]] == ["header:webhook-id"]
+    replay = service.client.post(
+        URL, content=body, headers=signed_headers(secret, body, webhook_id="msg_7")
+    )
+    assert replay.status_code == 200 and replay.json()["replayed_delivery"] is True
+    assert service.client.get(
+        "/v1/surveys/pulse/respondents/w2", headers=service.auth(service.analyst)
+    ).status_code == 404
