@@ -122,27 +122,29 @@ def _openapi(app: FastAPI) -> dict[str, Any]:
             tags=app.openapi_tags,
         )
         schemas = document.setdefault("components", {}).setdefault("schemas", {})
-        schemas["Problem"] = ProblemOut.model_json_schema(
-            ref_template="#/components/schemas/{model}"
-        )
         schemas.update(surveys.instrument_schema())
         from .schemas import BatchIn, ResponseIn
 
-        for model in (ResponseIn, BatchIn):
+        for name, model in (("Problem", ProblemOut), ("ResponseIn", ResponseIn),
+                            ("BatchIn", BatchIn)):
             schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
-            for name, definition in schema.pop("$defs", {}).items():
-                schemas.setdefault(name, definition)
-            schemas[model.__name__] = schema
+            # The schemas it refers to (a problem's field errors) become components too.
+            for inner, definition in schema.pop("$defs", {}).items():
+                schemas.setdefault(inner, definition)
+            schemas[name] = schema
         document["components"]["securitySchemes"] = {
             "apiKey": {"type": "http", "scheme": "bearer", "description": "heedful keys create"}
         }
         document["security"] = [{"apiKey": []}]
-        # Every 422 is a problem document, like every other error.
+        # Every 422 is a problem document, like every other error; any operation can fail.
         for operations in document["paths"].values():
             for operation in operations.values():
                 entry = operation.get("responses", {}).get("422")
                 if entry is not None and "HTTPValidationError" in json.dumps(entry):
                     operation["responses"]["422"] = _problem_entry("Invalid input")
+                operation["responses"].setdefault(
+                    "500", _problem_entry("The server failed; nothing was stored")
+                )
         for name in ("HTTPValidationError", "ValidationError"):
             schemas.pop(name, None)
         for path in ("/healthz", "/readyz"):

@@ -264,10 +264,12 @@ def install(app: FastAPI) -> None:
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, error: StarletteHTTPException) -> JSONResponse:
         detail = error.detail if isinstance(error.detail, str) else _TITLES.get(error.status_code)
-        return _respond(
-            request,
-            Problem(error.status_code, detail or "Error", headers=getattr(error, "headers", None)),
-        )
+        headers = getattr(error, "headers", None)
+        if error.status_code == 405:
+            # The router names the methods of the first route matching the path only; a path
+            # served by several routes (GET and DELETE of a respondent) allows all of theirs.
+            headers = {**(headers or {}), "Allow": ", ".join(_allowed_methods(request))}
+        return _respond(request, Problem(error.status_code, detail or "Error", headers=headers))
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, error: Exception) -> JSONResponse:
@@ -298,6 +300,21 @@ def _database_unavailable(error: BaseException) -> bool:
     if isinstance(error, OperationalError | PoolTimeout):
         return True
     return isinstance(error, DBAPIError) and bool(error.connection_invalidated)
+
+
+def _allowed_methods(request: Request) -> list[str]:
+    """Every method some route of the app answers on the request's path."""
+    from fastapi.routing import iter_route_contexts
+    from starlette.routing import compile_path
+
+    methods: set[str] = set()
+    for route in iter_route_contexts(request.app.routes):
+        if route.path is None:
+            continue
+        pattern, _, _ = compile_path(route.path)
+        if pattern.match(request.url.path):
+            methods.update(route.methods or ())
+    return sorted(methods)
 
 
 def problem_schema() -> dict[str, Any]:

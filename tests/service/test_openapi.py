@@ -63,3 +63,45 @@ def test_command_writes_the_document(tmp_path, capsys):
     out = tmp_path / "openapi.json"
     assert main(["openapi", "--out", str(out)]) == 0
     assert json.loads(out.read_text()) == openapi_document()
+
+
+def test_every_reference_resolves():
+    document = openapi_document()
+
+    def references(node):
+        if isinstance(node, dict):
+            for key, value in node.items():
+                if key == "$ref":
+                    yield value
+                else:
+                    yield from references(value)
+        elif isinstance(node, list):
+            for value in node:
+                yield from references(value)
+
+    found = set(references(document))
+    assert "#/components/schemas/FieldErrorOut" in found
+    for ref in found:
+        assert ref.startswith("#/"), ref
+        node = document
+        for part in ref[2:].split("/"):
+            assert part in node, f"{ref} does not resolve"
+            node = node[part]
+
+
+def test_every_operation_documents_the_server_failing():
+    for path, operations in openapi_document()["paths"].items():
+        for method, operation in operations.items():
+            assert "500" in operation["responses"], (method, path)
+
+
+def test_method_not_allowed_names_every_method_of_the_path(service, survey):
+    for path, allowed in (
+        ("/v1/surveys/pulse/respondents/r1", {"GET", "DELETE"}),
+        ("/v1/surveys/pulse", {"GET", "PATCH"}),
+        ("/v1/surveys", {"GET", "POST"}),
+    ):
+        reply = service.client.put(path, json={}, headers=service.auth(service.admin))
+        assert reply.status_code == 405, (path, reply.text)
+        assert set(reply.headers["allow"].split(", ")) == allowed, path
+        assert reply.headers["content-type"].startswith("application/problem+json")
