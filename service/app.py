@@ -88,8 +88,9 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.limits = Limits(settings)
     app.state.metrics = Metrics()
     app.state.metrics.watch_queue(ingest_queue.depth)
-    app.add_middleware(RequestContext, metrics=app.state.metrics)
     problems.install(app)
+    # Added last, so outermost: the request id reaches every reply and log line, failures too.
+    app.add_middleware(RequestContext, metrics=app.state.metrics)
     for module in (health, surveys, responses, respondents, reports, exports, detectors, metrics):
         app.include_router(module.router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]

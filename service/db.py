@@ -127,6 +127,8 @@ SQLITE_POOL_SIZE = 48
 def make_engine(url: str, **kwargs: Any) -> Engine:
     """An engine for ``url`` with Heedful's connection settings (a new SQLite file is 0600)."""
     kwargs.setdefault("json_serializer", _json_text)
+    # Errors and SQL logging never show the parameters (respondent ids, answers, meta).
+    kwargs.setdefault("hide_parameters", True)
     if url.startswith("sqlite"):
         path = sqlite_path(url)
         if path is not None and not path.exists() and path.parent.is_dir():

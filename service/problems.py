@@ -82,6 +82,8 @@ class Problem(Exception):
         #: Why, in a word, for the log and the metrics when the type alone does not say
         #: (which check refused a signature); never shown in the reply.
         self.cause: str | None = None
+        #: For a server failure: where it was raised (file, line, function of each frame).
+        self.frames: str | None = None
         super().__init__(detail)
 
     def document(self, instance: str) -> dict[str, Any]:
@@ -205,20 +207,22 @@ def _respond(request: Request, problem: Problem) -> JSONResponse:
 
 
 def _note(request: Request, problem: Problem) -> None:
-    """A log line and a count for every refusal or failure: the route template (never the path, which may
-    name a respondent), the survey, the status and the reason; no body, detail or field."""
+    """A log line and a count for every refusal or failure: the route template (never the
+    path, which may name a respondent), the survey, the status and the reason, and for a server
+    failure where it was raised; no body, detail, field or exception message."""
     reason = problem.kind or f"http-{problem.status}"
     if problem.cause:
         reason = f"{reason}:{problem.cause}"
     metrics = getattr(request.app.state, "metrics", None)
     if metrics is not None:
         metrics.refusals.labels(str(problem.status), reason).inc()
-    route = getattr(request.scope.get("route"), "path_format", None) or "(unmatched)"
+    route = getattr(request.scope.get("route"), "path_format", None) or _route_template(request)
     survey = request.scope.get("path_params", {}).get("survey")
     event = "failed" if problem.status >= 500 else "refused"
     log.log(
         logging.ERROR if problem.status >= 500 else logging.INFO,
-        "%s %s %s on %s %s", event, problem.status, reason, request.method, route,
+        "%s %s %s on %s %s%s", event, problem.status, reason, request.method, route,
+        f"\n{problem.frames}" if problem.frames else "",
         extra={
             "event": event, "method": request.method, "route": route,
             "survey": survey[:100] if isinstance(survey, str) else None,
@@ -271,19 +275,87 @@ def install(app: FastAPI) -> None:
             headers = {**(headers or {}), "Allow": ", ".join(_allowed_methods(request))}
         return _respond(request, Problem(error.status_code, detail or "Error", headers=headers))
 
-    @app.exception_handler(Exception)
-    async def _unexpected(request: Request, error: Exception) -> JSONResponse:
-        if _database_unavailable(error):
-            problem = Problem(
-                503, "The database is unavailable; nothing was stored. Try again shortly.",
-                kind="database-unavailable", headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
-            )
-            problem.cause = type(error).__name__
-            return _respond(request, problem)
-        # Only the type is logged: request bodies (answers, meta) never reach the log.
-        problem = Problem(500, "The server failed; nothing was stored.")
-        problem.cause = type(error).__name__
-        return _respond(request, problem)
+    app.add_middleware(ServerFailures)
+
+
+class ServerFailures:
+    """Answers an unexpected exception with a 500 problem and logs it without data.
+
+    An exception handler would not do: Starlette passes the exception on to the server after
+    the handler's reply, and the server logs its traceback with the messages of every exception
+    in the chain (a database error's message holds the SQL parameters: respondent ids, answers,
+    meta). Here the exception stops, and the log line holds the exception types, the route's
+    path template (never the path, which can hold a respondent id) and the traceback's frames
+    without any message.
+    """
+
+    def __init__(self, app: Any):
+        self.app = app
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def tracked(message: Any) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracked)
+        except Exception as error:
+            request = Request(scope)
+            if _database_unavailable(error):
+                problem = Problem(
+                    503, "The database is unavailable; nothing was stored. Try again shortly.",
+                    kind="database-unavailable",
+                    headers={"Retry-After": str(RETRY_AFTER_SECONDS)},
+                )
+            else:
+                problem = Problem(500, "The server failed; nothing was stored.")
+                problem.frames = _frames(error)
+            problem.cause = _chain(error)
+            if started:  # the reply is cut short; nothing more can be said, but it is logged
+                _note(request, problem)
+            else:
+                await _respond(request, problem)(scope, receive, send)
+
+
+def _chain(error: BaseException) -> str:
+    """The types of an exception and of those it was raised from, outermost first, each
+    once."""
+    names, seen = [], set()
+    current: BaseException | None = error
+    while current is not None and id(current) not in seen:
+        seen.add(id(current))
+        names.append(type(current).__name__)
+        current = current.__cause__ or current.__context__
+    return " from ".join(dict.fromkeys(names))
+
+
+def _frames(error: BaseException) -> str:
+    """Where the exception was raised: file, line and function of each frame, no messages, no
+    source lines (a line can show a literal), no local values."""
+    import traceback
+
+    return "\n".join(
+        f"  {frame.filename}:{frame.lineno} in {frame.name}"
+        for frame in traceback.extract_tb(error.__traceback__)
+    )
+
+
+def _routes_matching(request: Request) -> list[Any]:
+    """The routes of the app whose path template matches the request's path."""
+    from fastapi.routing import iter_route_contexts
+    from starlette.routing import compile_path
+
+    found = []
+    for route in iter_route_contexts(request.app.routes):
+        if route.path is not None and compile_path(route.path)[0].match(request.url.path):
+            found.append(route)
+    return found
 
 
 #: What a 503 asks the caller to wait before trying again.
@@ -304,17 +376,15 @@ def _database_unavailable(error: BaseException) -> bool:
 
 def _allowed_methods(request: Request) -> list[str]:
     """Every method some route of the app answers on the request's path."""
-    from fastapi.routing import iter_route_contexts
-    from starlette.routing import compile_path
+    return sorted({method for route in _routes_matching(request) for method in route.methods or ()})
 
-    methods: set[str] = set()
-    for route in iter_route_contexts(request.app.routes):
-        if route.path is None:
-            continue
-        pattern, _, _ = compile_path(route.path)
-        if pattern.match(request.url.path):
-            methods.update(route.methods or ())
-    return sorted(methods)
+
+def _route_template(request: Request) -> str:
+    """The path template of the route serving the request (``.../respondents/{respondent}``)."""
+    for route in _routes_matching(request):
+        if request.method in (route.methods or ()):
+            return str(route.path_format)
+    return "(no route)"
 
 
 def problem_schema() -> dict[str, Any]:
