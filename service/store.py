@@ -159,6 +159,8 @@ def find_key(session: Session, lookup: str) -> AnyRow | None:
 
 
 def get_survey(session: Session, survey: str) -> Survey | None:
+    if "\x00" in survey:  # never stored, and PostgreSQL refuses it in a query
+        return None
     return session.scalar(select(Survey).where(Survey.survey == survey))
 
 
@@ -520,6 +522,8 @@ def list_respondents(
 
 
 def get_respondent(session: Session, survey_id: int, respondent_id: str) -> Respondent | None:
+    if "\x00" in respondent_id:  # never stored, and PostgreSQL refuses it in a query
+        return None
     return session.scalar(
         select(Respondent).where(
             Respondent.survey_id == survey_id, Respondent.respondent_id == respondent_id

@@ -270,6 +270,17 @@ def test_verdict_and_careless_score_after_a_reference(service, filled):
             assert reason.startswith("flagged by"), reason
 
 
+@pytest.mark.parametrize(
+    "path", ["/v1/surveys/pu%00lse", f"{BASE}/respondents/a%00b", f"{BASE}/respondents/a%00b/review"]
+)
+def test_a_nul_in_a_path_id_is_not_found(service, filled, path):
+    reply = service.client.request(
+        "POST" if path.endswith("/review") else "GET", path,
+        json={"decision": "keep", "note": "n"}, headers=service.auth(service.admin),
+    )
+    assert reply.status_code == 404, reply.text
+
+
 @pytest.mark.parametrize("rid", ["a/b", "x/review", "/lead", "trail/", "50%/100%", "q?a#b"])
 def test_ids_with_slashes_and_url_characters_can_be_read_reviewed_and_erased(
     service, survey, rid
