@@ -38,16 +38,19 @@ def register_survey(database: Database, document: Any) -> Registration:
     from detectors.errors import FieldProblem
 
     instrument = parse_instrument(document)
+    problems = []
     if not SURVEY_ID.fullmatch(instrument.survey):
-        raise InstrumentError(
-            [
-                FieldProblem(
-                    "survey",
-                    f"survey id {instrument.survey!r} must start with a letter or digit (it "
-                    "names the survey in URLs and file names)",
-                )
-            ]
+        problems.append(
+            FieldProblem(
+                "survey",
+                f"survey id {instrument.survey!r} must start with a letter or digit (it names "
+                "the survey in URLs and file names)",
+            )
         )
+    if "\x00" in instrument.title:
+        problems.append(FieldProblem("title", "the title holds a NUL character"))
+    if problems:
+        raise InstrumentError(problems)
     notes = lint(instrument)
     with database.write() as session:
         registered = store.register_version(

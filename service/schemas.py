@@ -87,6 +87,13 @@ def _printable_id(value: str) -> str:
     return value
 
 
+def _without_nul(value: str) -> str:
+    """Refuse NUL, which PostgreSQL cannot store in text (the other databases could)."""
+    if "\x00" in value:
+        raise ValueError(f"holds a NUL character at position {value.index(chr(0)) + 1}")
+    return value
+
+
 RespondentId = Annotated[
     str,
     StringConstraints(strip_whitespace=True, min_length=1, max_length=200),
@@ -501,7 +508,7 @@ class ReviewIn(BaseModel):
     )
 
     decision: Decision
-    note: str = Field(default="", max_length=5000)
+    note: Annotated[str, AfterValidator(_without_nul)] = Field(default="", max_length=5000)
 
 
 class ReviewOut(BaseModel):

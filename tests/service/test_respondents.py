@@ -303,3 +303,13 @@ def test_ids_with_slashes_and_url_characters_can_be_read_reviewed_and_erased(
     with service.database.read() as session:
         assert session.scalar(select(func.count()).select_from(Respondent)) == 0
         assert session.scalar(select(func.count()).select_from(Erasure)) == 1
+
+
+def test_a_review_note_with_a_nul_is_refused(service, filled):
+    some = sorted(filled)[0]
+    reply = service.client.post(
+        f"{BASE}/respondents/{some}/review", json={"decision": "keep", "note": "read\x00"},
+        headers=service.auth(service.analyst),
+    )
+    assert reply.status_code == 422, reply.text
+    assert [e["pointer"] for e in reply.json()["errors"]] == ["#/note"]

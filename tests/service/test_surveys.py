@@ -99,3 +99,11 @@ def test_detectors_come_from_the_registry(service):
         assert entry["summary"] == cls.summary and entry["reference"] == cls.reference
         assert entry["needs_sample"] == cls.needs_sample
         assert entry["defaults"] == cls.defaults()
+
+
+def test_a_title_with_a_nul_is_refused(service):
+    reply = service.client.post(
+        "/v1/surveys", json=make_document(title="Pulse\x00"), headers=service.auth(service.admin)
+    )
+    assert reply.status_code == 422, reply.text
+    assert [e["pointer"] for e in reply.json()["errors"]] == ["#/title"]
