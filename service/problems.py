@@ -30,8 +30,8 @@ from .errors import (
     SignatureRefused,
     TooManyRequests,
     UnknownSurvey,
-    WriterBusy,
     WebhookIdReused,
+    WriterBusy,
 )
 
 __all__ = [
@@ -363,15 +363,30 @@ RETRY_AFTER_SECONDS = 5
 
 
 def _database_unavailable(error: BaseException) -> bool:
-    """Whether the database could not be reached or is busy (as opposed to a bug): the driver's
-    operational errors (connection refused or lost, SQLite's file locked) and a lost connection
-    noticed by the pool."""
+    """Whether the database could not be reached or is busy (as opposed to a bug or a broken
+    schema): a connection refused or lost, a pool with no free connection, SQLite's file locked
+    or unreadable. SQLite reports a missing table as an operational error too: that is a 500."""
+    import sqlite3
+
     from sqlalchemy.exc import DBAPIError, OperationalError
     from sqlalchemy.exc import TimeoutError as PoolTimeout
 
-    if isinstance(error, OperationalError | PoolTimeout):
+    if isinstance(error, PoolTimeout):
         return True
-    return isinstance(error, DBAPIError) and bool(error.connection_invalidated)
+    if not isinstance(error, DBAPIError):
+        return False
+    if error.connection_invalidated:
+        return True
+    if not isinstance(error, OperationalError):
+        return False
+    if isinstance(error.orig, sqlite3.OperationalError):
+        text = str(error.orig).lower()
+        return any(words in text for words in _SQLITE_UNAVAILABLE)
+    return True
+
+
+#: SQLite's operational errors that mean "not now" rather than "broken".
+_SQLITE_UNAVAILABLE = ("database is locked", "unable to open database", "disk i/o error")
 
 
 def _allowed_methods(request: Request) -> list[str]:

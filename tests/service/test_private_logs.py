@@ -42,7 +42,7 @@ def test_a_database_error_logs_no_respondent_data(service, survey, caplog):
     assert [signed.status_code, keyed.status_code, read.status_code] == [500, 500, 500]
     # The test client's own request lines (the httpx logger) are the caller's, not the service's.
     logged = _log_text([r for r in caplog.records if not r.name.startswith("httpx")])
-    assert "unexpected OperationalError" in logged or "unexpected ProgrammingError" in logged
+    assert "failed 500 http-500:OperationalError" in logged or "failed 500 http-500:ProgrammingError" in logged
     assert "/v1/surveys/{survey}/respondents/{respondent}" in logged
     for private in (RESPONDENT, META, "[2, 4, 2, 4"):
         assert private not in logged, private
