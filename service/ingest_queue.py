@@ -33,11 +33,9 @@ log = logging.getLogger("heedful.service")
 
 #: Bounds of one group: posts, and respondents over all its posts.
 MAX_POSTS, MAX_ROWS = 256, 20_000
-#: A post of at most this many respondents goes in the fast lane: every group takes the waiting
-#: fast-lane posts first, so a single response waits behind at most the one group being written.
+#: A post of at most this many respondents goes in the fast lane (see ``_next_group``).
 SMALL_POST = 100
-#: Respondents of large posts (batches) one group takes at most (a group always takes one large
-#: post when one waits, so batches are never starved either).
+#: Respondents of large posts (batches) one group takes at most (one batch at least).
 LARGE_ROWS_PER_GROUP = 10_000
 #: Rounds per group for submissions deferred behind an earlier one touching the same respondent.
 MAX_ROUNDS = MAX_POSTS
@@ -66,6 +64,7 @@ class IngestQueue:
         self._small: deque[_Job] = deque()
         self._large: deque[_Job] = deque()
         self._waiting_rows = 0
+        self._last_small = False  # whether the last group was one of small posts
         self._closing = False
         self._ready = threading.Condition()
         self._thread: threading.Thread | None = None
@@ -113,8 +112,12 @@ class IngestQueue:
                 self._thread.start()
 
     def _next_group(self) -> list[_Job] | None:
-        """The waiting small posts first, then batches within the group's bounds; None when
-        closing with nothing left to write."""
+        """The next group to write; None when closing with nothing left to write.
+
+        Small posts and batches go in groups of their own, so that a single response never
+        waits for a batch's screening inside its own group. Small posts go first, but after a
+        group of small posts a waiting batch has its turn: a single response waits behind at
+        most one group of batches, and batches are never starved by a stream of singles."""
         with self._ready:
             while not self._small and not self._large:
                 if self._closing:
@@ -122,20 +125,20 @@ class IngestQueue:
                 self._ready.wait()
             group: list[_Job] = []
             rows = 0
-            while self._small and len(group) < MAX_POSTS and rows < MAX_ROWS:
-                job = self._small.popleft()
-                group.append(job)
-                rows += len(job.submission.rows)
-            large_rows = 0
-            while self._large and len(group) < MAX_POSTS:
-                size = len(self._large[0].submission.rows)
-                taken_one = large_rows > 0
-                if taken_one and (large_rows + size > LARGE_ROWS_PER_GROUP
-                                  or rows + size > MAX_ROWS):
-                    break
-                group.append(self._large.popleft())
-                large_rows += size
-                rows += size
+            if self._small and not (self._large and self._last_small):
+                while self._small and len(group) < MAX_POSTS and rows < MAX_ROWS:
+                    job = self._small.popleft()
+                    group.append(job)
+                    rows += len(job.submission.rows)
+                self._last_small = True
+            else:
+                while self._large and len(group) < MAX_POSTS:
+                    size = len(self._large[0].submission.rows)
+                    if group and rows + size > LARGE_ROWS_PER_GROUP:
+                        break
+                    group.append(self._large.popleft())
+                    rows += size
+                self._last_small = False
             self._waiting_rows -= rows
             return group
 

@@ -115,14 +115,23 @@ def _job(rows: int) -> _Job:
     return _Job(Submission("pulse", [{}] * rows), Future())
 
 
-def test_small_posts_go_first_and_a_group_takes_one_batch_at_least(service):
+def test_small_posts_go_first_in_groups_of_their_own_and_batches_take_turns(service):
     queue = IngestQueue(service.database, service.app.state.settings)
-    big = LARGE_ROWS_PER_GROUP - 10
-    queue._large.extend([_job(big), _job(big), _job(LARGE_ROWS_PER_GROUP * 3)])
+    big = LARGE_ROWS_PER_GROUP // 2 - 10
+    queue._large.extend([_job(big), _job(big), _job(LARGE_ROWS_PER_GROUP * 3), _job(big)])
     queue._small.extend([_job(1), _job(SMALL_POST)])
+
+    def sizes() -> list[int]:
+        return [len(j.submission.rows) for j in queue._next_group()]
+
     queue._waiting_rows = sum(len(j.submission.rows) for j in [*queue._large, *queue._small])
-    sizes = [[len(j.submission.rows) for j in queue._next_group()] for _ in range(3)]
-    assert sizes == [[1, SMALL_POST, big], [big], [LARGE_ROWS_PER_GROUP * 3]]
+    assert sizes() == [1, SMALL_POST]  # small posts first, without a batch
+    queue._small.append(_job(2))  # a single arriving now waits behind one group of batches
+    queue._waiting_rows += 2
+    assert sizes() == [big, big]  # batches up to the group's bound
+    assert sizes() == [2]
+    assert sizes() == [LARGE_ROWS_PER_GROUP * 3]  # a batch above the bound goes alone
+    assert sizes() == [big]
     assert queue._waiting_rows == 0
 
 
