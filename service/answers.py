@@ -9,19 +9,16 @@ exactly as they were received. 50 items take 50 bytes.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 
 import numpy as np
 from sqlalchemy.orm import Session
 
 from detectors import MISSING
 
-from . import store
 from .screeners import screener_for
 
 __all__ = [
-    "ABSENT", "NULL", "encode", "matrix", "as_received", "answers_of", "StoredAnswers",
-    "stored_answers",
+    "ABSENT", "NULL", "encode", "matrix", "as_received", "answers_of",
 ]
 
 ABSENT = int(MISSING)  # -128
@@ -64,19 +61,3 @@ def as_received(blob: bytes, items: Sequence[str]) -> dict[str, int | None]:
 def answers_of(session: Session, version_id: int, blob: bytes) -> dict[str, int | None]:
     """A stored respondent's answers as received, read with its survey version's items."""
     return as_received(blob, screener_for(session, version_id).instrument.item_ids)
-
-
-@dataclass(frozen=True)
-class StoredAnswers:
-    respondent_id: str
-    answers: dict[str, int | None]
-
-
-def stored_answers(session: Session, pks: Sequence[int]) -> dict[int, StoredAnswers]:
-    """pk -> respondent id and answers as received, of a few respondents."""
-    return {
-        row.id: StoredAnswers(
-            row.respondent_id, answers_of(session, row.survey_version_id, row.answer_codes)
-        )
-        for row in store.respondent_answers(session, pks).values()
-    }

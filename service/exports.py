@@ -16,9 +16,11 @@ Columns, in order:
   opposite pairs, ``scale_<name>_adjusted``), computed from the stored answers with each
   respondent's own survey version.
 
-Rows come in the order respondents arrived. Respondents are read, parsed and scored in chunks
-of :data:`EXPORT_CHUNK`; CSV and Parquet are written chunk by chunk, SPSS and Stata (whose
-writer takes a whole table) from the joined chunks. Every file is written atomically.
+Rows come in the order respondents arrived. Respondents are read and parsed as columns
+(``survey_data``: a chunk at a time, or the whole survey already read, as the nightly job
+shares it with the report) and turned into rows in chunks of :data:`EXPORT_CHUNK`; CSV and
+Parquet are written chunk by chunk, SPSS and Stata (whose writer takes a whole table) from
+the joined chunks. Every file is written atomically.
 
 In SPSS and Stata files, names are made valid by ``stat_files.statistical_names``; items carry
 their text as variable label and their response format's labels as value labels, scores carry
@@ -33,33 +35,24 @@ import csv
 import dataclasses
 import datetime as dt
 import io
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import (
-    Integer,
-    String,
-    literal_column,
-    or_,
-    select,
-    type_coerce,
-)
 from sqlalchemy.orm import Session
 
-from detectors import MISSING, REGISTRY, ResponseMatrix
+from detectors import MISSING, REGISTRY, ResponseMatrix, State
 from detectors.scales import scale_scores
 
 from . import store
-from .answers import matrix as stored_matrix
 from .files import formula_safe, write_atomic
-from .models import Decision, Respondent, Survey, Verdict
-from .outcomes import assessed_scores
-from .screeners import Screener, screener_for
+from .models import Decision, Survey, Verdict
+from .screeners import Screener
 from .stat_files import STAT_FORMATS, statistical_names, unique_names, write_labelled
+from .survey_data import SurveyData, SurveyItems, survey_items, survey_parts
 
 __all__ = [
     "EXPORT_FORMATS",
@@ -167,11 +160,13 @@ def _check_options(fmt: str | None, without: Iterable[str]) -> tuple[str, ...]:
     return chosen
 
 
-def export_layout(session: Session, survey: Survey) -> ExportLayout:
-    """The export's columns for a survey: items of every version, detectors, scales."""
-    versions = store.versions_of(session, survey.id)
-    numbers = {v.id: v.number for v in versions}
-    screeners = {v.id: screener_for(session, v.id) for v in versions}
+def export_layout(
+    session: Session, survey: Survey, known: SurveyItems | None = None
+) -> ExportLayout:
+    """The export's columns for a survey: items of every version, detectors, scales
+    (``known``: the survey's versions and items when already read)."""
+    items_of = known or survey_items(session, survey)
+    versions, numbers, screeners = items_of.versions, items_of.numbers, items_of.screeners
     # The current version first, then earlier ones, newest first.
     newest_first = sorted(versions, key=lambda v: (v.id != survey.current_version_id, -v.number))
     item_source: dict[str, tuple[Any, Any]] = {}
@@ -272,50 +267,7 @@ def export_layout(session: Session, survey: Survey) -> ExportLayout:
     )
 
 
-# Reading stored respondents ---------------------------------------------------------------------
-
-_RESPONDENT_COLUMNS = (
-    Respondent.id,
-    Respondent.respondent_id,
-    Respondent.survey_version_id,
-    # The time columns are read as stored text and converted a column at a time, instead of
-    # by one Python call per value.
-    Respondent.answer_codes,
-    type_coerce(Respondent.received_at, String),
-    type_coerce(Respondent.submitted_at, String),
-    Respondent.duration_seconds,
-    Respondent.flag_count,
-    type_coerce(Respondent.verdict, String),
-    Respondent.careless_score,
-    type_coerce(Respondent.review_decision, String),
-)
-
-
-def _filters(without: Sequence[str]) -> list[Any]:
-    out = []
-    if "excluded" in without:
-        out.append(
-            or_(
-                Respondent.review_decision.is_(None),
-                Respondent.review_decision != Decision.EXCLUDE,
-            )
-        )
-    if "flagged" in without:
-        out.append(Respondent.flag_count == 0)
-    return out
-
-
-def _times(values: Sequence[Any]) -> pd.Series:
-    """Stored timestamps (text from SQLite, datetimes from PostgreSQL) as UTC datetimes."""
-    series = pd.Series(values, dtype=object)
-    present = series.dropna()
-    if present.empty:
-        return pd.Series(pd.NaT, index=series.index, dtype="datetime64[us, UTC]")
-    if isinstance(present.iloc[0], str):
-        out = pd.to_datetime(series, utc=True, format="ISO8601")
-    else:
-        out = pd.to_datetime(series, utc=True)
-    return out.astype("datetime64[us, UTC]")
+# Stored respondents to rows ---------------------------------------------------------------------
 
 
 def _nullable_int8(values: np.ndarray, missing: np.ndarray) -> pd.arrays.IntegerArray:
@@ -323,53 +275,51 @@ def _nullable_int8(values: np.ndarray, missing: np.ndarray) -> pd.arrays.Integer
     return pd.arrays.IntegerArray(data, missing.copy())
 
 
-def _chunk_frame(session: Session, layout: ExportLayout, rows: Sequence[Any]) -> pd.DataFrame:
-    (pks, ids, version_ids, codes, received, submitted, durations, counts, verdicts,
-     careless, decisions) = (list(column) for column in zip(*rows, strict=True))
-    n = len(pks)
-    pk_array = np.array(pks, dtype=np.int64)
-    version_array = np.array(version_ids, dtype=np.int64)
-    answers = np.full((n, len(layout.items)), MISSING, dtype=np.int8)
-    column_of = {item: j for j, item in enumerate(layout.items)}
-    for version_id in np.unique(version_array).tolist():
-        mine = np.flatnonzero(version_array == version_id)
-        items = layout.screeners[version_id].instrument.item_ids
-        where = np.array([column_of[item] for item in items], dtype=np.intp)
-        answers[np.ix_(mine, where)] = stored_matrix(
-            [codes[i] for i in mine.tolist()], len(items)
-        )
-    scores, flags, unknown = assessed_scores(session, layout.detectors, pk_array)
-    layout.unregistered_results += unknown
+def _utc(values: np.ndarray) -> Any:
+    return pd.DatetimeIndex(values).tz_localize("UTC").array
+
+
+def _chunk_frame(layout: ExportLayout, part: SurveyData) -> pd.DataFrame:
+    n = len(part)
+    assert layout.items == part.layout.items  # both from survey_items
+    answers = part.answers
+    results = part.results
+    at = {name: j for j, name in enumerate(results.names)}
+    # Results of detectors no longer in the registry are counted, not exported.
+    retired = [j for j, name in enumerate(results.names) if name not in REGISTRY]
+    layout.unregistered_results += int(results.present[:, retired].sum()) if retired else 0
     data: dict[str, Any] = {}
     columns = iter(layout.columns)
 
     def put(values: Any) -> None:
         data[next(columns).name] = values
 
-    put(pd.array(ids, dtype="string"))
-    put(pd.array([layout.numbers[v] for v in version_ids], dtype="Int16"))
-    put(_times(received).array)
-    put(_times(submitted).array)
-    put(np.array([np.nan if d is None else d for d in durations], dtype=np.float64))
+    put(pd.array(part.respondent_ids, dtype="string"))
+    numbers = np.array([layout.numbers[v] for v in part.version_ids.tolist()], dtype=np.int16)
+    put(pd.array(numbers, dtype="Int16"))
+    put(_utc(part.received_at))
+    put(_utc(part.submitted_at))
+    put(part.durations)
     for j in range(len(layout.items)):
         put(_nullable_int8(answers[:, j], answers[:, j] == MISSING))
-    for d in range(len(layout.detectors)):
-        put(scores[:, d])
-        put(_nullable_int8(np.nan_to_num(flags[:, d]), np.isnan(flags[:, d])))
-    put(pd.array(counts, dtype="Int16"))
-    put(pd.array(verdicts, dtype="string"))
-    put(np.array([np.nan if c is None else c for c in careless], dtype=np.float64))
-    put(pd.array(decisions, dtype="string"))
+    for name in layout.detectors:
+        if name not in at:
+            put(np.full(n, np.nan))
+            put(_nullable_int8(np.zeros(n, np.int8), np.ones(n, dtype=bool)))
+            continue
+        j = at[name]
+        assessed = results.present[:, j] & (results.states[:, j] == State.ASSESSED)
+        put(np.where(assessed, results.scores[:, j], np.nan))
+        put(_nullable_int8(results.flagged[:, j].astype(np.int8), ~assessed))
+    put(pd.array(part.flag_counts.astype(np.int16), dtype="Int16"))
+    put(pd.array(part.verdicts, dtype="string"))
+    put(part.careless_scores)
+    put(pd.array(part.decisions, dtype="string"))
     scales = {column: np.full(n, np.nan) for column in layout.scale_columns}
-    position = {item: j for j, item in enumerate(layout.items)}
-    for version_id in np.unique(version_array).tolist():
-        rows_of = np.flatnonzero(version_array == version_id)
+    for version_id in np.unique(part.version_ids).tolist():
+        rows_of, answers_of = part.of_version(version_id)
         instrument = layout.screeners[version_id].instrument
-        cols = np.array([position[item] for item in instrument.item_ids], dtype=np.intp)
-        matrix = ResponseMatrix(
-            respondent_ids=np.asarray(ids, dtype=object)[rows_of],
-            answers=answers[np.ix_(rows_of, cols)],
-        )
+        matrix = ResponseMatrix(respondent_ids=part.respondent_ids[rows_of], answers=answers_of)
         for column, values in scale_scores(instrument, matrix).items():
             scales[str(column)][rows_of] = values.to_numpy(dtype=np.float64)
     for column in layout.scale_columns:
@@ -383,28 +333,21 @@ def export_chunks(
     *,
     without: Iterable[str] = (),
     chunk_size: int = EXPORT_CHUNK,
+    stored: SurveyData | None = None,
 ) -> Iterator[pd.DataFrame]:
-    """The export's rows, ``chunk_size`` respondents at a time, in order of arrival."""
-    filters = _filters(_check_options(None, without))
-    # Written as "+survey_id = ?" so that SQLite walks the primary key from the last id read
-    # instead of the (survey_id, ...) indexes, which would sort the whole survey for each chunk.
-    survey_is = literal_column(f"+{Respondent.__tablename__}.survey_id", Integer) == (
-        layout.survey.id
-    )
-    last = 0
-    while True:
-        rows = session.connection().execute(
-            select(*_RESPONDENT_COLUMNS)
-            .where(survey_is, Respondent.id > last, *filters)
-            .order_by(Respondent.id)
-            .limit(chunk_size)
-        ).all()
-        if not rows:
-            return
-        yield _chunk_frame(session, layout, rows)
-        if len(rows) < chunk_size:
-            return
-        last = rows[-1][0]
+    """The export's rows, ``chunk_size`` respondents at a time, in order of arrival: from
+    ``stored`` when given (the survey already read), else read a chunk at a time."""
+    chosen = _check_options(None, without)
+    if stored is not None:
+        kept = stored.without(chosen)
+        for start in range(0, len(kept), chunk_size):
+            yield _chunk_frame(layout, kept.take(slice(start, start + chunk_size)))
+        return
+    items = survey_items(session, layout.survey)
+    for part in survey_parts(session, layout.survey, layout=items, chunk=chunk_size):
+        kept = part.without(chosen)
+        if len(kept):
+            yield _chunk_frame(layout, kept)
 
 
 def _empty_frame(layout: ExportLayout) -> pd.DataFrame:
@@ -414,11 +357,12 @@ def _empty_frame(layout: ExportLayout) -> pd.DataFrame:
 
 
 def export_frame(
-    session: Session, survey: Survey, *, without: Iterable[str] = ()
+    session: Session, survey: Survey, *, without: Iterable[str] = (),
+    stored: SurveyData | None = None,
 ) -> tuple[pd.DataFrame, ExportLayout]:
     """The whole export as one table (CSV and Parquet column names and types)."""
-    layout = export_layout(session, survey)
-    parts = list(export_chunks(session, layout, without=without))
+    layout = export_layout(session, survey, None if stored is None else stored.layout)
+    parts = list(export_chunks(session, layout, without=without, stored=stored))
     frame = pd.concat(parts, ignore_index=True) if parts else _empty_frame(layout)
     return frame, layout
 
@@ -580,18 +524,21 @@ def write_export(
     *,
     without: Iterable[str] = (),
     chunk_size: int = EXPORT_CHUNK,
+    stored: SurveyData | None = None,
 ) -> ExportSummary:
     """Write a survey's export to ``path`` (atomically) in ``fmt`` (csv, parquet, sav, dta).
 
     ``without`` leaves out ``excluded`` respondents (latest review ``exclude``) and/or
-    ``flagged`` ones (``flag_count > 0``). Reads in the caller's session, a chunk per query:
+    ``flagged`` ones (``flag_count > 0``). ``stored``: the survey as already read (the nightly
+    job shares one read with the report); without it, reads in the caller's session, a chunk
+    per query:
     a SQLite read transaction sees one snapshot throughout; under PostgreSQL's default
     isolation, respondents stored while the export runs may appear at its end. Raises
     ``ValueError`` for an unknown format or choice.
     """
     chosen = _check_options(fmt, without)
     path = Path(path)
-    layout = export_layout(session, survey)
+    layout = export_layout(session, survey, None if stored is None else stored.layout)
     renamed = {layout.names[c]: c for c in layout.names}
     written = 0
     if fmt in STAT_FORMATS:
@@ -599,7 +546,9 @@ def write_export(
         # The writer takes one table: chunks are converted as they come and joined column by
         # column, each column's pieces freed as it is joined.
         pieces: dict[str, list[np.ndarray]] = {name: [] for name in names}
-        for chunk in export_chunks(session, layout, without=chosen, chunk_size=chunk_size):
+        for chunk in export_chunks(
+            session, layout, without=chosen, chunk_size=chunk_size, stored=stored
+        ):
             for name, values in _statistical_chunk(chunk, layout, names, fmt).items():
                 pieces[name].append(values)
             written += len(chunk)
@@ -624,12 +573,19 @@ def write_export(
     else:
         def write(temporary: str) -> None:
             nonlocal written
-            chunks = export_chunks(session, layout, without=chosen, chunk_size=chunk_size)
+            chunks = export_chunks(
+                session, layout, without=chosen, chunk_size=chunk_size, stored=stored
+            )
             written = _write_streamed(chunks, layout, fmt, temporary)
 
         write_atomic(path, write)
     # Counting costs a pass over the survey's index: only done when someone can be left out.
-    left_out = max(0, store.count_respondents(session, survey.id) - written) if chosen else 0
+    if not chosen:
+        left_out = 0
+    elif stored is not None:
+        left_out = len(stored) - written
+    else:
+        left_out = max(0, store.count_respondents(session, survey.id) - written)
     return ExportSummary(
         survey=survey.survey, format=fmt, path=path, respondents=written,
         left_out=left_out, columns=len(layout.columns), without=chosen, renamed=renamed,

@@ -35,8 +35,9 @@ For each survey (every registered one by default), one after the other:
    ``rescreen.rescreen_rows``).
 4. **Files**, in ``DIR/<date>/<survey>/`` (the run's local date): the survey's export
    (``<survey>.sav`` by default, without the respondents reviewed as ``exclude``), the
-   screening report ``report.html`` and ``nightly.json`` (what the run did). Each file is
-   written atomically.
+   screening report ``report.html`` and ``nightly.json`` (what the run did). The export and
+   the report share one read of the survey's stored respondents and results
+   (``survey_data.read_survey``). Each file is written atomically.
 
 A survey that fails (e.g. a stored instrument that no longer parses) is reported with the
 reason and the others still run; the command then exits with 1.
@@ -64,6 +65,7 @@ from .files import write_atomic
 from .models import Survey
 from .screeners import reference_data, uses_reference
 from .settings import Settings
+from .survey_data import read_survey
 
 __all__ = [
     "NIGHTLY_CHUNK",
@@ -339,11 +341,16 @@ def nightly_survey(
     with database.read() as session:
         survey = store.get_survey(session, name)
         assert survey is not None
-        written = exports.write_export(session, survey, fmt, export_path, without=without)
+        # One read of the stored results for both files.
+        stored_survey = read_survey(session, survey)
+        written = exports.write_export(
+            session, survey, fmt, export_path, without=without, stored=stored_survey
+        )
         run.left_out = written.left_out
         if progress is not None:
             progress.update(1)
-        html = reports.build_report(session, survey)
+        html = reports.build_report(session, survey, stored=stored_survey)
+        del stored_survey
     write_atomic(report_path, lambda p: Path(p).write_text(html, encoding="utf-8"))
     if progress is not None:
         progress.update(2)

@@ -54,16 +54,16 @@ __all__ = [
     "written",
     "ResultColumns",
     "result_columns",
+    "join_columns",
+    "registry_sorted",
     "StoredResult",
     "results_of",
     "not_assessed_of",
     "flag_set",
     "flags_column",
     "evidence_columns",
-    "assessed_scores",
     "detector_tallies",
-    "assessed_sample",
-    "flag_set_counts",
+    "cutoffs_now",
     "flagged_by_day",
     "earlier_record",
     "earlier_results",
@@ -420,6 +420,15 @@ class ResultColumns:
     others: int = 0
     codes: DetectorCodes | None = None
 
+    def take(self, rows: np.ndarray | slice) -> ResultColumns:
+        """The respondents at ``rows`` (positions, a mask or a slice); ``others`` is kept as
+        it was (results of detectors without a code are never written)."""
+        return ResultColumns(
+            names=self.names, present=self.present[rows], states=self.states[rows],
+            flagged=self.flagged[rows], scores=self.scores[rows], others=self.others,
+            codes=self.codes,
+        )
+
     def flags_of(self, names: Sequence[str]) -> np.ndarray:
         """bool (respondents, len(names)): which of these detectors flagged each respondent."""
         at = {name: j for j, name in enumerate(self.names)}
@@ -464,6 +473,25 @@ def result_columns(
     out.flagged[rows, cols] = (chosen["mark"] & _FLAGGED) != 0
     out.scores[rows, cols] = chosen["score"]
     return out
+
+
+def join_columns(parts: Sequence[ResultColumns]) -> ResultColumns:
+    """Columns of the same detectors, read for one group of respondents after another."""
+    first = parts[0]
+    return ResultColumns(
+        names=first.names,
+        present=np.concatenate([p.present for p in parts]),
+        states=np.concatenate([p.states for p in parts]),
+        flagged=np.concatenate([p.flagged for p in parts]),
+        scores=np.concatenate([p.scores for p in parts]),
+        others=sum(p.others for p in parts),
+        codes=first.codes,
+    )
+
+
+def registry_sorted(names: Iterable[str]) -> list[str]:
+    """Detector names in registry order, then names no longer registered, alphabetically."""
+    return sorted(names, key=_registry_order)
 
 
 def not_assessed_of(session: Session, pks: Sequence[int]) -> dict[int, list[str]]:
@@ -584,25 +612,6 @@ def _columns_along(
         yield at[mine], result_columns(blobs, codes, names)
 
 
-def assessed_scores(
-    session: Session, detectors: Sequence[str], pks: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, int]:
-    """Scores and flags (float, NaN unless assessed) of ``pks`` (sorted), shape
-    (n, detectors), and the number of results of detectors not in ``detectors``."""
-    n, d = len(pks), len(detectors)
-    scores = np.full((n, d), np.nan)
-    flags = np.full((n, d), np.nan)
-    unknown = 0
-    if n == 0:
-        return scores, flags, unknown
-    for positions, columns in _columns_along(session, None, pks, detectors):
-        assessed = columns.states == State.ASSESSED
-        scores[positions] = np.where(assessed, columns.scores, np.nan)
-        flags[positions] = np.where(assessed, columns.flagged.astype(np.float64), np.nan)
-        unknown += columns.others
-    return scores, flags, unknown
-
-
 def detector_tallies(session: Session, survey_id: int, pks: np.ndarray) -> dict[str, Counter]:
     """Per detector, respondents by ``State`` and how many it flagged (key ``"flagged"``), for
     the survey's respondents ``pks`` (ascending), read a range of respondents at a time."""
@@ -617,59 +626,29 @@ def detector_tallies(session: Session, survey_id: int, pks: np.ndarray) -> dict[
     return tallies
 
 
-def assessed_sample(session: Session, pks: np.ndarray) -> dict[str, list[tuple]]:
-    """Per detector, (score, flagged, cutoff) of its assessed results for respondents ``pks``:
-    scores and flags as stored, cut-offs derived by screening them again."""
-    blobs = store.packed_results_of(session, pks.tolist())
-    order = list(blobs)
-    columns = result_columns([blobs[pk] for pk in order], detector_codes(session))
-    cutoffs = _cutoffs_now(session, order, columns.names)
-    samples: dict[str, list[tuple]] = {}
-    for j, name in enumerate(columns.names):
-        assessed = columns.present[:, j] & (columns.states[:, j] == State.ASSESSED)
-        if assessed.any():
-            samples[name] = list(zip(
-                columns.scores[assessed, j].tolist(), columns.flagged[assessed, j].tolist(),
-                cutoffs[assessed, j].tolist(), strict=True,
-            ))
-    return samples
-
-
-def _cutoffs_now(session: Session, pks: Sequence[int], names: Sequence[str]) -> np.ndarray:
-    """(respondents, detectors) cut-offs of these respondents, screened again with their
-    versions' screeners and reference samples, a group of respondents at a time (NaN where a
-    detector gives none)."""
-    out = np.full((len(pks), len(names)), np.nan)
-    at = {pk: i for i, pk in enumerate(pks)}
+def cutoffs_now(
+    session: Session,
+    names: Sequence[str],
+    groups: Iterable[tuple[int, int | None, np.ndarray, ResponseMatrix]],
+    n: int | None = None,
+) -> np.ndarray:
+    """(respondents, detectors) cut-offs of respondents screened again with their versions'
+    screeners and reference samples, a group of respondents at a time: each group is (survey
+    version id, reference sample id, positions of its respondents, their matrix). NaN where a
+    detector gives none."""
+    groups = list(groups)
+    if n is None:
+        n = sum(len(positions) for _, _, positions, _ in groups)
+    out = np.full((n, len(names)), np.nan)
     column = {name: j for j, name in enumerate(names)}
-    groups: dict[tuple[int, int | None], list[Any]] = {}
-    for row in store.respondents_of(session, pks):
-        groups.setdefault((row.survey_version_id, row.reference_id), []).append(row)
-    for (version_id, reference_id), members in groups.items():
+    for version_id, reference_id, rows, matrix in groups:
         screener = screener_for(session, version_id)
-        matrix = ResponseMatrix(
-            respondent_ids=np.array([m.respondent_id for m in members], dtype=object),
-            answers=stored_matrix(
-                [m.answer_codes for m in members], len(screener.instrument.item_ids)
-            ),
-            durations=np.array([seconds_taken(m) for m in members], dtype=np.float64),
-        )
         screened = screen_matrix(screener, matrix, reference_data(session, reference_id))
-        rows = np.array([at[m.id] for m in members], dtype=np.intp)
         for name, result in screened.results.items():
             if result is not None and name in column:
                 cutoffs = np.asarray(result.cutoffs, dtype=np.float64)
                 out[rows, column[name]] = np.where(np.isfinite(cutoffs), cutoffs, np.nan)
     return out
-
-
-def flag_set_counts(session: Session, survey_id: int) -> list[tuple[tuple[str, ...], int]]:
-    """Each flag set raised in the survey (at least one flag) and its number of respondents."""
-    codes = detector_codes(session)
-    return [
-        (codes.names(int(bits)), int(n))
-        for bits, n in store.flag_bits_counts(session, survey_id)
-    ]
 
 
 def flagged_by_day(session: Session, survey_id: int) -> dict[dt.date, dict[str, int]]:

@@ -26,18 +26,16 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
-from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from detectors import REGISTRY, State, lint
+from detectors import MISSING, REGISTRY, ResponseMatrix, State, lint
 from detectors.reliability import scale_statistics
 
-from . import outcomes, store
-from .answers import stored_answers
+from . import outcomes
 from .db import utcnow
-from .models import Decision, ReferenceSample, Respondent, Survey, Verdict
-from .rescreen import Target, read_stored
+from .models import Decision, ReferenceSample, Survey, Verdict
 from .screeners import Screener, screener_for
+from .survey_data import SurveyData, read_survey
 
 __all__ = [
     "build_report",
@@ -211,39 +209,74 @@ def _sample_step(total: int) -> int:
     return max(1, -(-total // DISTRIBUTION_SAMPLE))
 
 
-def _detector_data(session: Session, survey_id: int, pks: np.ndarray, step: int
-                   ) -> dict[str, _DetectorData]:
-    """Every detector's counts (exact, read along the results' primary key a range of
-    respondents at a time) and the assessed scores of every ``step``-th respondent."""
-    tallies = outcomes.detector_tallies(session, survey_id, pks)
-    samples = outcomes.assessed_sample(session, pks[::step])
+def _detector_data(session: Session, stored: SurveyData, step: int) -> dict[str, _DetectorData]:
+    """Every detector's counts (exact) and the assessed scores of every ``step``-th
+    respondent, with the cut-offs found by screening those respondents again."""
+    results = stored.results
+    sample = stored.take(slice(None, None, step))
+    cutoffs = outcomes.cutoffs_now(session, sample.results.names, _groups(sample))
     out = {}
-    for name, tally in tallies.items():
-        rows = samples.get(name, [])
-        values = np.array(rows, dtype=np.float64).reshape(len(rows), 3)
-        scores, flags, cutoffs = values[:, 0], values[:, 1], values[:, 2]
-        keep = np.isfinite(scores)
+    for j, name in enumerate(results.names):
+        present = results.present[:, j]
+        if not present.any():
+            continue
+        states = results.states[:, j]
+        assessed = sample.results.present[:, j] & (sample.results.states[:, j] == State.ASSESSED)
         detector = REGISTRY.get(name)
         out[name] = _DetectorData(
             name=name,
             summary=detector.summary if detector is not None else "a detector no longer run",
-            assessed=tally[State.ASSESSED],
-            flagged=tally["flagged"],
-            not_assessed=tally[State.NOT_ASSESSED],
-            not_applicable=tally[State.NOT_APPLICABLE],
-            scores=scores[keep],
-            flags=flags[keep].astype(bool),
-            cutoffs=cutoffs[keep],
+            assessed=int((present & (states == State.ASSESSED)).sum()),
+            flagged=int((present & results.flagged[:, j]).sum()),
+            not_assessed=int((present & (states == State.NOT_ASSESSED)).sum()),
+            not_applicable=int((present & (states == State.NOT_APPLICABLE)).sum()),
+            scores=sample.results.scores[assessed, j],
+            flags=sample.results.flagged[assessed, j],
+            cutoffs=cutoffs[assessed, j],
         )
     return out
 
 
-def _co_occurrence(session: Session, survey_id: int, names: Sequence[str]) -> np.ndarray:
+def _groups(stored: SurveyData) -> list[tuple[int, int | None, np.ndarray, ResponseMatrix]]:
+    """The respondents of each (survey version, reference sample), as their matrix with
+    durations as screening them gives them."""
+    seconds = stored.seconds()
+    groups: list[tuple[int, int | None, np.ndarray, ResponseMatrix]] = []
+    if not len(stored):
+        return groups
+    pairs = np.stack([stored.version_ids, stored.reference_ids])
+    for version_id, reference_id in np.unique(pairs, axis=1).T.tolist():
+        rows = np.flatnonzero(
+            (stored.version_ids == version_id) & (stored.reference_ids == reference_id)
+        )
+        answers = stored.answers[np.ix_(rows, stored.layout.columns[version_id])]
+        matrix = ResponseMatrix(
+            respondent_ids=stored.respondent_ids[rows], answers=answers, durations=seconds[rows]
+        )
+        groups.append((version_id, None if reference_id < 0 else reference_id, rows, matrix))
+    return groups
+
+
+def _arrivals_by_day(stored: SurveyData) -> list[dict[str, Any]]:
+    """Respondents and those flagged by at least one detector, per day of arrival (UTC)."""
+    days = stored.received_at.astype("datetime64[D]")
+    found, counts = np.unique(days, return_counts=True)
+    where = np.searchsorted(found, days)
+    flagged = np.bincount(where, weights=stored.flag_counts > 0, minlength=len(found))
+    return [
+        {"day": str(day), "respondents": int(n), "flagged_any": int(f)}
+        for day, n, f in zip(found.tolist(), counts.tolist(), flagged.tolist(), strict=True)
+    ]
+
+
+def _co_occurrence(session: Session, stored: SurveyData, names: Sequence[str]) -> np.ndarray:
     """(detectors x detectors) counts of respondents flagged by both (diagonal: by each)."""
     index = {name: i for i, name in enumerate(names)}
     counts = np.zeros((len(names), len(names)), dtype=np.int64)
-    for flags, n in outcomes.flag_set_counts(session, survey_id):
-        members = [index[f] for f in flags if f in index]
+    codes = outcomes.detector_codes(session)
+    sets, sizes = np.unique(stored.flag_bits[stored.flag_counts > 0], return_counts=True)
+    for bits, n in zip(sets.tolist(), sizes.tolist(), strict=True):
+        members = [index[f] for f in codes.names(bits) if f in index]
         for a in members:
             for b in members:
                 counts[a, b] += int(n)
@@ -425,46 +458,36 @@ def _table(header: Sequence[str], rows: Iterable[Sequence[Any]], names: int = 1)
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def _pattern_section(session: Session, survey: Survey, screener: Screener) -> str:
-    current = Respondent.survey_version_id == screener.version_id
-    mine = Respondent.survey_id == survey.id
-    flagged_pks = session.scalars(
-        select(Respondent.id)
-        .where(mine, current, Respondent.flag_count > 0)
-        .order_by(
-            Respondent.flag_count.desc(), Respondent.careless_score.desc().nulls_last(),
-            Respondent.id,
-        )
-        .limit(PATTERN_ROWS)
-    ).all()
-    calm = np.array(
-        session.scalars(
-            select(Respondent.id).where(mine, current, Respondent.flag_count == 0)
-            .order_by(Respondent.id)
-        ).all(),
-        dtype=np.int64,
-    )
+def _answers_shown(stored: SurveyData, rows: np.ndarray, screener: Screener) -> np.ndarray:
+    """Answers of the respondents at ``rows`` in the version's item order, NaN where missing."""
+    answers = stored.answers[np.ix_(rows, stored.layout.columns[screener.version_id])]
+    return np.where(answers == MISSING, np.nan, answers.astype(np.float64))
+
+
+def _pattern_section(stored: SurveyData, screener: Screener) -> str:
+    current = stored.version_ids == screener.version_id
+    flagged = np.flatnonzero(current & (stored.flag_counts > 0))
+    # Most flags first, then the highest careless score (none last), then by arrival.
+    careless = stored.careless_scores[flagged]
+    order = np.lexsort((
+        stored.pks[flagged], np.where(np.isnan(careless), np.inf, -careless),
+        -stored.flag_counts[flagged],
+    ))
+    most_rows = flagged[order[:PATTERN_ROWS]]
+    calm = np.flatnonzero(current & (stored.flag_counts == 0))
     if len(calm) > PATTERN_ROWS:
         calm = calm[np.linspace(0, len(calm) - 1, PATTERN_ROWS).round().astype(int)]
-    if not flagged_pks and not len(calm):
+    if not len(most_rows) and not len(calm):
         return '<p class="note">No respondents of the current version yet.</p>'
-    found = stored_answers(session, list(flagged_pks) + calm.tolist())
     items = screener.instrument.item_ids
-
-    def block(pks: Sequence[int]) -> tuple[np.ndarray, list[str]]:
-        answers = np.array(
-            [[found[pk].answers.get(item) for item in items] for pk in pks], dtype=np.float64
-        ).reshape(len(pks), len(items))
-        return answers, [found[pk].respondent_id for pk in pks]
-
     groups = []
-    most, most_ids = block(list(flagged_pks))
-    if len(most_ids):
-        groups.append((f"Most flagged ({len(most_ids)})", most, most_ids))
-    typical, typical_ids = block(calm.tolist())
-    if len(typical_ids):
-        groups.append((f"Typical: no flags ({len(typical_ids)}, spread over arrival)",
-                       typical, typical_ids))
+    if len(most_rows):
+        groups.append((f"Most flagged ({len(most_rows)})", _answers_shown(stored, most_rows,
+                       screener), stored.respondent_ids[most_rows].tolist()))
+    if len(calm):
+        groups.append((f"Typical: no flags ({len(calm)}, spread over arrival)",
+                       _answers_shown(stored, calm, screener),
+                       stored.respondent_ids[calm].tolist()))
     instrument = screener.instrument
     picture = _patterns_picture(
         items, groups, int(instrument.lowest.min()), int(instrument.highest.max())
@@ -479,30 +502,20 @@ def _pattern_section(session: Session, survey: Survey, screener: Screener) -> st
     )
 
 
-def _scale_section(session: Session, survey: Survey, screener: Screener) -> str:
+def _scale_section(stored: SurveyData, screener: Screener) -> str:
     instrument = screener.instrument
     if not instrument.scales:
         return '<p class="note">The instrument defines no scales.</p>'
-    stored = read_stored(session, survey.id, Target(screener, [screener.version_id]))
-    if len(stored) == 0:
+    members, answers = stored.of_version(screener.version_id)
+    if len(members) == 0:
         return '<p class="note">No respondents of the current version yet.</p>'
-    mine = Respondent.survey_id == survey.id
-    flagged = np.array(
-        session.scalars(select(Respondent.id).where(mine, Respondent.flag_count > 0)).all(),
-        dtype=np.int64,
-    )
-    excluded = np.array(
-        session.scalars(
-            select(Respondent.id).where(mine, Respondent.review_decision == Decision.EXCLUDE)
-        ).all(),
-        dtype=np.int64,
-    )
+    matrix = ResponseMatrix(respondent_ids=stored.respondent_ids[members], answers=answers)
     groups = {
         "everyone": None,
-        "without the flagged": ~np.isin(stored.pks, flagged),
-        "without those reviewed as exclude": ~np.isin(stored.pks, excluded),
+        "without the flagged": stored.flag_counts[members] == 0,
+        "without those reviewed as exclude": stored.decisions[members] != Decision.EXCLUDE.value,
     }
-    tables = {label: scale_statistics(instrument, stored.matrix, keep).set_index("scale")
+    tables = {label: scale_statistics(instrument, matrix, keep).set_index("scale")
               for label, keep in groups.items()}
     header = ["scale", "items"]
     for label in groups:
@@ -516,7 +529,7 @@ def _scale_section(session: Session, survey: Survey, screener: Screener) -> str:
                     _num(line["alpha"], 3)]
         rows.append(row)
     counts = ", ".join(
-        f"{label}: {_n(int(len(stored) if keep is None else keep.sum()))}"
+        f"{label}: {_n(int(len(members) if keep is None else keep.sum()))}"
         for label, keep in groups.items()
     )
     return (
@@ -532,40 +545,26 @@ def _scale_section(session: Session, survey: Survey, screener: Screener) -> str:
     )
 
 
-def _drill_section(session: Session, survey: Survey, screener: Screener) -> str:
+def _drill_section(stored: SurveyData, screener: Screener) -> str:
     """What this questionnaire can catch: careless respondents planted among the survey's own
     respondents (or simulated ones), screened, and counted. Labelled as a simulation."""
-    from detectors import ResponseMatrix
     from detectors.planting import drill_summary
 
     instrument = screener.instrument
-    pks = np.array(
-        session.scalars(
-            select(Respondent.id)
-            .where(Respondent.survey_id == survey.id,
-                   Respondent.survey_version_id == screener.version_id)
-            .order_by(Respondent.id)
-        ).all(),
-        dtype=np.int64,
-    )
+    rows = np.flatnonzero(stored.version_ids == screener.version_id)
     ordinary = None
-    if len(pks) >= DRILL_MIN_RESPONDENTS:
-        if len(pks) > DRILL_RESPONDENTS:
-            pks = pks[np.linspace(0, len(pks) - 1, DRILL_RESPONDENTS).round().astype(int)]
-        found = stored_answers(session, pks.tolist())
-        values = np.array(
-            [[found[pk].answers.get(item) for item in instrument.item_ids] for pk in pks.tolist()],
-            dtype=np.float64,
-        ).reshape(len(pks), len(instrument.item_ids))
+    if len(rows) >= DRILL_MIN_RESPONDENTS:
+        if len(rows) > DRILL_RESPONDENTS:
+            rows = rows[np.linspace(0, len(rows) - 1, DRILL_RESPONDENTS).round().astype(int)]
         ordinary = ResponseMatrix.from_arrays(
-            instrument, values, [found[pk].respondent_id for pk in pks.tolist()]
+            instrument, _answers_shown(stored, rows, screener), stored.respondent_ids[rows]
         )
     result = drill_summary(instrument, ordinary, seeds=DRILL_SEEDS)
     source = (
         f"answers simulated from the instrument (fewer than {DRILL_MIN_RESPONDENTS} respondents "
         "of the current version are stored)"
         if ordinary is None
-        else f"{_n(len(pks))} of this survey's respondents (current version)"
+        else f"{_n(len(rows))} of this survey's respondents (current version)"
     )
     parts = [
         '<p class="note" id="drill-label"><strong>Simulation.</strong> Careless respondents of '
@@ -606,48 +605,35 @@ def _pct(share: float, digits: int = 1) -> str:
     return f"{100 * share:.{digits}f}%"
 
 
-def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = None) -> str:
-    """The screening report of a survey as one self-contained HTML page."""
+def build_report(
+    session: Session,
+    survey: Survey,
+    *,
+    now: dt.datetime | None = None,
+    stored: SurveyData | None = None,
+) -> str:
+    """The screening report of a survey as one self-contained HTML page. ``stored``: the
+    survey as already read (the nightly job shares one read with the export); read here
+    otherwise."""
     now = now or utcnow()
-    mine = Respondent.survey_id == survey.id
-    pks = np.array(
-        session.scalars(select(Respondent.id).where(mine).order_by(Respondent.id)).all(),
-        dtype=np.int64,
-    )
-    total = len(pks)
-    flagged_any = int(
-        session.scalar(select(func.count()).where(mine, Respondent.flag_count > 0)) or 0
-    )
+    if stored is None:
+        stored = read_survey(session, survey)
+    total = len(stored)
+    flagged_any = int((stored.flag_counts > 0).sum())
+    # None (not reviewed) reads "None" as text; no decision is called that.
+    decisions, decided = np.unique(stored.decisions.astype(str), return_counts=True)
     reviewed = {
-        (decision.value if decision is not None else "none"): int(n)
-        for decision, n in session.execute(
-            select(Respondent.review_decision, func.count()).where(mine)
-            .group_by(Respondent.review_decision)
-        )
+        ("none" if d == "None" else d): n
+        for d, n in zip(decisions.tolist(), decided.tolist(), strict=True)
     }
-    days = [
-        {"day": str(day), "respondents": int(n), "flagged_any": int(flagged)}
-        for day, n, flagged in store.arrivals_by_day(session, survey.id)
-    ]
+    days = _arrivals_by_day(stored)
     assert survey.current_version_id is not None  # set when the survey is registered
     screener = screener_for(session, survey.current_version_id)
     instrument = screener.instrument
-    numbers = store.version_numbers(session, survey.id)
-    verdicts = dict(
-        session.execute(
-            select(Respondent.verdict, func.count())
-            .where(Respondent.survey_id == survey.id)
-            .group_by(Respondent.verdict)
-        ).all()
-    )
-    on_current = int(
-        session.scalar(
-            select(func.count()).where(
-                Respondent.survey_id == survey.id,
-                Respondent.survey_version_id == survey.current_version_id,
-            )
-        ) or 0
-    )
+    numbers = stored.layout.numbers
+    found, counted = np.unique(stored.verdicts.astype(str), return_counts=True)
+    verdicts = {Verdict(v): int(n) for v, n in zip(found.tolist(), counted.tolist(), strict=True)}
+    on_current = int((stored.version_ids == survey.current_version_id).sum())
     reference = (
         session.get(ReferenceSample, survey.current_reference_id)
         if survey.current_reference_id is not None else None
@@ -720,11 +706,11 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
         )
 
     parts.append("<h2>What this questionnaire can catch</h2>")
-    parts.append(_drill_section(session, survey, screener))
+    parts.append(_drill_section(stored, screener))
 
     parts.append("<h2>Detectors</h2>")
     step = _sample_step(total)
-    detectors = _detector_data(session, survey.id, pks, step)
+    detectors = _detector_data(session, stored, step)
     names = _detector_names(detectors)
     parts.append(
         '<p class="note">For each detector: how its scores are spread, with the cut-off at or '
@@ -762,7 +748,7 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
     parts.append("</div>")
 
     parts.append("<h2>Flags that come together</h2>")
-    counts = _co_occurrence(session, survey.id, names)
+    counts = _co_occurrence(session, stored, names)
     if counts.sum():
         flagging = [i for i in range(len(names)) if counts[i, i] > 0]
         parts.append(
@@ -790,7 +776,7 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
         parts.append('<p class="note">No respondents yet.</p>')
 
     parts.append("<h2>Answer patterns</h2>")
-    parts.append(_pattern_section(session, survey, screener))
+    parts.append(_pattern_section(stored, screener))
 
     parts.append("<h2>Scales</h2>")
     if on_current < total:
@@ -798,7 +784,7 @@ def build_report(session: Session, survey: Survey, *, now: dt.datetime | None = 
             f'<p class="note">{_n(total - on_current)} respondent(s) of earlier survey versions '
             "are left out of this section and of the answer patterns.</p>"
         )
-    parts.append(_scale_section(session, survey, screener))
+    parts.append(_scale_section(stored, screener))
 
     parts.append(
         "<footer><p>Heedful screening report. Scores are higher where a respondent is more "

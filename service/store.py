@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING, Any
 import orjson
 from sqlalchemy import (
     Row,
+    String,
     and_,
     bindparam,
     case,
@@ -29,6 +30,7 @@ from sqlalchemy import (
     insert,
     or_,
     select,
+    type_coerce,
     update,
 )
 from sqlalchemy.orm import Session
@@ -101,10 +103,9 @@ __all__ = [
     "packed_results_of",
     "packed_results_between",
     "survey_pks",
-    "arrivals_by_day",
     "survey_flags",
-    "respondent_answers",
     "respondents_of",
+    "survey_rows",
 ]
 
 #: Rows per IN (...) list: well under SQLite's bound-parameter limit.
@@ -630,6 +631,43 @@ def stored_answer_rows(
     )
 
 
+def survey_rows(session: Session, survey_id: int, after_pk: int, limit: int) -> list[AnyRow]:
+    """The next ``limit`` respondents of a survey (by id, after ``after_pk``), every column a
+    whole-survey read needs: id, respondent_id, survey_version_id, answer_codes, received_at,
+    submitted_at, started_at (times as stored: text in SQLite), duration_seconds,
+    reference_id, flag_count, flag_bits, verdict, careless_score, review_decision (as stored
+    text), results."""
+    return list(
+        session.connection().execute(
+            select(
+                Respondent.id,
+                Respondent.respondent_id,
+                Respondent.survey_version_id,
+                Respondent.answer_codes,
+                # Times and codes are read as stored and converted a column at a time, instead
+                # of by one Python call per value.
+                type_coerce(Respondent.received_at, String),
+                type_coerce(Respondent.submitted_at, String),
+                type_coerce(Respondent.started_at, String),
+                Respondent.duration_seconds,
+                Respondent.reference_id,
+                Respondent.flag_count,
+                Respondent.flag_bits,
+                type_coerce(Respondent.verdict, String),
+                Respondent.careless_score,
+                type_coerce(Respondent.review_decision, String),
+                Respondent.results,
+            )
+            .where(
+                Respondent.survey_id + 0 == survey_id,  # by primary key range, as above
+                Respondent.id > after_pk,
+            )
+            .order_by(Respondent.id)
+            .limit(limit)
+        )
+    )
+
+
 def timed_rows(session: Session, survey_id: int, low: int, high: int) -> list[AnyRow]:
     """(id, duration_seconds, started_at, submitted_at) of the respondents with ids in
     [low, high] that have no duration but both timestamps."""
@@ -781,20 +819,6 @@ def flag_bits_by_day(session: Session, survey_id: int) -> list[AnyRow]:
     )
 
 
-def arrivals_by_day(session: Session, survey_id: int) -> list[AnyRow]:
-    """(day, respondents, flagged by at least one detector) per day of arrival (UTC)."""
-    day = _day(session).label("day")
-    flagged = func.coalesce(func.sum(case((Respondent.flag_count > 0, 1), else_=0)), 0)
-    return list(
-        session.execute(
-            select(day, func.count(), flagged)
-            .where(Respondent.survey_id == survey_id)
-            .group_by(day)
-            .order_by(day)
-        )
-    )
-
-
 def survey_flags(session: Session, survey_id: int) -> list[AnyRow]:
     """(id, survey_version_id, flag_count, verdict, careless_score, review_decision) of every
     respondent of a survey, by id."""
@@ -812,22 +836,6 @@ def survey_flags(session: Session, survey_id: int) -> list[AnyRow]:
             .order_by(Respondent.id)
         )
     )
-
-
-def respondent_answers(session: Session, pks: Sequence[int]) -> dict[int, Row[Any]]:
-    """pk -> (id, respondent_id, survey_version_id, answer_codes) of a few respondents."""
-    out: dict[int, AnyRow] = {}
-    for chunk in _chunks(list(pks)):
-        for row in session.execute(
-            select(
-                Respondent.id, Respondent.respondent_id, Respondent.survey_version_id,
-                Respondent.answer_codes,
-            ).where(
-                Respondent.id.in_(chunk)
-            )
-        ):
-            out[row.id] = row
-    return out
 
 
 # Summary ----------------------------------------------------------------------------------------

@@ -16,7 +16,7 @@ from sqlalchemy import select
 
 from detectors import REGISTRY, ResponseMatrix, State, parse_instrument
 from detectors.scales import scale_scores
-from service import exports, file_commands, outcomes, store
+from service import exports, file_commands, outcomes, store, survey_data
 from service.api import exports as export_api
 from service.cli import main
 from service.files import formula_safe, write_csv
@@ -452,3 +452,14 @@ def test_text_cells_that_start_a_formula_are_quoted_in_every_csv(service, survey
         formula_safe(rid) for rid in frame["respondent_id"]
     ] == [f"'{rid}" for rid in RISKY_IDS + ["\tx", "\rx"]] + PLAIN_IDS
     assert (read["score"] == -1.5).all()  # numbers are never quoted
+
+
+@pytest.mark.parametrize("without", [(), ("excluded",), ("flagged",)])
+def test_an_export_from_a_shared_read_equals_one_read_on_its_own(service, stored, without):
+    with service.database.read() as session:
+        survey = store.get_survey(session, "pulse")
+        alone, _ = exports.export_frame(session, survey, without=without)
+        shared = survey_data.read_survey(session, survey, chunk=9)
+        together, _ = exports.export_frame(session, survey, without=without, stored=shared)
+    assert len(alone) == len(together) > 0
+    pd.testing.assert_frame_equal(alone, together)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import datetime as dt
 from html.parser import HTMLParser
 
 import numpy as np
@@ -12,9 +13,9 @@ from sqlalchemy import text
 from detectors import REGISTRY, matrix_from_frame, parse_instrument
 from detectors.planting import KINDS
 from detectors.reliability import cronbach_alpha, keyed_answers
-from service import rescreen, store
+from service import rescreen, store, survey_data
 from service.cli import main
-from service.reports import CAUTION_HEAD
+from service.reports import CAUTION_HEAD, build_report
 
 from .conftest import make_document, random_rows, respondent, stored_results
 
@@ -278,3 +279,16 @@ def test_alpha_of_stored_answers_equals_alpha_of_posted_ones(service, survey, mi
     posted[:, instrument.keyed == -1] = 6 - posted[:, instrument.keyed == -1]
     ours = cronbach_alpha(keyed_answers(instrument, stored.matrix, np.arange(8)), missing)
     assert ours == pytest.approx(cronbach_alpha(posted, missing), abs=1e-12)
+
+
+def test_a_report_from_a_shared_read_equals_one_read_on_its_own(service, survey):
+    _screened_survey(service, n=90)
+    service.client.post("/v1/surveys/pulse/respondents/r00000/review",
+                        headers=service.auth(service.analyst),
+                        json={"decision": "exclude", "note": "straight line"})
+    now = dt.datetime(2027, 5, 4, 12, tzinfo=dt.UTC)
+    with service.database.read() as session:
+        survey_row = store.get_survey(session, "pulse")
+        alone = build_report(session, survey_row, now=now)
+        shared = survey_data.read_survey(session, survey_row, chunk=7)
+        assert build_report(session, survey_row, now=now, stored=shared) == alone
