@@ -52,6 +52,9 @@ __all__ = [
     "Summary",
     "Written",
     "written",
+    "Rewritten",
+    "rewritten",
+    "flag_bits_of",
     "ResultColumns",
     "result_columns",
     "join_columns",
@@ -66,6 +69,7 @@ __all__ = [
     "cutoffs_now",
     "flagged_by_day",
     "earlier_record",
+    "StoredScreenings",
     "earlier_results",
     "survey_counts",
 ]
@@ -337,17 +341,35 @@ def _kept(screened: Screened, codes: DetectorCodes) -> list[dict[str, Any] | Non
         keys = getattr(REGISTRY.get(name), "compares_respondents", ())
         if result is None or not keys:
             continue
-        values = [_plain_column(result.evidence[key]) for key in keys]
+        # No other respondent counted where every entry is empty: what screening alone gives
+        # back, so nothing is kept there.
+        counted = np.zeros(n, dtype=bool)
+        for key in keys:
+            counted |= ~_empty_cells(np.asarray(result.evidence[key]))
+        rows = np.flatnonzero((screened.states[j] == State.ASSESSED) & counted)
+        if not len(rows):
+            continue
+        values = [_plain_column(np.asarray(result.evidence[key])[rows]) for key in keys]
         code = str(codes.by_name[name])
-        for i in np.flatnonzero(screened.states[j] == State.ASSESSED).tolist():
-            entry = [column[i] for column in values]
-            if all(_empty(value) for value in entry):
-                continue  # no other respondent counted: what screening alone gives back
+        for k, i in enumerate(rows.tolist()):
             mine = kept[i]
             if mine is None:
                 mine = kept[i] = {}
-            mine[code] = entry
+            mine[code] = [column[k] for column in values]
     return kept
+
+
+def _empty_cells(values: np.ndarray) -> np.ndarray:
+    """bool per respondent: whether an evidence column's value is empty (as ``_empty``)."""
+    if values.dtype.kind in "biuf":
+        cells = values == 0
+        if values.dtype.kind == "f" and values.ndim == 1:  # NaN reads back as None
+            cells |= np.isnan(values)
+    else:
+        cells = np.equal(values, np.array(None, dtype=object)).astype(bool)
+        rest = ~cells  # only values that are not None need a closer look
+        cells[rest] = [_empty(_plain(v)) for v in values[rest].tolist()]
+    return cells.reshape(len(values), -1).all(axis=1)
 
 
 def _empty(value: Any) -> bool:
@@ -372,36 +394,102 @@ class Written:
         }
 
 
-def written(
+def written(screened: Screened, codes: DetectorCodes) -> list[Written]:
+    """Each respondent's stored screening."""
+    columns = rewritten(screened, codes)
+    return [
+        Written(screened.summary(i), columns.results(i), columns.kept_evidence[i])
+        for i in range(len(columns))
+    ]
+
+
+@dataclass(frozen=True, eq=False)
+class Rewritten:
+    """What the respondent rows store of a screening, a column per field (for bulk writes)."""
+
+    flag_counts: np.ndarray  # int64
+    flag_bits: np.ndarray  # int64
+    verdicts: list[str]  # the verdicts' stored values
+    careless_scores: list[float | None]
+    packed: np.ndarray  # (respondents, detectors) PACKED
+    kept_evidence: list[dict[str, Any] | None]
+
+    def __len__(self) -> int:
+        return len(self.flag_counts)
+
+    def results(self, i: int) -> bytes:
+        return self.packed[i].tobytes()
+
+    def update_rows(self, pks: np.ndarray) -> list[tuple[Any, ...]]:
+        """(flag_count, flag_bits, verdict, careless_score, results, kept_evidence, pk) per
+        respondent, as ``store.update_screenings`` takes them."""
+        width = self.packed.shape[1] * PACKED.itemsize
+        data = self.packed.tobytes()
+        blobs = [data[start : start + width] for start in range(0, len(data), width)]
+        return list(zip(
+            self.flag_counts.tolist(), self.flag_bits.tolist(), self.verdicts,
+            self.careless_scores, blobs, self.kept_evidence, pks.tolist(), strict=True,
+        ))
+
+
+def _verdict_values(verdicts: np.ndarray) -> list[str]:
+    values: list[str] = verdicts.tolist()
+    for value in set(values):
+        Verdict(value)  # raises on a value that is not a verdict
+    return values
+
+
+def flag_bits_of(flags: np.ndarray, names: Sequence[str], codes: DetectorCodes) -> np.ndarray:
+    """int64 per respondent: the flag set of bool (detectors, respondents) ``flags`` as stored."""
+    bits = np.array([1 << codes.by_name[name] for name in names], dtype=np.int64)
+    return (flags.T.astype(np.int64) * bits).sum(axis=1) if len(names) else np.zeros(
+        flags.shape[1], dtype=np.int64
+    )
+
+
+def rewritten(
     screened: Screened,
     codes: DetectorCodes,
-    keep: Mapping[int, tuple[bytes | None, dict[str, Any] | None]] | None = None,
+    keep: np.ndarray | None = None,
+    before: Sequence[bytes | None] = (),
+    before_kept: Sequence[dict[str, Any] | None] = (),
     rewrite: Sequence[str] = (),
-) -> list[Written]:
-    """Each respondent's stored screening. With ``keep`` (position to the stored results and
-    kept evidence of a respondent), only the detectors named in ``rewrite`` take the new
-    results there; the others keep their stored ones."""
+) -> Rewritten:
+    """The respondents' stored screening. Where ``keep`` (bool per respondent) is set, only
+    the detectors named in ``rewrite`` take the new results; the others keep their stored
+    ones (``before``: the stored results, ``before_kept``: the kept evidence)."""
     packed = _packed(screened, codes)
     kept = _kept(screened, codes)
-    if keep:
+    if keep is not None and keep.any():
         replaced = np.array([name in rewrite for name in screened.names], dtype=bool)
-        rewritten = {str(codes.by_name[name]) for name in rewrite}
-        for i, (blob, evidence) in keep.items():
-            before = np.frombuffer(blob or b"", dtype=PACKED)
-            at = {int(code): k for k, code in enumerate(before["code"].tolist())}
-            for j in np.flatnonzero(~replaced).tolist():
-                k = at.get(int(packed[i, j]["code"]))
-                if k is not None:
-                    packed[i, j] = before[k]
-            merged = {c: v for c, v in (evidence or {}).items() if c not in rewritten}
-            merged.update({c: v for c, v in (kept[i] or {}).items() if c in rewritten})
+        kept_rows = np.flatnonzero(keep)
+        blobs = [before[i] or b"" for i in kept_rows.tolist()]
+        lengths = np.fromiter((len(b) // PACKED.itemsize for b in blobs), np.int64, len(blobs))
+        entries = np.frombuffer(b"".join(blobs), dtype=PACKED)
+        owner = np.repeat(kept_rows, lengths)
+        column = np.full(256, -1, dtype=np.int64)
+        for j in np.flatnonzero(~replaced).tolist():
+            column[codes.by_name[screened.names[j]]] = j
+        where = column[entries["code"]]
+        mine = where >= 0
+        packed[owner[mine], where[mine]] = entries[mine]
+        rewritten_codes = {str(codes.by_name[name]) for name in rewrite}
+        for i in kept_rows.tolist():
+            evidence, new = before_kept[i], kept[i]
+            if evidence is None and new is None:
+                continue
+            merged = {c: v for c, v in (evidence or {}).items() if c not in rewritten_codes}
+            merged.update({c: v for c, v in (new or {}).items() if c in rewritten_codes})
             kept[i] = merged or None
-    width = packed.shape[1] * PACKED.itemsize
-    data = packed.tobytes()
-    return [
-        Written(screened.summary(i), data[i * width : (i + 1) * width], kept[i])
-        for i in range(packed.shape[0])
-    ]
+    careless = screened.verdicts.careless_score
+    return Rewritten(
+        flag_counts=screened.flags.sum(axis=0).astype(np.int64),
+        flag_bits=flag_bits_of(screened.flags, screened.names, codes),
+        verdicts=_verdict_values(screened.verdicts.verdict),
+        careless_scores=[None if c != c else c for c in np.asarray(careless, float).tolist()],
+        packed=packed,
+        kept_evidence=kept,
+    )
 
 
 # Reading -----------------------------------------------------------------------------------------
@@ -660,6 +748,115 @@ def flagged_by_day(session: Session, survey_id: int) -> dict[dt.date, dict[str, 
         for name in codes.names(int(bits)):
             counts[name] = counts.get(name, 0) + int(n)
     return out
+
+
+@dataclass(frozen=True, eq=False)
+class StoredScreenings:
+    """The stored screenings of some respondents (in the order asked for), a column per
+    field, as a re-screen reads them before replacing them. ``found`` is False for a
+    respondent no longer stored."""
+
+    pks: np.ndarray  # int64
+    found: np.ndarray  # bool
+    digests: np.ndarray  # object: answers_digest
+    version_ids: np.ndarray  # int64
+    reference_ids: list[int | None]
+    screened_at: list[Any]  # as stored
+    flag_bits: np.ndarray  # int64
+    verdicts: np.ndarray  # object: the stored verdict values
+    careless_scores: list[float | None]
+    screened_with: np.ndarray  # object
+    results: list[bytes | None]
+    kept_evidence: list[dict[str, Any] | None]
+
+    @classmethod
+    def read(cls, session: Session, pks: np.ndarray) -> StoredScreenings:
+        """The stored screenings of ``pks`` (ascending)."""
+        rows = store.screening_rows(session, pks.tolist())
+        n = len(pks)
+        columns: list[Sequence[Any]] = list(zip(*rows, strict=True)) if rows else [()] * 12
+        (ids, digests, versions, references, screened_at, _, bits, verdicts, careless,
+         screened_with, results, kept) = columns
+        at = np.searchsorted(pks, np.fromiter(ids, np.int64, len(rows)))
+        found = np.zeros(n, dtype=bool)
+        found[at] = True
+
+        def spread(values: Sequence[Any], fill: Any = None, dtype: Any = object) -> np.ndarray:
+            out = np.full(n, fill, dtype=dtype)
+            out[at] = np.array(values, dtype=dtype) if len(values) else out[at]
+            return out
+
+        kept_values = [
+            orjson.loads(value) if isinstance(value, str) else value for value in kept
+        ]
+        return cls(
+            pks=pks,
+            found=found,
+            digests=spread(digests),
+            version_ids=spread(versions, 0, np.int64),
+            reference_ids=spread(references).tolist(),
+            screened_at=spread(screened_at).tolist(),
+            flag_bits=spread([b or 0 for b in bits], 0, np.int64),
+            verdicts=spread(verdicts),
+            careless_scores=spread(careless).tolist(),
+            screened_with=spread(screened_with),
+            results=spread(results).tolist(),
+            kept_evidence=spread(kept_values).tolist(),
+        )
+
+    def take(self, rows: np.ndarray) -> StoredScreenings:
+        """The respondents at ``rows`` (a mask or positions)."""
+        picked = np.flatnonzero(rows) if rows.dtype == bool else rows
+        listed = picked.tolist()
+
+        def pick(values: list[Any]) -> list[Any]:
+            return [values[i] for i in listed]
+
+        return StoredScreenings(
+            pks=self.pks[picked], found=self.found[picked], digests=self.digests[picked],
+            version_ids=self.version_ids[picked], reference_ids=pick(self.reference_ids),
+            screened_at=pick(self.screened_at), flag_bits=self.flag_bits[picked],
+            verdicts=self.verdicts[picked], careless_scores=pick(self.careless_scores),
+            screened_with=self.screened_with[picked], results=pick(self.results),
+            kept_evidence=pick(self.kept_evidence),
+        )
+
+    def history(
+        self,
+        rows: np.ndarray,
+        earlier: ResultColumns,
+        codes: DetectorCodes,
+        versions: Sequence[str],
+        fingerprint: str,
+        replaced_at: dt.datetime,
+    ) -> tuple[list[str], list[tuple[Any, ...]], tuple[str, ...]]:
+        """The screening history rows that keep these respondents' stored screenings (at
+        ``rows``; ``earlier``: their stored results as columns, ``versions``: the versions
+        of ``earlier``'s detectors, known where the result was produced by the screener
+        ``fingerprint``), for ``store.insert_screening_history``: column names, rows, and
+        the columns whose values are as stored."""
+        names = [
+            "respondent_pk", "survey_version_id", "reference_id", "screened_at", "replaced_at",
+            "flag_count", "flags", "verdict", "careless_score", "packed_results", "versions",
+            "results",
+        ]
+        flag_sets: dict[int, tuple[str, ...]] = {}
+        out = []
+        for k in rows.tolist():
+            bits = int(self.flag_bits[k])
+            flags = flag_sets.get(bits)
+            if flags is None:
+                flags = flag_sets[bits] = codes.names(bits)
+            record = earlier_record(
+                earlier, k, versions if self.screened_with[k] == fingerprint else None
+            )
+            out.append((
+                int(self.pks[k]), int(self.version_ids[k]), self.reference_ids[k],
+                self.screened_at[k], replaced_at, len(flags), flags_column(flags),
+                self.verdicts[k], self.careless_scores[k], record["packed_results"],
+                record["versions"], record["results"],
+            ))
+        return names, out, ("screened_at", "verdict", "packed_results")
 
 
 def earlier_record(

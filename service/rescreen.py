@@ -25,13 +25,13 @@ from .answers import matrix as stored_matrix
 from .db import utcnow
 from .models import ReferenceSample, Survey
 from .outcomes import (
-    Summary,
+    StoredScreenings,
     detector_codes,
-    earlier_record,
+    flag_bits_of,
     result_columns,
+    rewritten,
     screen_matrix,
     seconds_taken,
-    written,
 )
 from .screeners import Screener, answers_fit, screener_for, uses_reference
 from .settings import Settings
@@ -256,84 +256,52 @@ def rescreen_rows(
     if rescore is None:
         rescore = stored.stale(screener, reference_id)[1][positions]
     pks = stored.pks[positions]
-    rows_before = store.screening_rows(session, pks.tolist())
-    unchanged = np.array(
-        [
-            (row := rows_before.get(pk)) is not None and row.answers_digest == digest
-            for pk, digest in zip(pks.tolist(), stored.digests[positions].tolist(), strict=True)
-        ],
-        dtype=bool,
-    )
+    before = StoredScreenings.read(session, pks)
+    unchanged = before.found & (before.digests == stored.digests[positions])
     count.skipped = int((~unchanged).sum())
-    positions, pks, rescore = positions[unchanged], pks[unchanged], rescore[unchanged]
+    before = before.take(unchanged)
+    positions, pks, rescore = positions[unchanged], pks[unchanged], rescore[unchanged].copy()
     n = len(positions)
     if n == 0:
         return count
     screened = screen_matrix(screener, stored.matrix.take(positions), reference)
     codes = detector_codes(session, screened.names)
-    before = [rows_before[pk] for pk in pks.tolist()]
-    summary_before = [
-        Summary.stored(codes, row.flag_bits, row.verdict, row.careless_score) for row in before
-    ]
     names = screened.names
     sample = [name for name in names if name in screened.sample_names]
+    new_bits = flag_bits_of(screened.flags, names, codes)
     # A detector that uses no reference gives a result that depends only on the answers and
     # the screener, so for a respondent stale only by its reference it is unchanged and stays
     # stored. As a check, the flags such detectors raise now are compared with the stored
     # ones; a respondent where they differ is rewritten whole.
-    others = [d for d, name in enumerate(names) if name not in screened.sample_names]
-    for k in np.flatnonzero(~rescore).tolist():
-        now_flagged = [names[d] for d in others if screened.flags[d, k]]
-        was_flagged = [f for f in summary_before[k].flags if f not in screened.sample_names]
-        if now_flagged != was_flagged:
-            rescore[k] = True
-    earlier = result_columns([row.results for row in before], codes, names)
-    keep = {
-        k: (before[k].results, before[k].kept_evidence) for k in np.flatnonzero(~rescore).tolist()
-    }
-    screenings = written(screened, codes, keep=keep, rewrite=sample)
+    sample_bits = int(flag_bits_of(np.ones((len(sample), 1), bool), sample, codes)[0])
+    rescore |= (before.flag_bits & ~sample_bits) != (new_bits & ~sample_bits)
+    earlier = result_columns(before.results, codes, names)
+    screenings = rewritten(
+        screened, codes, keep=~rescore, before=before.results, before_kept=before.kept_evidence,
+        rewrite=sample,
+    )
     had_results = ~rescore | earlier.present.any(axis=1)
-    new_states = screened.states.T
-    state_changed = (earlier.present & (earlier.states != new_states)).any(axis=1)
-    changed = [
-        k for k in range(n)
-        if had_results[k] and (
-            state_changed[k]
-            or summary_before[k].flags != screenings[k].summary.flags
-            or summary_before[k].verdict != screenings[k].summary.verdict
+    state_changed = (earlier.present & (earlier.states != screened.states.T)).any(axis=1)
+    changed = np.flatnonzero(
+        had_results & (
+            state_changed | (before.flag_bits != new_bits)
+            | (before.verdicts != np.asarray(screenings.verdicts, dtype=object))
         )
-    ]
+    )
     versions = [type(screener.detectors[name]).version for name in names]
-    history = []
-    for k in changed:
-        row = before[k]
-        history.append(
-            {
-                "respondent_pk": int(pks[k]),
-                "survey_version_id": row.survey_version_id,
-                "reference_id": row.reference_id,
-                "screened_at": row.screened_at,
-                "replaced_at": now,
-                **summary_before[k].history_columns(),
-                **earlier_record(
-                    earlier, k, versions if row.screened_with == screener.fingerprint else None
-                ),
-            }
-        )
-    store.insert_screening_history(session, history)
-    store.update_screening(
+    store.insert_screening_history(
+        session, *before.history(changed, earlier, codes, versions, screener.fingerprint, now)
+    )
+    store.update_screenings(
         session,
-        [
-            {
-                "pk": pk, **screenings[k].columns(codes), "reference_id": reference_id,
-                "screened_at": now, "survey_version_id": screener.version_id,
-                "screened_with": screener.fingerprint,
-            }
-            for k, pk in enumerate(pks.tolist())
-        ],
+        screenings.update_rows(pks),
+        {
+            "reference_id": reference_id, "screened_at": now,
+            "survey_version_id": screener.version_id, "screened_with": screener.fingerprint,
+        },
     )
     count.rescreened = n
-    count.changed = len(history)
+    count.changed = len(changed)
     count.results_written = len(sample) * n + (len(names) - len(sample)) * int(rescore.sum())
     return count
 

@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 
 import orjson
 from sqlalchemy import (
+    JSON,
     Row,
     String,
     and_,
@@ -333,18 +334,6 @@ def respondents_of(session: Session, pks: Sequence[int]) -> list[Row[Any]]:
     for chunk in _chunks(list(pks)):
         out.extend(session.execute(select(*table.c).where(table.c.id.in_(chunk))))
     return out
-
-
-def update_screening(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Set the stored screening (summary, packed results, kept evidence), reference_id and
-    screened_at of respondents (each with ``pk``)."""
-    if not rows:
-        return
-    table = Respondent.__table__
-    values: dict[str, Any] = {k: bindparam(k) for k in rows[0] if k != "pk"}
-    session.connection().execute(
-        update(table).where(table.c.id == bindparam("pk")).values(values), rows
-    )
 
 
 def json_text(value: Any) -> str:
@@ -715,34 +704,115 @@ def count_stale(
     )
 
 
-def screening_rows(session: Session, pks: Sequence[int]) -> dict[int, AnyRow]:
-    """pk -> the stored screening summary of each respondent that still exists."""
-    out: dict[int, AnyRow] = {}
-    for chunk in _chunks(list(pks)):
-        rows = session.execute(
-            select(
-                Respondent.id,
-                Respondent.answers_digest,
-                Respondent.survey_version_id,
-                Respondent.reference_id,
-                Respondent.screened_at,
-                Respondent.flag_count,
-                Respondent.flag_bits,
-                Respondent.verdict,
-                Respondent.careless_score,
-                Respondent.screened_with,
-                Respondent.results,
-                Respondent.kept_evidence,
-            ).where(Respondent.id.in_(chunk))
+def screening_rows(session: Session, pks: Sequence[int]) -> list[AnyRow]:
+    """The stored screening of each of these respondents that still exists, as stored (times,
+    verdicts and kept evidence as the driver gives them; ``outcomes`` reads them): id,
+    answers_digest, survey_version_id, reference_id, screened_at, flag_count, flag_bits,
+    verdict, careless_score, screened_with, results, kept_evidence."""
+    out: list[AnyRow] = []
+    connection = session.connection()
+    for chunk in _chunks(list(pks), SCREENING_CHUNK):
+        out.extend(
+            connection.execute(
+                select(
+                    Respondent.id,
+                    Respondent.answers_digest,
+                    Respondent.survey_version_id,
+                    Respondent.reference_id,
+                    type_coerce(Respondent.screened_at, String),
+                    Respondent.flag_count,
+                    Respondent.flag_bits,
+                    type_coerce(Respondent.verdict, String),
+                    Respondent.careless_score,
+                    Respondent.screened_with,
+                    Respondent.results,
+                    type_coerce(Respondent.kept_evidence, String),
+                ).where(Respondent.id.in_(chunk))
+            )
         )
-        for row in rows:
-            out[row.id] = row
     return out
 
 
-def insert_screening_history(session: Session, rows: list[dict[str, Any]]) -> None:
+def _bulk(
+    session: Session, sql: str, table: Any, names: Sequence[str], rows: Sequence[Sequence[Any]],
+    raw: Sequence[str] = (),
+) -> None:
+    """Run ``sql`` (columns in ``names`` order as ``{}`` placeholders) once per row through
+    the driver's executemany, each value converted as its column's type converts it, once
+    per column (``raw``: columns whose values are already as stored)."""
+    connection = session.connection()
+    dialect = connection.dialect
+    mark = "?" if dialect.paramstyle == "qmark" else "%s"
+    processors = [
+        None if name in raw or name not in table.c else table.c[name].type.bind_processor(dialect)
+        for name in names
+    ]
+    if any(p is not None for p in processors):
+        converted = [list(row) for row in rows]
+        for k, processor in enumerate(processors):
+            if processor is None:
+                continue
+            given: Any = None
+            value: Any = None
+            for row in converted:
+                if row[k] is None:
+                    continue
+                if row[k] is not given:  # one value repeated (a time) is converted once
+                    given, value = row[k], processor(row[k])
+                row[k] = value
+        rows = converted
+    marks = [
+        f"CAST({mark} AS JSON)" if dialect.name == "postgresql" and name in table.c
+        and isinstance(table.c[name].type, JSON) else mark
+        for name in names
+    ]
+    connection.exec_driver_sql(sql.format(*marks), list(map(tuple, rows)))
+
+
+#: Respondents per bulk read of stored screenings (SQLite allows 32,766 bound values).
+SCREENING_CHUNK = 5_000
+#: The screening columns ``update_screenings`` sets per respondent, in row order.
+SCREENING_COLUMNS = (
+    "flag_count", "flag_bits", "verdict", "careless_score", "results", "kept_evidence",
+)
+
+
+def update_screenings(
+    session: Session, rows: Sequence[Sequence[Any]], fixed: dict[str, Any]
+) -> None:
+    """Set the stored screening of respondents in bulk: each row holds the values of
+    ``SCREENING_COLUMNS`` (the verdict as its stored value, kept evidence as a dict or None),
+    then the respondent's id; ``fixed`` sets columns (reference_id, screened_at,
+    survey_version_id, screened_with) to one value for every row."""
+    if not rows:
+        return
+    table = Respondent.__table__
+    names = [*SCREENING_COLUMNS, *fixed]
+    sets = ", ".join(f"{name} = {{}}" for name in names)
+    dialect = session.connection().dialect
+    values = []
+    for name, value in fixed.items():  # converted once, not once per row
+        processor = table.c[name].type.bind_processor(dialect)
+        values.append(value if processor is None or value is None else processor(value))
+    _bulk(
+        session, f"UPDATE {table.name} SET {sets} WHERE id = {{}}", table, [*names, "id"],
+        [(*row[:-1], *values, row[-1]) for row in rows],
+        raw=("verdict", "results", *fixed),
+    )
+
+
+def insert_screening_history(
+    session: Session, names: Sequence[str], rows: Sequence[Sequence[Any]],
+    raw: Sequence[str] = (),
+) -> None:
+    """Insert screening history rows (values of the columns ``names``, in order; ``raw``:
+    columns whose values are already as stored)."""
     if rows:
-        session.connection().execute(insert(ScreeningHistory.__table__), rows)
+        table = ScreeningHistory.__table__
+        columns = ", ".join(names)
+        marks = ", ".join("{}" for _ in names)
+        _bulk(session, f"INSERT INTO {table.name} ({columns}) VALUES ({marks})", table, names,
+              rows, raw=raw)
 
 
 def screening_history_of(session: Session, pk: int) -> list[ScreeningHistory]:

@@ -384,3 +384,63 @@ def test_ctrl_c_exits_130_and_says_the_next_run_finishes(two_surveys, database_u
     code = main(["nightly", "--out", str(tmp_path), "--database", database_url])
     assert code == 130
     assert "next run finishes the rest" in capsys.readouterr().err
+
+
+def _fresh_rows(database: Database, survey: str) -> dict[int, tuple]:
+    """Each respondent's screening columns as a fresh screening of every stored respondent of
+    the survey, in one matrix against the survey's current reference, would store them."""
+    with database.read() as session:
+        found = store.get_survey(session, survey)
+        [target] = rescreen.screening_targets(session, found)
+        stored = rescreen.read_stored(session, found.id, target)
+        reference = store.reference_of(session, found.current_reference_id)
+        screened = outcomes.screen_matrix(target.screener, stored.matrix, reference.data)
+        codes = outcomes.detector_codes(session)
+        return {
+            int(pk): (
+                w.summary.flag_count, codes.bits(w.summary.flags), w.summary.verdict.value,
+                w.summary.careless_score, w.results,
+                None if w.kept_evidence is None else json.loads(store.json_text(w.kept_evidence)),
+                found.current_reference_id,
+            )
+            for pk, w in zip(stored.pks.tolist(), outcomes.written(screened, codes), strict=True)
+        }
+
+
+def _stored_rows(database: Database) -> dict[int, tuple]:
+    with database.read() as session:
+        rows = session.execute(
+            select(Respondent.id, Respondent.flag_count, Respondent.flag_bits, Respondent.verdict,
+                   Respondent.careless_score, Respondent.results, Respondent.kept_evidence,
+                   Respondent.reference_id)
+        ).all()
+    return {row[0]: (row[1], row[2], row[3].value, *row[4:]) for row in rows}
+
+
+def test_a_bulk_rescreen_stores_what_a_fresh_screening_computes(database_url, tmp_path):
+    """Nulls, left-out items, straight lines (copies of each other, whose evidence is kept)
+    and fast respondents, posted in one batch and screened on arrival without a reference
+    sample; then the nightly job (only the reference-based results rewritten) and a full
+    re-screen (every result rewritten) store exactly what screening all of them at once
+    against the reference gives."""
+    settings = Settings(database_url=database_url, reference_min_respondents=50)
+    database = _database(database_url)
+    _register(database, make_document(survey="pulse"))
+    rows = random_rows(160, seed=8)
+    rng = np.random.default_rng(8)
+    for k, row in enumerate(rows):
+        row["duration_seconds"] = float(rng.uniform(20, 600)) if k % 4 else 15.0
+        if k % 9 == 4:
+            del row["answers"]["q03"], row["answers"]["q07"]  # items left out
+    _ingest(database, settings, "pulse", rows)
+    kept_before = sum(r[5] is not None for r in _stored_rows(database).values())
+    assert kept_before > 0  # the straight lines are copies of each other
+
+    run = _run(database, settings, tmp_path)["pulse"]
+    assert run.stale == 160 and run.counts.rescreened == 160 and run.references
+    assert _stored_rows(database) == _fresh_rows(database, "pulse")
+
+    with database.write() as session:
+        rescreen.rescreen(session, store.get_survey(session, "pulse"), settings)
+    assert _stored_rows(database) == _fresh_rows(database, "pulse")
+    database.dispose()
