@@ -248,7 +248,8 @@ class ScreeningHistory(Base):
     flags: Mapped[str] = mapped_column(String(500), default="")
     verdict: Mapped[Verdict] = mapped_column(_enum(Verdict, "verdict"), default=Verdict.OK)
     careless_score: Mapped[float | None] = mapped_column(Float, default=None)
-    #: The earlier results packed (``outcomes.EARLIER``: code, state and flag, score), and
+    #: The earlier results packed (``outcomes.earlier_records``; earlier rows
+    #: ``outcomes.EARLIER``: code, state and flag, score), and
     #: the detectors' versions (one text for all, a list in the packed order, or None when
     #: not known). Rows written before migration 0005 hold ``results`` instead (detector name
     #: to {"version", "state", "score", "flagged"}); later ones an empty object there.

@@ -68,7 +68,8 @@ __all__ = [
     "detector_tallies",
     "cutoffs_now",
     "flagged_by_day",
-    "earlier_record",
+    "earlier_records",
+    "COMPACT",
     "StoredScreenings",
     "earlier_results",
     "survey_counts",
@@ -78,7 +79,8 @@ __all__ = [
 NO_REFERENCE = "no reference sample yet"
 #: One detector's stored result: its code, ``state | 4 * flagged`` and score.
 PACKED = np.dtype([("code", "u1"), ("mark", "u1"), ("score", "<f8")])
-#: One detector's earlier result in the screening history (the same record).
+#: One detector's earlier result in the screening history as kept before the compact layout
+#: (``earlier_records``); such rows are still read.
 EARLIER = PACKED
 _FLAGGED = 4
 #: Flag bits available in a signed 64-bit column.
@@ -840,48 +842,111 @@ class StoredScreenings:
             "flag_count", "flags", "verdict", "careless_score", "packed_results", "versions",
             "results",
         ]
+        known = self.screened_with[rows] == fingerprint
+        records, kept_versions = earlier_records(earlier, rows, versions, known)
         flag_sets: dict[int, tuple[str, ...]] = {}
-        out = []
-        for k in rows.tolist():
+        out: list[tuple[Any, ...]] = []
+        for at, k in enumerate(rows.tolist()):
             bits = int(self.flag_bits[k])
             flags = flag_sets.get(bits)
             if flags is None:
                 flags = flag_sets[bits] = codes.names(bits)
-            record = earlier_record(
-                earlier, k, versions if self.screened_with[k] == fingerprint else None
-            )
             out.append((
                 int(self.pks[k]), int(self.version_ids[k]), self.reference_ids[k],
                 self.screened_at[k], replaced_at, len(flags), flags_column(flags),
-                self.verdicts[k], self.careless_scores[k], record["packed_results"],
-                record["versions"], record["results"],
+                self.verdicts[k], self.careless_scores[k], records[at], kept_versions[at], {},
             ))
         return names, out, ("screened_at", "verdict", "packed_results")
 
 
-def earlier_record(
-    columns: ResultColumns, k: int, versions: Sequence[str] | None
-) -> dict[str, Any]:
-    """The screening history columns of respondent ``k``'s stored results in ``columns``
-    (``versions``: of every detector of ``columns``, when known)."""
-    present = np.flatnonzero(columns.present[k])
-    packed = np.zeros(len(present), dtype=EARLIER)
-    by_name = {name: j for j, name in enumerate(columns.names)}
-    packed["code"] = [_code_of(columns, j) for j in present.tolist()]
-    packed["mark"] = (columns.states[k, present].astype(np.uint8) & 3) | (
-        columns.flagged[k, present].astype(np.uint8) * _FLAGGED
-    )
-    packed["score"] = columns.scores[k, present]
-    kept_versions: Any = None
-    if versions is not None:
-        listed = [versions[by_name[columns.names[j]]] for j in present.tolist()]
-        kept_versions = listed[0] if len(set(listed)) == 1 else listed
-    return {"packed_results": packed.tobytes(), "versions": kept_versions, "results": {}}
+#: First byte of a compact history record set (a detector code is at most ``MAX_CODES - 1``).
+COMPACT = 0xFF
+#: How a compact record's score is kept (bits 3-4 of its mark): not at all (no finite score,
+#: read back as None as a NaN would be), as float32 (when that holds it exactly), as float64.
+_NO_SCORE, _SINGLE, _DOUBLE = 0, 1, 2
+_SCORE_BYTES = np.array([0, 4, 8])
 
 
-def _code_of(columns: ResultColumns, j: int) -> int:
+def earlier_records(
+    columns: ResultColumns, rows: np.ndarray, versions: Sequence[str], known: np.ndarray
+) -> tuple[list[bytes], list[Any]]:
+    """The screening history's record of the stored results of the respondents at ``rows``
+    of ``columns``, and the detectors' versions to keep with each (``versions``: of
+    ``columns``' detectors, kept where ``known``: one text when all are equal, else a list in
+    the records' order).
+
+    Compact layout (``COMPACT``): the marker byte, the set of detector codes present as a
+    little-endian 64-bit mask, one mark per present detector in code order (state, flag
+    and how the score is kept, see ``_SINGLE``), then the kept scores in the same order.
+    """
     assert columns.codes is not None
-    return columns.codes.by_name[columns.names[j]]
+    by_code = np.array([columns.codes.by_name[name] for name in columns.names], dtype=np.int64)
+    order = np.argsort(by_code)
+    present = np.ascontiguousarray(columns.present[rows][:, order])
+    scores = np.ascontiguousarray(columns.scores[rows][:, order], dtype="<f8")
+    n, d = present.shape
+    finite = present & np.isfinite(scores)
+    with np.errstate(over="ignore"):  # beyond float32's range: kept as float64
+        single_scores = np.ascontiguousarray(scores, dtype="<f4")
+    single = finite & (single_scores.astype(np.float64) == scores)
+    kind = np.where(single, _SINGLE, np.where(finite, _DOUBLE, _NO_SCORE)).astype(np.uint8)
+    marks = (
+        (columns.states[rows][:, order].astype(np.uint8) & 3)
+        | (columns.flagged[rows][:, order].astype(np.uint8) * _FLAGGED)
+        | (kind << 3)
+    )
+    bits = (present.astype(np.uint64) << by_code[order].astype(np.uint64)).sum(
+        axis=1, dtype=np.uint64
+    )
+    head = np.empty((n, 9), dtype=np.uint8)
+    head[:, 0] = COMPACT
+    head[:, 1:] = bits.astype("<u8").view(np.uint8).reshape(n, 8)
+    score_bytes = scores.view(np.uint8).reshape(n, d, 8).copy()
+    score_bytes[single, :4] = single_scores.view(np.uint8).reshape(n, d, 4)[single]
+    keep_scores = np.arange(8) < _SCORE_BYTES[kind][..., None]
+    table = np.concatenate([head, marks, score_bytes.reshape(n, 8 * d)], axis=1)
+    keep = np.concatenate(
+        [np.ones((n, 9), dtype=bool), present, keep_scores.reshape(n, 8 * d)], axis=1
+    )
+    data = table[keep].tobytes()
+    ends = np.cumsum(keep.sum(axis=1)).tolist()
+    blobs = [data[start:end] for start, end in zip([0, *ends], ends, strict=False)]
+    ordered = [versions[j] for j in order.tolist()]
+    same = len(set(ordered)) == 1
+    kept: list[Any] = []
+    for k in range(n):
+        if not known[k]:
+            kept.append(None)
+        elif same and present[k].any():
+            kept.append(ordered[0])
+        else:
+            listed = [ordered[j] for j in np.flatnonzero(present[k]).tolist()]
+            kept.append(listed[0] if len(set(listed)) == 1 else listed)
+    return blobs, kept
+
+
+def _earlier_entries(blob: bytes) -> list[tuple[int, int, float]]:
+    """(code, mark, score) of each record of a history row, either layout."""
+    if not blob or blob[0] != COMPACT:
+        return [
+            (int(entry["code"]), int(entry["mark"]), float(entry["score"]))
+            for entry in np.frombuffer(blob, dtype=EARLIER)
+        ]
+    bits = int.from_bytes(blob[1:9], "little")
+    present = [code for code in range(64) if bits >> code & 1]
+    at = 9 + len(present)
+    out = []
+    for code, mark in zip(present, blob[9:at], strict=True):
+        kind = mark >> 3
+        if kind == _SINGLE:
+            score = float(np.frombuffer(blob, dtype="<f4", count=1, offset=at)[0])
+        elif kind == _DOUBLE:
+            score = float(np.frombuffer(blob, dtype="<f8", count=1, offset=at)[0])
+        else:
+            score = float("nan")
+        at += int(_SCORE_BYTES[kind])
+        out.append((code, mark & 7, score))
+    return out
 
 
 def earlier_results(codes: DetectorCodes, row: Any) -> dict[str, dict[str, Any]]:
@@ -889,17 +954,15 @@ def earlier_results(codes: DetectorCodes, row: Any) -> dict[str, dict[str, Any]]
     label, score and flag."""
     if row.packed_results is None:
         return dict(row.results or {})
-    packed = np.frombuffer(row.packed_results, dtype=EARLIER)
     versions = row.versions
     out = {}
-    for i, entry in enumerate(packed):
-        code = int(entry["code"])
+    for i, (code, mark, score) in enumerate(_earlier_entries(row.packed_results)):
         version = versions if isinstance(versions, str) or versions is None else versions[i]
         out[codes.name(code) or f"detector {code}"] = {
             "version": version,
-            "state": State(int(entry["mark"]) & 3).label,
-            "score": _finite_one(entry["score"]),
-            "flagged": bool(int(entry["mark"]) & _FLAGGED),
+            "state": State(mark & 3).label,
+            "score": _finite_one(score),
+            "flagged": bool(mark & _FLAGGED),
         }
     return dict(sorted(out.items(), key=lambda item: _registry_order(item[0])))
 
