@@ -51,6 +51,15 @@ class State(IntEnum):
 
 # Settings constraints, declared as data ---------------------------------------------------------
 
+#: Whole-number settings meet numpy's 64-bit integers in arithmetic, so a larger one cannot be used.
+INT64_MIN, INT64_MAX = -(2**63), 2**63 - 1
+
+
+def _beyond_int64(value: Any) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool) and not (
+        INT64_MIN <= value <= INT64_MAX
+    )
+
 
 @dataclass(frozen=True)
 class Interval:
@@ -70,6 +79,8 @@ class Interval:
         if self.kind is int and not isinstance(value, int | np.integer):
             return False
         if self.kind is float and not isinstance(value, int | float | np.integer | np.floating):
+            return False
+        if _beyond_int64(value):
             return False
         if self.kind is float and not math.isfinite(float(value)):
             return False
@@ -293,7 +304,8 @@ class Detector:
                     cls.name,
                     key,
                     f"The {key!r} setting of {cls.name} must be {constraint.describe()}; "
-                    f"got {value!r}.",
+                    f"got {value!r}"
+                    + (" (beyond a 64-bit integer)." if _beyond_int64(value) else "."),
                 )
 
     @classmethod

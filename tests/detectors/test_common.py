@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 import detectors
-from detectors import FAMILIES, REGISTRY, SettingError, State, parse_instrument
+from detectors import FAMILIES, REGISTRY, Interval, SettingError, State, parse_instrument
 from detectors.responses import ResponseMatrix
 
 #: Modules of the package that are infrastructure, not detectors.
@@ -132,6 +132,20 @@ def test_deterministic_and_permutation_equivariant(name, data):
 def test_an_unknown_setting_is_refused(name):
     with pytest.raises(SettingError, match=f"{name} has no setting 'no_such_setting'"):
         REGISTRY[name].from_settings({"no_such_setting": 1})
+
+
+@pytest.mark.parametrize("name", DETECTORS)
+def test_a_number_setting_beyond_64_bits_is_refused(name):
+    # A whole number past a signed 64-bit integer (which JSON readers such as orjson hand over
+    # up to 2**64 - 1) overflowed numpy's arithmetic when screening, or float() when checked.
+    numbers = [
+        key for key, constraint in REGISTRY[name].parameter_constraints.items()
+        if isinstance(constraint, Interval)
+    ]
+    for key in numbers:
+        for value in (2**63, 2**64 - 1, -(2**63) - 1, 10**400):
+            with pytest.raises(SettingError, match=f"'{key}' setting of {name} must be"):
+                REGISTRY[name].check_settings({key: value})
 
 
 @pytest.mark.parametrize("name", DETECTORS)
