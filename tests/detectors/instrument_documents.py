@@ -194,3 +194,12 @@ def names_a_place(document: Any, parts: list[str | int]) -> bool:
         else:
             return False
     return True
+
+
+@st.composite
+def edge_setting_documents(draw: st.DrawFn) -> dict[str, Any]:
+    """A valid document but for one number setting at or past the edge of what it takes."""
+    document = draw(valid_documents())
+    name, key = draw(st.sampled_from(NUMBER_SETTINGS))
+    document.setdefault("screening", {}).setdefault(name, {})[key] = draw(EDGE_NUMBERS)
+    return document
