@@ -117,6 +117,7 @@ def _post_until_killed(server: LiveServer, secret: str, rows: list[dict]) -> Out
 
 
 @pytest.mark.crash
+@pytest.mark.slow
 def test_a_killed_server_loses_no_acknowledged_response(database_url, tmp_path):
     admin = create_key(database_url, "admin")
     rows = random_rows(POSTS, seed=9, prefix="k")
@@ -154,6 +155,7 @@ def test_a_killed_server_loses_no_acknowledged_response(database_url, tmp_path):
 
 
 @pytest.mark.crash
+@pytest.mark.slow
 @pytest.mark.postgres
 def test_two_servers_on_one_database_store_each_respondent_once(database_url, tmp_path):
     if not database_url.startswith("postgresql"):

@@ -65,6 +65,7 @@ parameters = {{ survey = "{SURVEY}", respondent = "{erasable}" }}
 
 
 @pytest.mark.fuzz
+@pytest.mark.slow
 def test_schemathesis_finds_no_failure(tmp_path):
     database_url = f"sqlite:///{tmp_path / 'heedful.db'}"
     admin = create_key(database_url, "admin")
