@@ -146,6 +146,11 @@ def _openapi(app: FastAPI) -> dict[str, Any]:
                 operation["responses"].setdefault(
                     "500", _problem_entry("The server failed; nothing was stored")
                 )
+        # A body that is not JSON is refused with 400 wherever a body is read.
+        for operations in document["paths"].values():
+            for operation in operations.values():
+                if "requestBody" in operation:
+                    operation["responses"].setdefault("400", _problem_entry("Malformed JSON"))
         for name in ("HTTPValidationError", "ValidationError"):
             schemas.pop(name, None)
         for path in ("/healthz", "/readyz"):
