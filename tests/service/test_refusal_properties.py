@@ -135,7 +135,6 @@ POSTS = st.one_of(
 def test_a_post_never_fails_and_every_refusal_names_its_field(
     service, survey, body, replace, partial
 ):
-    body = (body)
     query = f"?replace={str(replace).lower()}&partial={str(partial).lower()}"
     _check_refusal(_post(service, URL + query, body, service.ingest), body)
 
