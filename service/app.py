@@ -14,10 +14,21 @@ from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 
 from . import problems
-from .api import detectors, exports, health, metrics, reports, respondents, responses, surveys
+from .api import (
+    detectors,
+    exports,
+    health,
+    jobs,
+    metrics,
+    reports,
+    respondents,
+    responses,
+    surveys,
+)
 from .database import Database
 from .db import make_engine, upgrade
 from .ingest_queue import IngestQueue
+from .job_queue import JobQueue
 from .limits import Limits
 from .metrics import Metrics
 from .observability import RequestContext
@@ -60,10 +71,14 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     database = Database(engine)
     database.checkpoint_in_background()
     ingest_queue = IngestQueue(database, settings)
+    app_metrics = Metrics()
+    job_queue = JobQueue(database, settings, app_metrics)
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        job_queue.consume(settings.job_workers)
         yield
+        job_queue.close()
         ingest_queue.close()
         database.dispose()
 
@@ -78,6 +93,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
             {"name": "respondents", "description": "Find, read, review and erase respondents."},
             {"name": "reports", "description": "Screening reports for analysts (HTML)."},
             {"name": "exports", "description": "The survey as one file: CSV, Parquet, SPSS, Stata."},
+            {"name": "jobs", "description": "Re-screens, reports and exports as background jobs."},
             {"name": "detectors", "description": "What each detector measures."},
             {"name": "health", "description": "Liveness and readiness, without a key."},
         ],
@@ -86,12 +102,15 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
     app.state.database = database
     app.state.ingest_queue = ingest_queue
     app.state.limits = Limits(settings)
-    app.state.metrics = Metrics()
+    app.state.metrics = app_metrics
+    app.state.job_queue = job_queue
     app.state.metrics.watch_queue(ingest_queue.depth)
     problems.install(app)
     # Added last, so outermost: the request id reaches every reply and log line, failures too.
     app.add_middleware(RequestContext, metrics=app.state.metrics)
-    for module in (health, surveys, responses, respondents, reports, exports, detectors, metrics):
+    for module in (
+        health, surveys, responses, respondents, reports, exports, jobs, detectors, metrics
+    ):
         app.include_router(module.router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app

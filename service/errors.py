@@ -12,7 +12,9 @@ the command line prints them. ::
      ├── TooManyRequests      a caller over its rate limit, or an address over its budget of
      │                        failed credentials
      ├── WriterBusy           too many posts already wait for the writer
-     └── WebhookIdReused      a webhook id already accepted with another body
+     ├── WebhookIdReused      a webhook id already accepted with another body
+     ├── UnknownJob           no background job under this id
+     └── JobNotDone           a job's result asked for before the job is done (or it failed)
 """
 
 from __future__ import annotations
@@ -29,6 +31,8 @@ __all__ = [
     "TooManyRequests",
     "WriterBusy",
     "WebhookIdReused",
+    "UnknownJob",
+    "JobNotDone",
     "CONFLICT_REASON",
 ]
 
@@ -113,3 +117,21 @@ class WebhookIdReused(ServiceError):
             "This webhook-id was already accepted with another body; nothing was stored. A "
             "retried delivery must carry the same body, a new message a new webhook-id."
         )
+
+
+class UnknownJob(ServiceError):
+    def __init__(self, job_id: str):
+        self.job_id = job_id
+        super().__init__("No background job is known under this id.")
+
+
+class JobNotDone(ServiceError):
+    def __init__(self, job_id: str, state: str, error: str | None = None):
+        self.job_id = job_id
+        self.state = state
+        self.error = error
+        if state == "failed":
+            message = f"The job failed, so it has no result: {error or 'no reason recorded'}."
+        else:
+            message = f"The job is {state}; its result is there once it is done."
+        super().__init__(message)

@@ -48,6 +48,9 @@ __all__ = [
     "Review",
     "WebhookDelivery",
     "Erasure",
+    "JobKind",
+    "JobState",
+    "Job",
 ]
 
 
@@ -74,6 +77,23 @@ class Verdict(enum.StrEnum):
     OK = "ok"
     REVIEW = "review"
     LIKELY_CARELESS = "likely_careless"
+
+
+class JobKind(enum.StrEnum):
+    """What a background job does (``service.jobs``)."""
+
+    RESCREEN = "rescreen"
+    REPORT = "report"
+    EXPORT = "export"
+
+
+class JobState(enum.StrEnum):
+    """Where a background job stands: ``queued`` -> ``running`` -> ``done`` or ``failed``."""
+
+    QUEUED = "queued"
+    RUNNING = "running"
+    DONE = "done"
+    FAILED = "failed"
 
 
 def _enum(kind: type[enum.Enum], name: str) -> Enum:
@@ -313,3 +333,40 @@ class Erasure(Base):
     respondent_digest: Mapped[str] = mapped_column(String(64))
     erased_by: Mapped[str] = mapped_column(String(100))
     erased_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+
+
+class Job(Base):
+    """A background job (re-screen, report, export) and what came of it (``service.jobs``).
+
+    A worker takes a queued job with a conditional update (``state = 'queued'``), so that of
+    several workers offered the same job only one runs it; while it runs it renews
+    ``heartbeat_at``, and a running job whose heartbeat stopped is found stale.
+    """
+
+    __tablename__ = "jobs"
+    __table_args__ = (Index("ix_jobs_survey_created", "survey_id", "created_at", "id"),)
+
+    id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    kind: Mapped[JobKind] = mapped_column(_enum(JobKind, "job_kind"))
+    survey_id: Mapped[int] = mapped_column(ForeignKey("surveys.id", ondelete="CASCADE"))
+    #: The options the job was asked for (export format, respondents left out).
+    options: Mapped[dict[str, Any]] = mapped_column(JSON, default=dict)
+    state: Mapped[JobState] = mapped_column(_enum(JobState, "job_state"), index=True)
+    #: 0..1, coarse (stages), with a short message naming the stage.
+    progress: Mapped[float] = mapped_column(Float, default=0.0)
+    message: Mapped[str] = mapped_column(String(200), default="")
+    #: The name of the key that asked for it.
+    requested_by: Mapped[str] = mapped_column(String(100))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    started_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    finished_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    heartbeat_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
+    #: Which worker runs it (host and process), for an operator reading the table.
+    worker: Mapped[str | None] = mapped_column(String(200), default=None)
+    #: How many times a worker took it (a stale job is queued again while attempts remain).
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    #: A report's or export's file (in the job folder), or a re-screen's reply as JSON.
+    result_path: Mapped[str | None] = mapped_column(Text, default=None)
+    result: Mapped[dict[str, Any] | None] = mapped_column(JSON(none_as_null=True), default=None)
+    #: Why it failed, in words that hold no respondent data (the error's type and stage).
+    error: Mapped[str | None] = mapped_column(Text, default=None)

@@ -24,11 +24,13 @@ from detectors import HeedfulError, InstrumentError, ResponseDataError, SettingE
 
 from .errors import (
     CONFLICT_REASON,
+    JobNotDone,
     NoVersion,
     RespondentConflict,
     ServiceError,
     SignatureRefused,
     TooManyRequests,
+    UnknownJob,
     UnknownSurvey,
     WebhookIdReused,
     WriterBusy,
@@ -193,6 +195,10 @@ def from_service(error: ServiceError) -> Problem:
             409, str(error), kind="webhook-id-reused",
             errors=[field_error("header:webhook-id", "already used for another body")],
         )
+    if isinstance(error, UnknownJob):
+        return Problem(404, str(error), kind="unknown-job")
+    if isinstance(error, JobNotDone):
+        return Problem(409, str(error), kind="job-not-done", state=error.state)
     return Problem(422, str(error), kind="invalid-input")
 
 

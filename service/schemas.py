@@ -57,6 +57,9 @@ __all__ = [
     "FieldErrorOut",
     "ZonedTime",
     "MAX_META_DEPTH",
+    "JobIn",
+    "JobOut",
+    "JobList",
 ]
 
 VerdictField = Annotated[
@@ -786,3 +789,75 @@ class ProblemOut(BaseModel):
     detail: str
     instance: str
     errors: list[FieldErrorOut] | None = None
+
+
+class JobIn(BaseModel):
+    """A background job to start on a survey."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={"examples": [{"kind": "export", "format": "sav",
+                                         "without": ["excluded"]}]},
+    )
+
+    kind: Literal["rescreen", "report", "export"] = Field(
+        description="rescreen (admin): new reference sample and re-score everyone; report: the "
+        "screening report; export: the survey as one file."
+    )
+    format: Literal["csv", "parquet", "sav", "dta"] = Field(
+        default="csv", description="An export's format (export only)."
+    )
+    without: list[Literal["excluded", "flagged"]] = Field(
+        default_factory=list,
+        description="An export leaves out `excluded` respondents (latest review `exclude`) "
+        "and/or `flagged` ones (any flag, on evidence alone) (export only).",
+    )
+
+
+class JobOut(BaseModel):
+    """A background job: where it stands and, once done, where its result is."""
+
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "id": "5f0c9e2a71d4b3c8a6e1f047", "kind": "export",
+                    "survey": "orchard-volunteers-2027",
+                    "options": {"format": "sav", "without": ["excluded"]}, "state": "done",
+                    "progress": 1.0, "message": "done", "requested_by": "analyst-ben",
+                    "created_at": "2027-05-04T09:30:00Z", "started_at": "2027-05-04T09:30:01Z",
+                    "finished_at": "2027-05-04T09:31:12Z", "attempts": 1,
+                    "result": {"file": "orchard-volunteers-2027.sav", "format": "sav",
+                               "respondents": 598, "left_out": 2, "without": ["excluded"]},
+                    "result_url": "/v1/jobs/5f0c9e2a71d4b3c8a6e1f047/result", "error": None,
+                }
+            ]
+        }
+    )
+
+    id: str
+    kind: Literal["rescreen", "report", "export"]
+    survey: str
+    options: dict[str, Any]
+    state: Literal["queued", "running", "done", "failed"] = Field(
+        description="queued, running, done or failed."
+    )
+    progress: float = Field(description="0 to 1, by stages.")
+    message: str = Field(description="The stage reached, in a few words.")
+    requested_by: str = Field(description="The name of the key that started the job.")
+    created_at: dt.datetime
+    started_at: dt.datetime | None
+    finished_at: dt.datetime | None
+    attempts: int = Field(description="Times a worker started it (a stale job starts again).")
+    result: dict[str, Any] | None = Field(
+        description="A re-screen's reply (as `POST .../rescreen` gives it), or what an export "
+        "or report wrote; null until done."
+    )
+    result_url: str | None = Field(description="Where the result is, once done.")
+    error: str | None = Field(description="Why it failed (no respondent data).")
+
+
+class JobList(BaseModel):
+    """A survey's latest jobs, newest first."""
+
+    data: list[JobOut]

@@ -86,6 +86,46 @@ class Settings(BaseSettings):
         ),
     )
 
+    sync_limit_respondents: int = Field(
+        default=50_000, ge=0,
+        description="Surveys with more stored respondents than this get a background job "
+        "(202) from the re-screen, report and export endpoints instead of the result.",
+    )
+    job_broker: str | None = Field(
+        default=None,
+        description="Redis URL of the job queue shared by several replicas and `heedful worker` "
+        "processes (redis://HOST:6379/0). Unset: a queue file in the job folder.",
+    )
+    job_queue_name: str = Field(
+        default="heedful", min_length=1, max_length=100,
+        description="Name of the job queue (the prefix of its keys in Redis).",
+    )
+    job_folder: str | None = Field(
+        default=None,
+        description="Folder of job results (and of the queue file without a broker); shared by "
+        "every replica and worker. Unset: beside a SQLite database (`heedful-jobs` beside "
+        "`heedful.db`), else ./heedful-jobs.",
+    )
+    job_workers: int = Field(
+        default=1, ge=0, le=32,
+        description="Threads of `heedful serve` that run jobs; 0 leaves them to `heedful worker`.",
+    )
+    job_stale_seconds: float = Field(
+        default=300.0, gt=0,
+        description="A running job whose worker has not been heard from for this long is stale.",
+    )
+    job_attempts: int = Field(
+        default=3, ge=1,
+        description="Times a job is started before a stale one is marked failed.",
+    )
+
+    @field_validator("job_broker")
+    @classmethod
+    def _redis_broker(cls, value: str | None) -> str | None:
+        if value is not None and not value.startswith(("redis://", "rediss://", "unix://")):
+            raise ValueError("job_broker must be a Redis URL: redis://HOST:6379/0")
+        return value
+
     @field_validator("database_url")
     @classmethod
     def _supported_database(cls, value: str) -> str:

@@ -8,12 +8,14 @@ from pathlib import Path
 from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query
-from fastapi.responses import FileResponse
+from fastapi.responses import FileResponse, Response
 from starlette.background import BackgroundTask
 
 from .. import exports
+from ..models import JobKind
 from .common import errors
-from .deps import DatabaseDep, MetricsDep, Reader
+from .deps import DatabaseDep, MetricsDep, Reader, SettingsDep
+from .jobs import ACCEPTED, JobQueueDep, accepted, over_sync_limit
 from .surveys import survey_or_404
 
 router = APIRouter(tags=["exports"])
@@ -43,10 +45,13 @@ _EXAMPLE_CSV = (
         "flags, verdict and review codes), with names made valid for the program. "
         "`without=excluded` leaves out respondents whose latest review is `exclude`; "
         "`without=flagged` leaves out everyone with a flag, on evidence alone. Flags are "
-        "evidence for a reviewer's decision, not a verdict: review before excluding anyone."
+        "evidence for a reviewer's decision, not a verdict: review before excluding anyone. "
+        "A survey of more than HEEDFUL_SYNC_LIMIT_RESPONDENTS respondents gets a background "
+        "job instead: 202 with the job document and `Location`; the file is the job's result."
     ),
     response_class=FileResponse,
     responses=errors(401, 403, 404, 422, also={
+        **ACCEPTED,
         200: {
             "description": "The file, as an attachment (`Content-Disposition`).",
             "content": {
@@ -63,6 +68,8 @@ def export_survey(
     caller: Reader,
     database: DatabaseDep,
     metrics: MetricsDep,
+    settings: SettingsDep,
+    queue: JobQueueDep,
     fmt: Annotated[
         ExportFormat,
         Query(alias="format", description="csv, parquet, sav (SPSS) or dta (Stata)."),
@@ -74,7 +81,10 @@ def export_survey(
             "`flagged` ones (any flag); repeatable."
         ),
     ] = None,
-) -> FileResponse:
+) -> Response:
+    if over_sync_limit(database, survey, settings):
+        options = {"format": fmt, "without": sorted(set(without or ()))}
+        return accepted(queue.submit(survey, JobKind.EXPORT, options, caller.name))
     folder = Path(tempfile.mkdtemp(prefix="heedful-export-"))
     try:
         with database.read() as session:

@@ -6,6 +6,7 @@ import datetime as dt
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
+from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
 from detectors import Instrument
@@ -13,7 +14,7 @@ from detectors.screening import reference_detectors
 
 from .. import outcomes, registration, store
 from ..ingest import forget_credentials
-from ..models import Role, Survey
+from ..models import JobKind, Role, Survey
 from ..problems import Problem
 from ..rescreen import rescreen
 from ..schemas import (
@@ -34,6 +35,7 @@ from ..schemas import (
 )
 from .common import EVIDENCE_NOTE, errors, read_json
 from .deps import Admin, DatabaseDep, MetricsDep, Reader, SettingsDep, authenticate
+from .jobs import ACCEPTED, JobQueueDep, accepted, over_sync_limit
 
 router = APIRouter(tags=["surveys"])
 
@@ -247,14 +249,19 @@ def rotate_webhook_secret(
     description=(
         "Estimates a reference sample per survey version from the stored respondents (once "
         "there are HEEDFUL_REFERENCE_MIN_RESPONDENTS) and re-screens every stored respondent "
-        "against it; changed results keep the earlier ones in the screening history."
+        "against it; changed results keep the earlier ones in the screening history. A survey "
+        "of more than HEEDFUL_SYNC_LIMIT_RESPONDENTS respondents is re-screened by a background "
+        "job instead: 202 with the job document and `Location`."
     ),
     response_model=RescreenReply,
-    responses=errors(401, 403, 404),
+    responses=errors(401, 403, 404, also=ACCEPTED),
 )
 def rescreen_survey(
-    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep, metrics: MetricsDep
-) -> RescreenReply:
+    survey: str, caller: Admin, database: DatabaseDep, settings: SettingsDep, metrics: MetricsDep,
+    queue: JobQueueDep,
+) -> RescreenReply | JSONResponse:
+    if over_sync_limit(database, survey, settings):
+        return accepted(queue.submit(survey, JobKind.RESCREEN, {}, caller.name))
     with database.write() as session:
         found = survey_or_404(session, survey)
         with metrics.job("rescreen"):
