@@ -1,4 +1,4 @@
-"""The service's subcommands of ``heedful``: serve, db, keys, survey, rescreen, nightly, report,
+"""The service's subcommands of ``heedful``: serve, worker, db, keys, survey, rescreen, nightly, report,
 openapi.
 
 Only argument parsing and printing live here; the work is done by ``store`` and the use cases (``ingest``, ``rescreen``, ``registration``).
@@ -56,6 +56,29 @@ def cmd_serve(args: argparse.Namespace) -> int:
         log_config=log_config(settings.log_level, settings.log_format == "json", args.access_log),
         access_log=False,
     )
+    return EXIT_OK
+
+
+def cmd_worker(args: argparse.Namespace) -> int:
+    import logging.config
+
+    from .app import prepare_process
+    from .job_queue import JobQueue
+    from .metrics import Metrics
+    from .observability import log_config
+
+    settings = settings_from(args)
+    logging.config.dictConfig(log_config(settings.log_level, settings.log_format == "json"))
+    database = open_database(args)
+    queue = JobQueue(database, settings, Metrics())
+    prepare_process()
+    where = settings.job_broker or "the queue file in the job folder"
+    print(f"Heedful worker: {args.threads} thread(s) running jobs from {where}", flush=True)
+    try:
+        queue.run_worker(args.threads)
+    finally:
+        queue.close()
+        database.dispose()
     return EXIT_OK
 
 
@@ -327,6 +350,17 @@ def register(subparsers: Any) -> None:
     )
     add_database_option(p)
     p.set_defaults(func=guard(cmd_serve))
+
+    p = subparsers.add_parser(
+        "worker",
+        help="run background jobs (re-screens, reports, exports) from the job queue, beside or "
+        "instead of the threads of `heedful serve`; stops on Ctrl-C or SIGTERM",
+    )
+    p.add_argument(
+        "--threads", type=int, default=1, help="jobs run at once (default: %(default)s)"
+    )
+    add_database_option(p)
+    p.set_defaults(func=guard(cmd_worker))
 
     p = subparsers.add_parser("db", help="manage the service's database")
     db = p.add_subparsers(dest="db_command", metavar="ACTION")

@@ -122,13 +122,14 @@ class JobQueue:
         self._sweeper.start()
 
     def run_worker(self, workers: int) -> None:
-        """Consume in the foreground until SIGINT or SIGTERM (``heedful worker``)."""
+        """Consume in the foreground (``heedful worker``): SIGTERM lets a running job finish
+        (up to a minute), SIGINT stops at once (the job is found stale and runs again)."""
         self._sweeper = threading.Thread(target=self._sweep_loop, name="heedful-job-sweep",
                                          daemon=True)
         self._sweeper.start()
         consumer = self.huey.create_consumer(
             workers=workers, periodic=False, max_delay=_MOST_IDLE_SECONDS,
-            check_worker_health=True,
+            check_worker_health=True, graceful_signal="TERM", shutdown_timeout=60,
         )
         try:
             consumer.run()
