@@ -48,3 +48,40 @@ def test_compose_migrates_before_serving_against_postgresql():
         assert Settings(database_url=url).database_url.startswith("postgresql+psycopg://")
     database = compose["db"]["environment"]
     assert url.endswith(f"@db:5432/{database['POSTGRES_DB']}")
+
+
+def test_scale_out_compose_shares_database_queue_and_job_folder():
+    compose = yaml.safe_load((DOCKER / "compose.scale-out.yaml").read_text(encoding="utf-8"))
+    services = compose["services"]
+    parser = build_parser()
+    replicas = [services["serve-1"], services["serve-2"]]
+    worker, migrate = services["worker"], services["migrate"]
+    assert migrate["command"][1:] == ["db", "upgrade"]
+    ports = set()
+    for replica in replicas:
+        args = parser.parse_args(replica["command"][1:])
+        assert args.command == "serve"
+        (mapping,) = replica["ports"]
+        assert mapping.endswith(f":{args.port}") and mapping.startswith("127.0.0.1:")
+        ports.add(mapping)
+        assert replica["environment"]["HEEDFUL_JOB_WORKERS"] == "0"
+    assert len(ports) == 2
+    args = parser.parse_args(worker["command"][1:])
+    assert args.command == "worker" and args.threads >= 1
+    jobs = {tuple(part["volumes"]) for part in (*replicas, worker)}
+    assert len(jobs) == 1
+    (volume,) = jobs.pop()
+    for part in (*replicas, worker, migrate):
+        environment = part["environment"]
+        for variable in environment:
+            assert variable in _settings_variables(), variable
+        settings = Settings(**{k.removeprefix("HEEDFUL_").lower(): v
+                               for k, v in environment.items()})
+        assert settings.database_url.startswith("postgresql+psycopg://")
+        assert settings.job_broker == "redis://redis:6379/0"
+        assert volume.endswith(f":{settings.job_folder}")
+    for part in (*replicas, worker):
+        assert part["depends_on"]["migrate"]["condition"] == "service_completed_successfully"
+    assert "redis" in services and services["db"]["image"].startswith("postgres:")
+    dockerfile = (DOCKER / "Dockerfile").read_text(encoding="utf-8")
+    assert f"mkdir -p {settings.job_folder}" in dockerfile
