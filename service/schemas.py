@@ -860,4 +860,24 @@ class JobOut(BaseModel):
 class JobList(BaseModel):
     """A survey's latest jobs, newest first."""
 
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "data": [
+                        {
+                            "id": "9a41be07c3d25f6e18b0d4c7", "kind": "report",
+                            "survey": "orchard-volunteers-2027", "options": {},
+                            "state": "running", "progress": 0.1,
+                            "message": "reading the survey and drawing the figures",
+                            "requested_by": "analyst-ben", "created_at": "2027-05-04T09:40:00Z",
+                            "started_at": "2027-05-04T09:40:01Z", "finished_at": None,
+                            "attempts": 1, "result": None, "result_url": None, "error": None,
+                        }
+                    ]
+                }
+            ]
+        }
+    )
+
     data: list[JobOut]
