@@ -11,6 +11,7 @@ import time
 import uuid
 import warnings
 from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -50,6 +51,13 @@ def database_url(request, tmp_path) -> Iterator[str]:
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'heedful.db'}"
         return
+    with postgres_schema() as url:
+        yield url
+
+
+@contextmanager
+def postgres_schema() -> Iterator[str]:
+    """The URL of a fresh PostgreSQL schema, dropped afterwards (skips without PostgreSQL)."""
     if not POSTGRES_URL:
         pytest.skip(NO_POSTGRES)
     schema = f"heedful_test_{uuid.uuid4().hex[:12]}"

@@ -15,14 +15,14 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
-from sqlalchemy import create_engine, update
+from sqlalchemy import update
 
 from service import jobs, store
 from service.app import create_app
-from service.models import Job, JobKind, Role
+from service.models import Job, Role
 from service.settings import Settings
 
-from .conftest import NO_POSTGRES, POSTGRES_URL, TestClient, _with_search_path, make_document, random_rows
+from .conftest import TestClient, make_document, postgres_schema, random_rows
 from .test_serve_process import _command
 
 #: Longest wait for a job (seconds); a job of a few hundred respondents takes a few seconds.
@@ -240,18 +240,8 @@ def _redis_or_skip(url: str):
 
 @pytest.fixture
 def postgres_schema_url() -> Iterator[str]:
-    if not POSTGRES_URL:
-        pytest.skip(NO_POSTGRES)
-    schema = f"heedful_test_{uuid.uuid4().hex[:12]}"
-    admin = create_engine(POSTGRES_URL)
-    with admin.begin() as connection:
-        connection.exec_driver_sql(f'CREATE SCHEMA "{schema}"')
-    try:
-        yield _with_search_path(POSTGRES_URL, schema)
-    finally:
-        with admin.begin() as connection:
-            connection.exec_driver_sql(f'DROP SCHEMA "{schema}" CASCADE')
-        admin.dispose()
+    with postgres_schema() as url:
+        yield url
 
 
 @pytest.mark.postgres
