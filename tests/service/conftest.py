@@ -45,6 +45,13 @@ def _with_search_path(url: str, schema: str) -> str:
     return f"{url}{joiner}options=-csearch_path%3D{schema}"
 
 
+@pytest.fixture(autouse=True)
+def _own_job_folder(tmp_path, monkeypatch) -> None:
+    """Each test's job results and queue file in its own folder: a PostgreSQL database has no
+    file to put them beside, and the default (./heedful-jobs) would be shared by every test."""
+    monkeypatch.setenv("HEEDFUL_JOB_FOLDER", str(tmp_path / "jobs"))
+
+
 @pytest.fixture(params=BACKENDS)
 def database_url(request, tmp_path) -> Iterator[str]:
     """A URL of an empty database: a SQLite file, or a fresh PostgreSQL schema."""

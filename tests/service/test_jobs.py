@@ -157,7 +157,8 @@ def test_large_surveys_get_a_job_from_the_synchronous_endpoints(tmp_path):
 
 def test_a_queued_job_survives_a_restart(tmp_path):
     url = f"sqlite:///{tmp_path / 'heedful.db'}"
-    stopped = Settings(database_url=url, job_workers=0)
+    # The default job folder: beside the database.
+    stopped = Settings(database_url=url, job_workers=0, job_folder=None)
     with _app(stopped) as (client, keys):
         survey = _survey_with_respondents(client, keys, n=60)
         job = _start(client, keys["analyst"], survey, kind="export", format="sav")
@@ -166,7 +167,7 @@ def test_a_queued_job_survives_a_restart(tmp_path):
         assert client.get(f"/v1/jobs/{job['id']}", headers=_auth(keys["analyst"])).json()[
             "state"] == "queued"
     assert (tmp_path / "heedful-jobs" / "queue.db").is_file()
-    with _app(Settings(database_url=url, job_workers=1)) as (client, keys):
+    with _app(Settings(database_url=url, job_workers=1, job_folder=None)) as (client, keys):
         done = _wait_done(client, keys["analyst"], job["id"])
         assert done["state"] == "done" and done["attempts"] == 1
         result = client.get(done["result_url"], headers=_auth(keys["analyst"]))
