@@ -80,7 +80,12 @@ class JobQueue:
         runner = self.runner
 
         def run_job(job_id: str) -> None:
-            runner.run(job_id)
+            try:
+                runner.run(job_id)
+            except Exception as error:  # logged here by type: a traceback could quote rows
+                log.error("job could not be run", extra={
+                    "event": "job-error", "reason": type(error).__name__,
+                })
 
         return huey, huey.task(name="run_job")(run_job)
 

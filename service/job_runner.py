@@ -89,6 +89,11 @@ class JobRunner:
         try:
             with self._heartbeat(job_id), self.metrics.job(job.kind.value):
                 self._run(job)
+        except _TakenOver:
+            # A sweep found the job stale and queued it again: its other run counts.
+            log.warning("job %s taken over", job.kind.value, extra={
+                "event": "job-taken-over", "survey": job.survey, "reason": job.kind.value,
+            })
         except Exception as error:
             # Only the type: an error's message may quote answers or ids.
             what = f"{type(error).__name__} while running the {job.kind.value} job"
@@ -120,8 +125,10 @@ class JobRunner:
             with self.database.write() as session:
                 survey = _survey(session, job.survey)
                 reply = rescreen(session, survey, self.settings).reply()
-                jobs.finish(session, job.id, self.worker, utcnow(),
-                            result=json.loads(json.dumps(reply, default=_json_value)))
+                # In the re-screen's transaction: its results and the job's end commit together.
+                if not jobs.finish(session, job.id, self.worker, utcnow(),
+                                   result=json.loads(json.dumps(reply, default=_json_value))):
+                    raise _TakenOver
             return
         target = private_folder(private_folder(self.folder) / job.id)
         if job.kind is JobKind.REPORT:
@@ -132,8 +139,10 @@ class JobRunner:
                 survey = _survey(session, job.survey)
                 page = build_report(session, survey)
             self._advance(job, 0.9, "writing the report")
+            from .files import write_atomic
+
             path = target / REPORT_FILE
-            path.write_text(page, encoding="utf-8")
+            write_atomic(path, lambda temporary: Path(temporary).write_text(page, encoding="utf-8"))
             result: dict[str, Any] = {"file": REPORT_FILE}
         else:
             from .exports import SUFFIXES, write_export
@@ -152,8 +161,9 @@ class JobRunner:
                 "left_out": summary.left_out, "without": list(summary.without),
             }
         with self.database.write() as session:
-            jobs.finish(session, job.id, self.worker, utcnow(), result_path=str(path),
-                        result=result)
+            if not jobs.finish(session, job.id, self.worker, utcnow(), result_path=str(path),
+                               result=result):
+                raise _TakenOver
 
     @contextmanager
     def _heartbeat(self, job_id: str) -> Iterator[None]:
@@ -201,6 +211,10 @@ class JobRunner:
         for job_id in recovered.failed:
             shutil.rmtree(self.folder / job_id, ignore_errors=True)
         return recovered
+
+
+class _TakenOver(Exception):
+    """The job stopped being this worker's while it ran (found stale and queued again)."""
 
 
 def _survey(session: Any, name: str) -> Any:

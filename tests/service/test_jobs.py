@@ -19,7 +19,7 @@ from sqlalchemy import update
 
 from service import jobs, store
 from service.app import create_app
-from service.models import Job, Role
+from service.models import Job, JobKind, Role
 from service.settings import Settings
 
 from .conftest import TestClient, make_document, postgres_schema, random_rows
@@ -304,4 +304,22 @@ def test_two_apps_and_a_worker_share_jobs_over_redis_and_postgresql(postgres_sch
         for key in redis_client.scan_iter(f"huey.*.{name}*"):
             redis_client.delete(key)
         redis_client.close()
-    assert not list(Path(shared["job_folder"]).glob("*/*.tmp"))
+    assert not list(Path(shared["job_folder"]).glob("*/*.part"))
+
+
+def test_a_failed_job_names_the_error_type_not_its_message(tmp_path):
+    settings = Settings(database_url=f"sqlite:///{tmp_path / 'heedful.db'}")
+    with _app(settings) as (client, keys):
+        survey = _survey_with_respondents(client, keys, n=10)
+        queue = client.app.state.job_queue
+        # A format the export refuses (the API's schema would not let it through).
+        job = queue.submit(survey, JobKind.EXPORT, {"format": "r00001"}, "someone")
+        failed = _wait_done(client, keys["analyst"], job.id)
+        assert failed["state"] == "failed"
+        assert failed["error"] == "KeyError while running the export job"
+        assert not (Path(os.environ["HEEDFUL_JOB_FOLDER"]) / job.id).exists()
+        result = client.get(f"/v1/jobs/{job.id}/result", headers=_auth(keys["analyst"]))
+        assert result.status_code == 409
+        assert "r00001" not in result.text
+        assert 'heedful_jobs_total{kind="export",outcome="failed"} 1.0' in client.get(
+            "/metrics").text
