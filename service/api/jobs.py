@@ -108,6 +108,8 @@ def start_job(
     "/v1/surveys/{survey}/jobs",
     operation_id="listJobs",
     summary="The survey's latest background jobs, newest first",
+    description="The survey's latest 50 jobs of every kind, newest first: state, progress, who "
+    "asked for each and when, and a result link once done.",
     response_model=JobList,
     responses=errors(401, 403, 404),
 )
@@ -121,6 +123,10 @@ def list_jobs(survey: str, caller: Reader, database: DatabaseDep) -> JobList:
     "/v1/jobs/{job}",
     operation_id="getJob",
     summary="A background job: its state, progress and result link",
+    description="Where the job stands: `queued`, `running` (with a coarse `progress` and the "
+    "stage reached), `done` (with `result_url`) or `failed` (with `error`, which holds no "
+    "respondent data). A job whose worker stopped is started again, at most "
+    "HEEDFUL_JOB_ATTEMPTS times.",
     response_model=JobOut,
     responses=errors(401, 403, 404),
 )
