@@ -23,7 +23,7 @@ from service.models import Job, JobKind, Role
 from service.settings import Settings
 
 from .conftest import TestClient, make_document, postgres_schema, random_rows
-from .test_serve_process import _command
+from .live_server import heedful_command
 
 #: Longest wait for a job (seconds); a job of a few hundred respondents takes a few seconds.
 JOB_SECONDS = 120
@@ -264,7 +264,7 @@ def test_two_apps_and_a_worker_share_jobs_over_redis_and_postgresql(postgres_sch
                    "HEEDFUL_JOB_BROKER": REDIS_URL, "HEEDFUL_JOB_QUEUE_NAME": name,
                    "HEEDFUL_JOB_FOLDER": shared["job_folder"], "HEEDFUL_LOG_FORMAT": "json"}
             with log.open("wb") as out:
-                worker = subprocess.Popen([*_command(), "worker", "--threads", "2"], env=env,
+                worker = subprocess.Popen([*heedful_command(), "worker", "--threads", "2"], env=env,
                                           stdout=out, stderr=subprocess.STDOUT)
             started = []
             for i in range(8):
