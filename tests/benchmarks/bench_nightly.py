@@ -273,11 +273,21 @@ def main() -> None:
     if args.write:
         from figures import write_figures, write_readme_block
 
+        # 1,000,000 respondents: the main figures; another size has a file and block of its own.
+        main_size = n == 1_000_000
         written = write_figures(
-            "speed-nightly.md", "Speed of the nightly job", "bench_nightly.py", lines
+            "speed-nightly.md" if main_size else f"speed-nightly-{n}.md",
+            "Speed of the nightly job" + ("" if main_size else f" at {n:,} respondents"),
+            "bench_nightly.py", lines,
         )
         text = written.read_text().split("\n", 2)[2]  # the stamp and the figures
-        write_readme_block(START, END, text.rstrip("\n"))
+        if main_size:
+            write_readme_block(START, END, text.rstrip("\n"))
+        else:
+            write_readme_block(
+                f"<!-- nightly speed at {n:,}: written by bench_nightly.py -->",
+                f"<!-- end nightly speed at {n:,} -->", text.rstrip("\n"),
+            )
 
 
 #: The README's copy of the figures lies between these lines.
