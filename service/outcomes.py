@@ -721,11 +721,13 @@ def cutoffs_now(
     names: Sequence[str],
     groups: Iterable[tuple[int, int | None, np.ndarray, ResponseMatrix]],
     n: int | None = None,
+    reasons: dict[str, Counter[str]] | None = None,
 ) -> np.ndarray:
     """(respondents, detectors) cut-offs of respondents screened again with their versions'
     screeners and reference samples, a group of respondents at a time: each group is (survey
     version id, reference sample id, positions of its respondents, their matrix). NaN where a
-    detector gives none."""
+    detector gives none. ``reasons``, when given, receives each detector's count of every
+    reason it gave for not assessing a respondent (or finding it not applicable)."""
     groups = list(groups)
     if n is None:
         n = sum(len(positions) for _, _, positions, _ in groups)
@@ -738,6 +740,15 @@ def cutoffs_now(
             if result is not None and name in column:
                 cutoffs = np.asarray(result.cutoffs, dtype=np.float64)
                 out[rows, column[name]] = np.where(np.isfinite(cutoffs), cutoffs, np.nan)
+                if reasons is not None:
+                    judged = np.asarray(result.states) == State.ASSESSED
+                    given, times = np.unique(
+                        np.asarray(result.reasons, dtype=object)[~judged].astype(str),
+                        return_counts=True,
+                    )
+                    reasons.setdefault(name, Counter()).update(
+                        dict(zip(given.tolist(), times.tolist(), strict=True))
+                    )
     return out
 
 

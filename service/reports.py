@@ -154,7 +154,7 @@ def _style_axes(axes: Any) -> None:
         axes.spines[side].set_visible(False)
     axes.spines["left"].set_color(INK)
     axes.spines["bottom"].set_color(INK)
-    axes.tick_params(colors=INK, labelsize=8)
+    axes.tick_params(colors=INK, labelsize=9)
     axes.grid(axis="y", color=GRID, linewidth=0.6)
     axes.set_axisbelow(True)
 
@@ -197,6 +197,8 @@ class _DetectorData:
     scores: np.ndarray  # assessed scores of the subsample
     flags: np.ndarray  # their flags
     cutoffs: np.ndarray  # their cut-offs (NaN where none)
+    #: Why respondents of the subsample were not assessed (or not applicable), most common first.
+    reasons: list[tuple[str, int]]
 
 
 def _detector_names(tallies: Mapping[str, Any]) -> list[str]:
@@ -214,7 +216,8 @@ def _detector_data(session: Session, stored: SurveyData, step: int) -> dict[str,
     respondent, with the cut-offs found by screening those respondents again."""
     results = stored.results
     sample = stored.take(slice(None, None, step))
-    cutoffs = outcomes.cutoffs_now(session, sample.results.names, _groups(sample))
+    reasons: dict[str, Counter[str]] = {}
+    cutoffs = outcomes.cutoffs_now(session, sample.results.names, _groups(sample), reasons=reasons)
     out = {}
     for j, name in enumerate(results.names):
         present = results.present[:, j]
@@ -233,6 +236,7 @@ def _detector_data(session: Session, stored: SurveyData, step: int) -> dict[str,
             scores=sample.results.scores[assessed, j],
             flags=sample.results.flagged[assessed, j],
             cutoffs=cutoffs[assessed, j],
+            reasons=reasons.get(name, Counter()).most_common(),
         )
     return out
 
@@ -298,6 +302,7 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
     common = Counter(np.round(cutoffs, 6).tolist()).most_common(1)[0][0] if len(cutoffs) else None
     values = np.unique(scores)
     hidden = 0
+    clipped = False
     if len(values) <= 40:
         span = float(values.max() - values.min())
         if common is not None:
@@ -308,6 +313,7 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
         high = np.array([np.sum((scores == v) & flags) for v in values])
         axes.bar(values, low, width=width, color=BLUE, label="not flagged")
         axes.bar(values, high, width=width, bottom=low, color=RUST, label="flagged")
+        clipped = _clip_counts(axes, values, low + high)
     else:
         top = float(np.quantile(scores, 0.995))
         if common is not None:
@@ -321,6 +327,8 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
             [scores[shown & ~flags], scores[shown & flags]], bins=edges.tolist(), stacked=True,
             color=[BLUE, RUST], label=["not flagged", "flagged"],
         )
+        heights, _ = np.histogram(scores[shown], bins=edges)
+        clipped = _clip_counts(axes, (edges[:-1] + edges[1:]) / 2, heights)
     from matplotlib.artist import Artist
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
@@ -333,17 +341,45 @@ def _distribution_picture(data: _DetectorData, step: int) -> str:
         title = f"cut-off {common:.4g}"
         if len(cutoffs) and cutoffs.min() != cutoffs.max():
             title = f"cut-offs {cutoffs.min():.4g} to {cutoffs.max():.4g} (line: most common)"
-    axes.set_title(title, loc="left", fontsize=8, color=INK)
+    axes.set_title(title, loc="left", fontsize=10, color=INK)
     label = f"{data.name} score (higher = more suspect)"
     if hidden:
         label += f"; {hidden:,} higher score(s) beyond the axis"
-    axes.set_xlabel(label, fontsize=8, color=INK)
+    axes.set_xlabel(label, fontsize=10, color=INK)
     every = f" (every {_ordinal(step)})" if step > 1 else ""
-    axes.set_ylabel("respondents" + every, fontsize=8, color=INK)
-    axes.legend(handles=handles, fontsize=7, frameon=False, loc="lower right",
+    ylabel = "respondents" + every
+    if clipped:
+        ylabel += "\n(axis cut: see the number)"
+    axes.set_ylabel(ylabel, fontsize=10, color=INK)
+    axes.legend(handles=handles, fontsize=9, frameon=False, loc="lower right",
                 bbox_to_anchor=(1.0, 1.0), ncols=3, borderaxespad=0.2)
     return _img(figure, f"Distribution of {data.name} scores with the cut-off",
                 f"distribution-{data.name}")
+
+
+#: A bar this many times taller than the next tallest is cut, so that the others stay readable.
+CLIP_RATIO = 4.0
+
+
+def _clip_counts(axes: Any, positions: np.ndarray, heights: np.ndarray) -> bool:
+    """Cut the count axis above the second-tallest bar when the tallest dwarfs it (a score
+    most respondents share, such as 0 for straightlining), writing the tallest bar's count on
+    it; whether the axis was cut."""
+    if len(heights) < 2:
+        return False
+    order = np.argsort(heights)
+    tallest, second = int(heights[order[-1]]), int(heights[order[-2]])
+    if second <= 0 or tallest < CLIP_RATIO * second:
+        return False
+    top = 1.6 * second
+    axes.set_ylim(0, top)
+    axes.annotate(
+        f"{tallest:,} \u2191", (float(positions[order[-1]]), top), xytext=(0, -2),
+        textcoords="offset points", ha="center", va="top", fontsize=9, color=INK,
+        bbox={"boxstyle": "round,pad=0.15", "facecolor": "white", "edgecolor": INK,
+              "linewidth": 0.6},
+    )
+    return True
 
 
 def _overlap_picture(names: Sequence[str], counts: np.ndarray) -> str:
@@ -355,8 +391,8 @@ def _overlap_picture(names: Sequence[str], counts: np.ndarray) -> str:
     axes = figure.add_subplot()
     ramp = LinearSegmentedColormap.from_list("cream-teal", ["#f7f3e8", "#7fb3b8", "#14505c"])
     image = axes.imshow(counts, cmap=ramp, vmin=0)
-    axes.set_xticks(range(len(names)), labels=names, rotation=45, ha="right", fontsize=8)
-    axes.set_yticks(range(len(names)), labels=names, fontsize=8)
+    axes.set_xticks(range(len(names)), labels=names, rotation=45, ha="right", fontsize=9)
+    axes.set_yticks(range(len(names)), labels=names, fontsize=9)
     limit = counts.max() if counts.size else 0
     for a in range(len(names)):
         for b in range(len(names)):
@@ -366,7 +402,7 @@ def _overlap_picture(names: Sequence[str], counts: np.ndarray) -> str:
                 color="white" if limit and value > 0.6 * limit else INK,
             )
     bar = figure.colorbar(image, ax=axes, shrink=0.8)
-    bar.set_label("respondents flagged by both", fontsize=8)
+    bar.set_label("respondents flagged by both", fontsize=9)
     bar.ax.tick_params(labelsize=7)
     return _img(figure, "How often two detectors flag the same respondent", "overlap")
 
@@ -385,7 +421,7 @@ def _days_picture(days: Sequence[Mapping[str, Any]]) -> str:
     axes.set_ylabel("% flagged (any detector)", fontsize=9, color=INK)
     axes.set_ylim(0, max(10.0, float(rates.max()) * 1.25 if len(rates) else 10.0))
     step = max(1, len(days) // 14)
-    axes.set_xticks(positions[::step], labels=labels[::step], rotation=30, ha="right", fontsize=8)
+    axes.set_xticks(positions[::step], labels=labels[::step], rotation=30, ha="right", fontsize=9)
     for x, rate, n in zip(positions, rates, counts, strict=True):
         if len(days) <= 31:
             axes.text(x, rate, f"{rate:.0f}%\nn={int(n):,}", ha="center", va="bottom",
@@ -421,11 +457,11 @@ def _patterns_picture(
         step = max(1, len(item_ids) // 25)
         axes.set_xticks(range(0, len(item_ids), step),
                         labels=list(item_ids)[::step], rotation=90, fontsize=6)
-        axes.set_xlabel("items in presentation order", fontsize=8, color=INK)
+        axes.set_xlabel("items in presentation order", fontsize=9, color=INK)
     if image is not None:
         bar = figure.colorbar(image, ax=list(panels), shrink=0.8,
                               ticks=list(range(lowest, highest + 1)))
-        bar.set_label("answer (black: unanswered)", fontsize=8)
+        bar.set_label("answer (black: unanswered)", fontsize=9)
         bar.ax.tick_params(labelsize=7)
     return _img(figure, "Answer patterns of the most flagged respondents beside typical ones",
                 "patterns")
@@ -601,6 +637,57 @@ def _drill_section(stored: SurveyData, screener: Screener) -> str:
     return '<section id="drill">' + "".join(parts) + "</section>"
 
 
+def _verdicts_note(stored: SurveyData, total: int, flagged_any: int) -> str:
+    """How the flagged respondents and the verdicts fit together, in counts that add up: a
+    respondent flagged only for a response style keeps the verdict ok, and the careless score
+    can send a respondent no detector flagged to review."""
+    verdicts = stored.verdicts.astype(str)
+    flagged = stored.flag_counts > 0
+    names = stored.results.names
+    style = [
+        j for j, name in enumerate(names) if getattr(REGISTRY.get(name), "family", "") == "style"
+    ]
+    other = [j for j in range(len(names)) if j not in style]
+    style_only = flagged & ~stored.results.flagged[:, other].any(axis=1)
+
+    def count(mask: np.ndarray) -> int:
+        return int(mask.sum())
+
+    ok, review, likely = (verdicts == Verdict.OK), (verdicts == Verdict.REVIEW), (
+        verdicts == Verdict.LIKELY_CARELESS)
+    parts = [
+        f"Of the {_n(total)} respondents, {_n(count(ok))} have the verdict ok, "
+        f"{_n(count(review))} review and {_n(count(likely))} likely careless.",
+        f"Of the {_n(flagged_any)} flagged by at least one detector, "
+        f"{_n(count(flagged & review))} are to review, {_n(count(flagged & likely))} likely "
+        f"careless and {_n(count(flagged & ok))} ok",
+    ]
+    if count(flagged & ok):
+        parts[-1] += (
+            f" ({_n(count(style_only & ok))} of them flagged only for a response style, which "
+            "describes how someone answers, not carelessness)"
+        )
+    parts[-1] += "."
+    unflagged = ~flagged & ~ok
+    if count(unflagged):
+        parts.append(
+            f"{_n(count(unflagged))} respondent(s) no detector flagged have a verdict other than "
+            "ok because of their careless score."
+        )
+    return '<p class="note" id="verdict-counts">' + _e(" ".join(parts)) + "</p>"
+
+
+def _reasons_note(reasons: Sequence[tuple[str, int]]) -> str:
+    """Why a detector judged nobody or not everyone: its reasons in the screened subsample."""
+    shown = reasons[:3]
+    text = "; ".join(f"{reason} ({_n(count)})" for reason, count in shown)
+    more = f"; and {len(reasons) - len(shown)} other reason(s)" if len(reasons) > len(shown) else ""
+    return (
+        '<p class="note reasons">Why respondents were not assessed or the detector did not '
+        f"apply (respondents of the pictured sample): {_e(text)}{_e(more)}.</p>"
+    )
+
+
 def _pct(share: float, digits: int = 1) -> str:
     return f"{100 * share:.{digits}f}%"
 
@@ -658,6 +745,7 @@ def build_report(
                 (_n(total), "respondents stored"),
                 (f"{_n(flagged_any)} ({_share(flagged_any, total)})",
                  "flagged by at least one detector"),
+                (_n(int(verdicts.get(Verdict.OK, 0))), "verdict: ok"),
                 (_n(int(verdicts.get(Verdict.REVIEW, 0))), "verdict: review"),
                 (_n(int(verdicts.get(Verdict.LIKELY_CARELESS, 0))), "verdict: likely careless"),
                 (_n(int(reviewed.get("exclude", 0))), "reviewed as exclude"),
@@ -666,6 +754,7 @@ def build_report(
             ]
         )
     )
+    parts.append(_verdicts_note(stored, total, flagged_any))
     if reference is not None:
         parts.append(
             f'<p class="note">Reference sample {reference.id}: estimated from '
@@ -735,6 +824,8 @@ def build_report(
             parts.append(_distribution_picture(data, step))
         else:
             parts.append('<p class="note">No respondent was assessed by this detector.</p>')
+        if data.reasons and (data.not_assessed or data.not_applicable):
+            parts.append(_reasons_note(data.reasons))
         parts.append(
             _table(
                 ["assessed", "flagged", "flag rate (of assessed)", "not assessed",

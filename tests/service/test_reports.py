@@ -292,3 +292,50 @@ def test_a_report_from_a_shared_read_equals_one_read_on_its_own(service, survey)
         alone = build_report(session, survey_row, now=now)
         shared = survey_data.read_survey(session, survey_row, chunk=7)
         assert build_report(session, survey_row, now=now, stored=shared) == alone
+
+
+def test_report_counts_add_up_and_say_why_a_detector_judged_nobody(service, survey):
+    _screened_survey(service)
+    reply = service.client.get("/v1/surveys/pulse/report", headers=service.auth(service.analyst))
+    page = _parse(reply.text)
+    words = " ".join(page.text)
+    with service.database.read() as session:
+        verdicts = dict(session.execute(
+            text("SELECT verdict, count(*) FROM respondents GROUP BY verdict")
+        ).all())
+        by_flag = dict(session.execute(text(
+            "SELECT verdict, count(*) FROM respondents WHERE flag_count > 0 GROUP BY verdict"
+        )).all())
+    ok, review, likely = (verdicts.get(v, 0) for v in ("ok", "review", "likely_careless"))
+    assert ok + review + likely == 150
+    assert (f"Of the 150 respondents, {ok} have the verdict ok, {review} review and {likely} "
+            "likely careless.") in words
+    flagged = sum(by_flag.values())
+    assert (f"Of the {flagged} flagged by at least one detector, {by_flag.get('review', 0)} are "
+            f"to review, {by_flag.get('likely_careless', 0)} likely careless and "
+            f"{by_flag.get('ok', 0)} ok") in words
+    # Eight items on one scale: the detectors that need several scales judge nobody, and the
+    # report says why in the detector's own words.
+    nobody = [
+        name for name in REGISTRY
+        if f"detector-{name}" in reply.text and all(
+            state != 0 for (_, n), (state, _, _) in stored_results(service.database).items()
+            if n == name
+        )
+    ]
+    assert nobody
+    assert words.count("Why respondents were not assessed") >= len(nobody)
+
+
+def test_a_bar_that_dwarfs_the_others_is_cut_and_labelled():
+    from matplotlib.figure import Figure
+
+    from service.reports import CLIP_RATIO, _clip_counts
+
+    axes = Figure().add_subplot()
+    axes.bar([0, 1, 2], [572, 9, 4])
+    assert _clip_counts(axes, np.array([0.0, 1.0, 2.0]), np.array([572, 9, 4]))
+    assert axes.get_ylim()[1] < 572 and [t.get_text() for t in axes.texts] == ["572 \u2191"]
+    even = Figure().add_subplot()
+    assert not _clip_counts(even, np.array([0.0, 1.0]), np.array([int(CLIP_RATIO * 10) - 1, 10]))
+    assert len(even.texts) == 0
