@@ -10,6 +10,7 @@ and builds a matrix through it, and the service checks posted rows through it.
 
 from __future__ import annotations
 
+from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -158,6 +159,21 @@ def _row_numbers(rows: np.ndarray | Sequence[int] | None, n: int) -> np.ndarray:
     return numbers
 
 
+#: Up to this many ids are checked in plain Python (see ``check_respondent_ids``).
+_FEW_IDS = 256
+
+
+def _stripped(value: object) -> str | None:
+    """An id as text without surrounding white space, as a string column reads it; None for
+    an empty one (None, NaN, pandas' NA, blank)."""
+    if value is None or (isinstance(value, float) and value != value):
+        return None
+    if type(value).__name__ == "NAType":
+        return None
+    text = str(value).strip()
+    return text or None
+
+
 def check_respondent_ids(
     respondent_ids: Sequence[object] | np.ndarray | pd.Series,
     *,
@@ -182,16 +198,28 @@ def check_respondent_ids(
     """
     import pandas as pd
 
-    raw = respondent_ids if isinstance(respondent_ids, pd.Series) else pd.Series(
-        np.asarray(respondent_ids, dtype=object)
-    )
-    ids = raw.astype("string").str.strip()
-    n = len(ids)
-    numbers = _row_numbers(rows, n)
-    empty = (ids.isna() | (ids == "")).to_numpy(dtype=bool)
-    duplicated = ids.duplicated(keep=False).to_numpy(dtype=bool) & ~empty
-    stripped = ids.to_numpy(dtype=object)
-    stripped[empty] = None  # also replaces pandas' NA
+    if not isinstance(respondent_ids, pd.Series) and len(respondent_ids) <= _FEW_IDS:
+        # A few ids (a post of a handful of respondents): plain Python is faster than the
+        # frame operations' fixed cost, and reads every id the same way.
+        stripped = np.array([_stripped(v) for v in respondent_ids] + [None], dtype=object)[:-1]
+        n = len(stripped)
+        numbers = _row_numbers(rows, n)
+        empty = np.fromiter((v is None for v in stripped), dtype=bool, count=n)
+        seen = Counter(v for v in stripped if v is not None)
+        duplicated = np.fromiter(
+            (v is not None and seen[v] > 1 for v in stripped), dtype=bool, count=n
+        )
+    else:
+        raw = respondent_ids if isinstance(respondent_ids, pd.Series) else pd.Series(
+            np.asarray(respondent_ids, dtype=object)
+        )
+        ids = raw.astype("string").str.strip()
+        n = len(ids)
+        numbers = _row_numbers(rows, n)
+        empty = (ids.isna() | (ids == "")).to_numpy(dtype=bool)
+        duplicated = ids.duplicated(keep=False).to_numpy(dtype=bool) & ~empty
+        stripped = ids.to_numpy(dtype=object)
+        stripped[empty] = None  # also replaces pandas' NA
     found: list[tuple[int, ResponseProblem]] = [
         (r, ResponseProblem(int(numbers[r]), None, id_column, "respondent id is empty"))
         for r in np.flatnonzero(empty).tolist()

@@ -131,7 +131,18 @@ class JobRunner:
                     raise _TakenOver
             return
         target = private_folder(private_folder(self.folder) / job.id)
-        if job.kind is JobKind.REPORT:
+        if job.kind is JobKind.NIGHTLY:
+            from .nightly import DEFAULT_FORMAT, nightly_survey
+
+            self._advance(job, 0.1, "the nightly work: reference, re-screen, export, report")
+            run = nightly_survey(
+                self.database, self.settings, job.survey, target,
+                fmt=job.options.get("format", DEFAULT_FORMAT),
+                without=job.options.get("without") or (),
+            )
+            path = target / REPORT_FILE
+            result: dict[str, Any] = run.as_dict()
+        elif job.kind is JobKind.REPORT:
             from .reports import build_report
 
             self._advance(job, 0.1, "reading the survey and drawing the figures")
@@ -143,7 +154,7 @@ class JobRunner:
 
             path = target / REPORT_FILE
             write_atomic(path, lambda temporary: Path(temporary).write_text(page, encoding="utf-8"))
-            result: dict[str, Any] = {"file": REPORT_FILE}
+            result = {"file": REPORT_FILE}
         else:
             from .exports import SUFFIXES, write_export
 

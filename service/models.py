@@ -85,6 +85,7 @@ class JobKind(enum.StrEnum):
     RESCREEN = "rescreen"
     REPORT = "report"
     EXPORT = "export"
+    NIGHTLY = "nightly"
 
 
 class JobState(enum.StrEnum):

@@ -800,17 +800,19 @@ class JobIn(BaseModel):
                                          "without": ["excluded"]}]},
     )
 
-    kind: Literal["rescreen", "report", "export"] = Field(
+    kind: Literal["rescreen", "report", "export", "nightly"] = Field(
         description="rescreen (admin): new reference sample and re-score everyone; report: the "
-        "screening report; export: the survey as one file."
+        "screening report; export: the survey as one file; nightly (admin): the nightly work "
+        "for this survey (a new reference sample when due, stale results re-screened, the "
+        "export and the report from one read)."
     )
     format: Literal["csv", "parquet", "sav", "dta"] = Field(
-        default="csv", description="An export's format (export only)."
+        default="csv", description="An export's format (export and nightly)."
     )
     without: list[Literal["excluded", "flagged"]] = Field(
         default_factory=list,
         description="An export leaves out `excluded` respondents (latest review `exclude`) "
-        "and/or `flagged` ones (any flag, on evidence alone) (export only).",
+        "and/or `flagged` ones (any flag, on evidence alone) (export and nightly).",
     )
 
 

@@ -71,8 +71,12 @@ def over_sync_limit(database: Any, survey: str, settings: Any) -> bool:
         return jobs.over_sync_limit(session, found, settings.sync_limit_respondents)
 
 
+#: Jobs that change stored results: an admin key starts them.
+ADMIN_KINDS = ("rescreen", "nightly")
+
+
 def options_of(body: JobIn) -> dict[str, Any]:
-    if body.kind == "export":
+    if body.kind in ("export", "nightly"):
         return {"format": body.format, "without": sorted(set(body.without))}
     return {}
 
@@ -80,10 +84,11 @@ def options_of(body: JobIn) -> dict[str, Any]:
 @router.post(
     "/v1/surveys/{survey}/jobs",
     operation_id="startJob",
-    summary="Start a background job on a survey: re-screen, report or export",
+    summary="Start a background job on a survey: re-screen, report, export or nightly work",
     description=(
         "Queues the job and answers at once with 202 and the job document; follow it at "
-        "`Location`. A re-screen needs an admin key, a report or an export an analyst key. "
+        "`Location`. A re-screen or the nightly work needs an admin key, a report or an export "
+        "an analyst key. The nightly job's result is its report; its document lists the files. "
         "Flags are evidence for a reviewer's decision, not a verdict."
     ),
     status_code=202,
@@ -96,9 +101,9 @@ def options_of(body: JobIn) -> dict[str, Any]:
 def start_job(
     survey: str, body: JobIn, caller: Reader, queue: JobQueueDep
 ) -> JSONResponse:
-    if body.kind == "rescreen" and caller.role != Role.ADMIN:
+    if body.kind in ADMIN_KINDS and caller.role != Role.ADMIN:
         raise Problem(
-            403, f"This key has the role {caller.role.value!r}; a re-screen needs: admin.",
+            403, f"This key has the role {caller.role.value!r}; a {body.kind} job needs: admin.",
             kind="forbidden",
         )
     return accepted(queue.submit(survey, JobKind(body.kind), options_of(body), caller.name))
@@ -172,7 +177,7 @@ def job_result(job: str, caller: Reader, database: DatabaseDep) -> Response:
     if not file.is_file():
         raise Problem(404, "The job's result file is no longer there; start the job again.",
                       kind="job-result-gone")
-    if file.name == REPORT_FILE and found.kind is JobKind.REPORT:
+    if file.name == REPORT_FILE and found.kind in (JobKind.REPORT, JobKind.NIGHTLY):
         return HTMLResponse(file.read_text(encoding="utf-8"))
     fmt = found.options.get("format", "csv")
     return FileResponse(

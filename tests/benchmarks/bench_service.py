@@ -141,14 +141,18 @@ async def _client(port: int, requests: list[bytes], latencies: list[float], code
         writer.close()
 
 
-def single_posts(port: int, secret: str, item_ids: list[str], total: int) -> dict:
+def single_posts(
+    port: int, secret: str, item_ids: list[str], total: int, tag: str = "s"
+) -> dict:
+    """``total`` signed single posts from ``CONCURRENCY`` clients; ``tag`` keeps the
+    respondent and webhook ids of one run apart from another's."""
     rng = np.random.default_rng(1)
     rows = answers(rng, total, item_ids)
     now = int(time.time())
     raws = []
     for i, row in enumerate(rows):
-        body = json.dumps({"respondent_id": f"s{i:07d}", "answers": row}).encode()
-        webhook_id = f"msg_bench_{i}"
+        body = json.dumps({"respondent_id": f"{tag}{i:07d}", "answers": row}).encode()
+        webhook_id = f"msg_{tag}_{i}"
         headers = (
             f"POST /v1/surveys/orchard-volunteers-2027/responses HTTP/1.1\r\n"
             f"host: {HOST}:{port}\r\ncontent-type: application/json\r\n"
@@ -396,7 +400,7 @@ def main() -> int:
         port = free_port()
         server = start_server(url, port)
         try:
-            single_posts(port, secret, item_ids, 500)  # warm-up, not reported
+            single_posts(port, secret, item_ids, 500, tag="warm")  # not reported
             result = single_posts(port, secret, item_ids, args.requests)
             say(
                 f"1. single signed posts, {CONCURRENCY} clients, one worker, SQLite, every "
@@ -433,7 +437,7 @@ def main() -> int:
         bare_port = free_port()
         bare = start_bare(bare_port)
         try:
-            single_posts(bare_port, secret, item_ids, 500)
+            single_posts(bare_port, secret, item_ids, 500, tag="warm")
             plain = single_posts(bare_port, secret, item_ids, args.requests)
             say(
                 f"1c. the same posts to a bare endpoint that only validates the body "

@@ -127,3 +127,20 @@ def test_a_repeated_id_names_its_first_five_rows_on_every_row():
     )
     assert [p.row for p in checked.problems] == list(range(1, 13))
     assert checked.respondent_ids.tolist()[7:] == ["y", None, None, None, "y"]
+
+
+def test_a_few_ids_are_read_as_a_column_of_many_is():
+    # The plain-Python reading of a few ids and pandas' string column (the reference) agree.
+    import pandas as pd
+
+    from detectors.responses import check_respondent_ids
+
+    rng = np.random.default_rng(3)
+    pool = ["a", " a", "b ", "", "  ", None, float("nan"), pd.NA, 7, 7.0, 1.5, "c", "é", True]
+    for _ in range(200):
+        ids = [pool[i] for i in rng.integers(0, len(pool), size=int(rng.integers(1, 12)))]
+        few = check_respondent_ids(ids)
+        many = check_respondent_ids(pd.Series(ids, dtype=object))
+        assert few.respondent_ids.tolist() == many.respondent_ids.tolist(), ids
+        assert few.invalid.tolist() == many.invalid.tolist(), ids
+        assert few.problems == many.problems, ids

@@ -134,6 +134,32 @@ def test_embedded_jobs_give_what_the_synchronous_endpoints_give(tmp_path):
         assert 'heedful_jobs_total{kind="rescreen",outcome="done"} 2.0' in metrics
 
 
+def test_the_nightly_work_of_a_survey_runs_as_a_job(tmp_path):
+    settings = Settings(database_url=f"sqlite:///{tmp_path / 'heedful.db'}",
+                        reference_min_respondents=50)
+    with _app(settings) as (client, keys):
+        survey = _survey_with_respondents(client, keys)
+        refused = client.post(f"/v1/surveys/{survey}/jobs", json={"kind": "nightly"},
+                              headers=_auth(keys["analyst"]))
+        assert refused.status_code == 403
+        job = _start(client, keys["admin"], survey, kind="nightly", format="csv",
+                     without=["excluded"])
+        done = _wait_done(client, keys["analyst"], job["id"])
+        assert done["state"] == "done", done
+        result = done["result"]
+        assert result["respondents"] == 150 and result["error"] is None
+        assert result["files"] == [f"{survey}.csv", "report.html"]
+        assert result["references"]  # the first night estimates a reference sample
+        page = client.get(done["result_url"], headers=_auth(keys["analyst"]))
+        assert page.headers["content-type"].startswith("text/html")
+        direct = client.get(f"/v1/surveys/{survey}/report", headers=_auth(keys["analyst"]))
+        # The night's report from its shared read is the report read on its own.
+        assert _without_time(page.text) == _without_time(direct.text)
+        again = _wait_done(client, keys["analyst"],
+                           _start(client, keys["admin"], survey, kind="nightly")["id"])
+        assert again["result"]["stale"] == 0 and again["result"]["references"] == []
+
+
 def test_large_surveys_get_a_job_from_the_synchronous_endpoints(tmp_path):
     settings = Settings(database_url=f"sqlite:///{tmp_path / 'heedful.db'}",
                         reference_min_respondents=50, sync_limit_respondents=100)

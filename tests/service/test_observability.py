@@ -127,7 +127,7 @@ def test_every_reply_carries_a_request_id(service):
     assert plain.headers["x-request-id"] == "abc-123.def"
     odd = service.client.get("/healthz", headers={"X-Request-Id": "bad id\twith spaces"})
     assert odd.headers["x-request-id"] != "bad id\twith spaces"
-    assert len(odd.headers["x-request-id"]) == 32
+    assert len(odd.headers["x-request-id"]) == 32  # 16 hex digits of process, 16 of counter
     fresh = service.client.get("/healthz").headers["x-request-id"]
     assert fresh != service.client.get("/healthz").headers["x-request-id"]
 
