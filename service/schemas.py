@@ -838,7 +838,7 @@ class JobOut(BaseModel):
     )
 
     id: str
-    kind: Literal["rescreen", "report", "export"]
+    kind: Literal["rescreen", "report", "export", "nightly"]
     survey: str
     options: dict[str, Any]
     state: Literal["queued", "running", "done", "failed"] = Field(

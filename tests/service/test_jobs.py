@@ -148,7 +148,7 @@ def test_the_nightly_work_of_a_survey_runs_as_a_job(tmp_path):
         assert done["state"] == "done", done
         result = done["result"]
         assert result["respondents"] == 150 and result["error"] is None
-        assert result["files"] == [f"{survey}.csv", "report.html"]
+        assert result["files"] == [f"{survey}.csv", "report.html", "nightly.json"]
         assert result["references"]  # the first night estimates a reference sample
         page = client.get(done["result_url"], headers=_auth(keys["analyst"]))
         assert page.headers["content-type"].startswith("text/html")
