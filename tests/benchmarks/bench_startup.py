@@ -14,13 +14,13 @@ Usage:
 
     .venv/bin/python tests/benchmarks/bench_startup.py [--repeats 7] [--write]
 
-``--write`` also writes the figures to docs/speed-startup.md with the date and the commit.
+``--write`` also writes the figures to docs/speed-startup.md and the README, with the date and
+the commit.
 """
 
 from __future__ import annotations
 
 import argparse
-import datetime as dt
 import os
 import resource
 import socket
@@ -152,17 +152,17 @@ def main() -> int:
     ]
     print("\n".join(lines))
     if args.write:
-        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
-                                capture_output=True, text=True).stdout.strip()
-        load = os.getloadavg()[0]
-        (ROOT / "docs" / "speed-startup.md").write_text(
-            "# Start-up times\n\n"
-            f"Written by `tests/benchmarks/bench_startup.py` on {dt.date.today()} at commit "
-            f"`{commit}` (load average {load:.1f} on {os.cpu_count()} cores when it ended).\n\n"
-            "```\n" + "\n".join(lines) + "\n```\n",
-            encoding="utf-8",
-        )
+        from figures import write_figures, write_readme_block
+
+        written = write_figures("speed-startup.md", "Start-up times", "bench_startup.py", lines)
+        text = written.read_text().split("\n", 2)[2]  # the stamp and the figures
+        write_readme_block(START, END, text.rstrip("\n"))
     return 0
+
+
+#: The README's copy of the figures lies between these lines.
+START = "<!-- start-up figures: written by bench_startup.py -->"
+END = "<!-- end start-up figures -->"
 
 
 if __name__ == "__main__":
