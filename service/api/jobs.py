@@ -143,7 +143,8 @@ def get_job(job: str, caller: Reader, database: DatabaseDep) -> JobOut:
 @router.get(
     "/v1/jobs/{job}/result",
     operation_id="getJobResult",
-    summary="A done job's result: the export file, the report page or the re-screen's reply",
+    summary="A done job's result: the export file, the report page (also of a nightly job) or "
+    "the re-screen's reply",
     description=(
         "409 while the job is queued or running, and when it failed (the problem's `state` "
         "says which). Flags are evidence for a reviewer's decision, not a verdict: review "
