@@ -6,6 +6,8 @@ the command line prints them. ::
 
     ServiceError
      ├── UnknownSurvey        no survey registered under this id
+     ├── UnknownRespondent    the survey has no respondent under this id
+     ├── InvalidQuery         a listing asked for with a value it cannot use (names the field)
      ├── NoVersion            the survey has no registered version
      ├── RespondentConflict   respondents already stored with other answers (no replace)
      ├── SignatureRefused     a webhook signature that does not verify
@@ -24,6 +26,8 @@ from dataclasses import dataclass
 __all__ = [
     "ServiceError",
     "UnknownSurvey",
+    "UnknownRespondent",
+    "InvalidQuery",
     "NoVersion",
     "RespondentConflict",
     "Conflict",
@@ -51,6 +55,22 @@ class UnknownSurvey(ServiceError):
     def __init__(self, survey: str):
         self.survey = survey
         super().__init__(f"No survey {survey!r} is registered.")
+
+
+class UnknownRespondent(ServiceError):
+    def __init__(self, survey: str, respondent: str):
+        self.survey = survey
+        self.respondent = respondent
+        super().__init__(f"Survey {survey!r} has no respondent {respondent!r}.")
+
+
+class InvalidQuery(ServiceError):
+    """A listing's parameter that cannot be used: ``field`` names it, ``detail`` says why."""
+
+    def __init__(self, field: str, detail: str, message: str | None = None):
+        self.field = field
+        self.detail = detail
+        super().__init__(message or f"{field}: {detail}.")
 
 
 class NoVersion(ServiceError):

@@ -24,6 +24,7 @@ from detectors import HeedfulError, InstrumentError, ResponseDataError, SettingE
 
 from .errors import (
     CONFLICT_REASON,
+    InvalidQuery,
     JobNotDone,
     NoVersion,
     RespondentConflict,
@@ -31,6 +32,7 @@ from .errors import (
     SignatureRefused,
     TooManyRequests,
     UnknownJob,
+    UnknownRespondent,
     UnknownSurvey,
     WebhookIdReused,
     WriterBusy,
@@ -160,6 +162,13 @@ def from_service(error: ServiceError) -> Problem:
     """The one place where the use cases' domain errors become problems."""
     if isinstance(error, UnknownSurvey):
         return Problem(404, str(error), kind="unknown-survey")
+    if isinstance(error, UnknownRespondent):
+        return Problem(404, str(error), kind="unknown-respondent")
+    if isinstance(error, InvalidQuery):
+        return Problem(
+            422, str(error), kind="invalid-request",
+            errors=[field_error(f"query:{error.field}", error.detail)],
+        )
     if isinstance(error, NoVersion):
         return Problem(409, str(error), kind="no-version")
     if isinstance(error, RespondentConflict):

@@ -8,30 +8,21 @@ from typing import Annotated, Literal
 from urllib.parse import urlencode
 
 from fastapi import APIRouter, Query, Request, Response
-from sqlalchemy.orm import Session
 
-from detectors import REGISTRY
-
-from .. import outcomes, screeners, store
-from ..answers import answers_of
+from .. import review as review_cases
+from .. import store
 from ..files import formula_safe
-from ..models import Decision, Respondent
+from ..models import Decision
 from ..problems import Problem
 from ..schemas import (
-    EarlierResult,
-    HistoryEntry,
-    OutcomeOut,
     RespondentDetail,
     RespondentPage,
-    RespondentRow,
     ReviewIn,
     ReviewOut,
-    ScreeningHistoryEntry,
     ZonedTime,
 )
 from .common import EVIDENCE_NOTE, errors
 from .deps import Admin, DatabaseDep, Reader, SettingsDep
-from .surveys import survey_or_404
 
 router = APIRouter(tags=["respondents"])
 
@@ -43,11 +34,6 @@ Sort = Literal[
     "received_at", "-received_at", "flag_count", "-flag_count", "respondent_id", "-respondent_id",
     "careless_score", "-careless_score",
 ]
-
-
-def _split(flags: str) -> list[str]:
-    """A history table's flag set."""
-    return list(outcomes.flag_set(flags))
 
 
 def _wants_csv(request: Request) -> bool:
@@ -126,40 +112,16 @@ def list_respondents(
             422, f"limit must be at most {settings.page_limit_max}.", kind="invalid-request",
             errors=[{"pointer": "query:limit", "detail": f"at most {settings.page_limit_max}"}],
         )
-    if detector is not None and detector not in REGISTRY:
-        raise Problem(
-            422, f"Unknown detector {detector!r}; known: {', '.join(REGISTRY)}.",
-            kind="invalid-request",
-            errors=[{"pointer": "query:detector", "detail": "unknown detector"}],
-        )
     query = store.ListQuery(
         flagged=flagged, detector=detector, review=review, received_after=received_after,
         received_before=received_before, min_flags=min_flags, verdict=verdict, sort=sort,
         limit=limit, cursor=cursor,
     )
     with database.read() as session:
-        found = survey_or_404(session, survey)
-        numbers = store.version_numbers(session, found.id)
-        codes = outcomes.detector_codes(session)
-        try:
-            rows, next_cursor = store.list_respondents(session, found.id, query)
-        except store.BadCursor as error:
-            raise Problem(
-                422, str(error), kind="invalid-request",
-                errors=[{"pointer": "query:cursor", "detail": str(error)}],
-            ) from None
-    data = [
-        RespondentRow(
-            respondent_id=r.respondent_id, flag_count=r.flag_count,
-            flags=list(codes.names(r.flag_bits)),
-            verdict=r.verdict, careless_score=r.careless_score,
-            review_decision=r.review_decision, received_at=r.received_at,
-            version=numbers[r.survey_version_id],
-        )
-        for r in rows
-    ]
+        page = review_cases.respondents_page(session, survey, query)
+    data, next_cursor = page.data, page.next_cursor
     if not as_csv:
-        return RespondentPage(data=data, next_cursor=next_cursor)
+        return page
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
@@ -182,15 +144,6 @@ def list_respondents(
     return Response(out.getvalue(), media_type="text/csv; charset=utf-8", headers=headers)
 
 
-def _respondent_or_404(session, survey_id: int, survey: str, respondent: str):
-    found = store.get_respondent(session, survey_id, respondent)
-    if found is None:
-        raise Problem(
-            404, f"Survey {survey!r} has no respondent {respondent!r}.", kind="unknown-respondent"
-        )
-    return found
-
-
 @router.get(
     "/v1/surveys/{survey}/respondents/{respondent:path}",
     operation_id="getRespondent",
@@ -207,62 +160,7 @@ def get_respondent(
     survey: str, respondent: str, caller: Reader, database: DatabaseDep
 ) -> RespondentDetail:
     with database.read() as session:
-        found_survey = survey_or_404(session, survey)
-        found = _respondent_or_404(session, found_survey.id, survey, respondent)
-        numbers = store.version_numbers(session, found_survey.id)
-        results = outcomes.results_of(session, found)
-        codes = outcomes.detector_codes(session)
-        return RespondentDetail(
-            respondent_id=found.respondent_id,
-            version=numbers[found.survey_version_id],
-            received_at=found.received_at,
-            started_at=found.started_at,
-            submitted_at=found.submitted_at,
-            duration_seconds=found.duration_seconds,
-            meta=found.meta,
-            answers=answers_of(session, found.survey_version_id, found.answer_codes),
-            flag_count=found.flag_count,
-            flags=list(codes.names(found.flag_bits)),
-            verdict=found.verdict,
-            careless_score=found.careless_score,
-            verdict_reason=_verdict_reason(session, found),
-            review_decision=found.review_decision,
-            results=[
-                OutcomeOut(
-                    detector=o.detector, detector_version=o.detector_version,
-                    state=o.state.label, reason=o.reason, score=o.score, cutoff=o.cutoff,
-                    flagged=o.flagged, evidence=o.evidence, sentence=o.sentence,
-                    reference_id=o.reference_id,
-                )
-                for o in results
-            ],
-            reviews=[
-                ReviewOut(
-                    decision=r.decision, note=r.note, reviewer=r.reviewer, created_at=r.created_at
-                )
-                for r in store.reviews_of(session, found.id)
-            ],
-            history=[
-                HistoryEntry(
-                    answers=h.answers, version=numbers[h.survey_version_id],
-                    received_at=h.received_at, replaced_at=h.replaced_at, flags=_split(h.flags),
-                )
-                for h in store.history_of(session, found.id)
-            ],
-            screening_history=[
-                ScreeningHistoryEntry(
-                    screened_at=h.screened_at, replaced_at=h.replaced_at,
-                    version=numbers[h.survey_version_id], reference_id=h.reference_id,
-                    flag_count=h.flag_count, flags=_split(h.flags), verdict=h.verdict,
-                    careless_score=h.careless_score,
-                    results={
-                        name: EarlierResult.model_validate(value)
-                        for name, value in outcomes.earlier_results(codes, h).items()
-                    },
-                )
-                for h in store.screening_history_of(session, found.id)
-            ],
-        )
+        return review_cases.respondent_detail(session, survey, respondent)
 
 
 @router.post(
@@ -285,14 +183,8 @@ def review_respondent(
     survey: str, respondent: str, review: ReviewIn, caller: Reader, database: DatabaseDep
 ) -> ReviewOut:
     with database.write() as session:
-        found_survey = survey_or_404(session, survey)
-        found = _respondent_or_404(session, found_survey.id, survey, respondent)
-        stored = store.add_review(
-            session, found, Decision(review.decision), review.note, caller.name
-        )
-        return ReviewOut(
-            decision=stored.decision, note=stored.note, reviewer=stored.reviewer,
-            created_at=stored.created_at,
+        return review_cases.record_review(
+            session, survey, respondent, Decision(review.decision), review.note, caller.name
         )
 
 
@@ -312,27 +204,10 @@ def erase_respondent(
     survey: str, respondent: str, caller: Admin, database: DatabaseDep
 ) -> Response:
     with database.write() as session:
-        found_survey = survey_or_404(session, survey)
-        found = _respondent_or_404(session, found_survey.id, survey, respondent)
+        found_survey = review_cases.find_survey(session, survey)
+        found = review_cases.find_respondent(session, found_survey, respondent)
         store.erase_respondent(session, found_survey, found, caller.name)
     return Response(status_code=204)
 
 
 __all__ = ["router"]
-
-
-def _verdict_reason(session: Session, found: Respondent) -> str | None:
-    """Why the stored verdict, derived on read from the flags and the version's policy."""
-    from detectors.verdict import explain
-
-    if found.verdict is None:
-        return None
-    policy = screeners.screener_for(session, found.survey_version_id).instrument.verdict
-    flags = outcomes.detector_codes(session).names(found.flag_bits)
-    raised = {REGISTRY[name].family for name in flags if name in REGISTRY}
-    families = [family for family in policy.families if family in raised]
-    return explain(
-        str(found.verdict), families, found.careless_score,
-        policy.review_rate * policy.score_review_share,
-        likely_from=policy.likely_careless_from,
-    )

@@ -1,0 +1,286 @@
+"""Reviewing respondents: the use cases behind the analyst API and the review pages.
+
+Both edges (``service.api.respondents`` answering JSON and CSV, ``service.pages`` answering
+HTML) call these functions inside the caller's transaction, so a decision recorded on a page is
+the one the API reads back, and the other way round. They raise the domain errors of
+``service.errors`` (``UnknownSurvey``, ``UnknownRespondent``, ``InvalidQuery``); only the edges
+turn them into problems or pages.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass, replace
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from detectors import REGISTRY
+
+from . import outcomes, screeners, store
+from .answers import answers_of
+from .errors import InvalidQuery, UnknownRespondent, UnknownSurvey
+from .models import Decision, Respondent, Survey
+from .schemas import (
+    EarlierResult,
+    HistoryEntry,
+    OutcomeOut,
+    RespondentDetail,
+    RespondentPage,
+    RespondentRow,
+    ReviewOut,
+    ScreeningHistoryEntry,
+)
+
+__all__ = [
+    "find_survey",
+    "find_respondent",
+    "respondents_page",
+    "respondent_detail",
+    "record_review",
+    "SurveyTally",
+    "survey_tallies",
+    "has_careless_scores",
+    "neighbours",
+    "SORT_FIELDS",
+]
+
+#: Columns a listing can be sorted by (a leading '-' sorts descending).
+SORT_FIELDS = ("received_at", "flag_count", "respondent_id", "careless_score")
+
+
+def find_survey(session: Session, survey: str) -> Survey:
+    found = store.get_survey(session, survey)
+    if found is None:
+        raise UnknownSurvey(survey)
+    return found
+
+
+def find_respondent(session: Session, survey: Survey, respondent: str) -> Respondent:
+    found = store.get_respondent(session, survey.id, respondent)
+    if found is None:
+        raise UnknownRespondent(survey.survey, respondent)
+    return found
+
+
+def _check(query: store.ListQuery) -> None:
+    if query.detector is not None and query.detector not in REGISTRY:
+        raise InvalidQuery(
+            "detector", "unknown detector",
+            f"Unknown detector {query.detector!r}; known: {', '.join(REGISTRY)}.",
+        )
+    if query.sort.lstrip("-") not in SORT_FIELDS:
+        raise InvalidQuery(
+            "sort", "unknown sort key",
+            f"Unknown sort key {query.sort!r}; known: {', '.join(SORT_FIELDS)} (a leading '-' "
+            "sorts descending).",
+        )
+
+
+def respondents_page(session: Session, survey: str, query: store.ListQuery) -> RespondentPage:
+    """One page of a survey's respondents, filtered and sorted as ``query`` asks."""
+    _check(query)
+    found = find_survey(session, survey)
+    numbers = store.version_numbers(session, found.id)
+    codes = outcomes.detector_codes(session)
+    try:
+        rows, next_cursor = store.list_respondents(session, found.id, query)
+    except store.BadCursor as error:
+        raise InvalidQuery("cursor", str(error), str(error)) from None
+    data = [
+        RespondentRow(
+            respondent_id=r.respondent_id, flag_count=r.flag_count,
+            flags=list(codes.names(r.flag_bits)),
+            verdict=r.verdict, careless_score=r.careless_score,
+            review_decision=r.review_decision, received_at=r.received_at,
+            version=numbers[r.survey_version_id],
+        )
+        for r in rows
+    ]
+    return RespondentPage(data=data, next_cursor=next_cursor)
+
+
+def _split(flags: str) -> list[str]:
+    """A history table's flag set."""
+    return list(outcomes.flag_set(flags))
+
+
+def respondent_detail(session: Session, survey: str, respondent: str) -> RespondentDetail:
+    """Everything a reviewer reads about one respondent (answers, results, reviews, history)."""
+    found_survey = find_survey(session, survey)
+    found = find_respondent(session, found_survey, respondent)
+    numbers = store.version_numbers(session, found_survey.id)
+    results = outcomes.results_of(session, found)
+    codes = outcomes.detector_codes(session)
+    return RespondentDetail(
+        respondent_id=found.respondent_id,
+        version=numbers[found.survey_version_id],
+        received_at=found.received_at,
+        started_at=found.started_at,
+        submitted_at=found.submitted_at,
+        duration_seconds=found.duration_seconds,
+        meta=found.meta,
+        answers=answers_of(session, found.survey_version_id, found.answer_codes),
+        flag_count=found.flag_count,
+        flags=list(codes.names(found.flag_bits)),
+        verdict=found.verdict,
+        careless_score=found.careless_score,
+        verdict_reason=_verdict_reason(session, found),
+        review_decision=found.review_decision,
+        results=[
+            OutcomeOut(
+                detector=o.detector, detector_version=o.detector_version,
+                state=o.state.label, reason=o.reason, score=o.score, cutoff=o.cutoff,
+                flagged=o.flagged, evidence=o.evidence, sentence=o.sentence,
+                reference_id=o.reference_id,
+            )
+            for o in results
+        ],
+        reviews=[
+            ReviewOut(
+                decision=r.decision, note=r.note, reviewer=r.reviewer, created_at=r.created_at
+            )
+            for r in store.reviews_of(session, found.id)
+        ],
+        history=[
+            HistoryEntry(
+                answers=h.answers, version=numbers[h.survey_version_id],
+                received_at=h.received_at, replaced_at=h.replaced_at, flags=_split(h.flags),
+            )
+            for h in store.history_of(session, found.id)
+        ],
+        screening_history=[
+            ScreeningHistoryEntry(
+                screened_at=h.screened_at, replaced_at=h.replaced_at,
+                version=numbers[h.survey_version_id], reference_id=h.reference_id,
+                flag_count=h.flag_count, flags=_split(h.flags), verdict=h.verdict,
+                careless_score=h.careless_score,
+                results={
+                    name: EarlierResult.model_validate(value)
+                    for name, value in outcomes.earlier_results(codes, h).items()
+                },
+            )
+            for h in store.screening_history_of(session, found.id)
+        ],
+    )
+
+
+def record_review(
+    session: Session, survey: str, respondent: str, decision: Decision, note: str, reviewer: str
+) -> ReviewOut:
+    """Append a person's decision about a respondent; it becomes the respondent's latest."""
+    found_survey = find_survey(session, survey)
+    found = find_respondent(session, found_survey, respondent)
+    stored = store.add_review(session, found, decision, note, reviewer)
+    return ReviewOut(
+        decision=stored.decision, note=stored.note, reviewer=stored.reviewer,
+        created_at=stored.created_at,
+    )
+
+
+def _verdict_reason(session: Session, found: Respondent) -> str | None:
+    """Why the stored verdict, derived on read from the flags and the version's policy."""
+    from detectors.verdict import explain
+
+    if found.verdict is None:
+        return None
+    policy = screeners.screener_for(session, found.survey_version_id).instrument.verdict
+    flags = outcomes.detector_codes(session).names(found.flag_bits)
+    raised = {REGISTRY[name].family for name in flags if name in REGISTRY}
+    families = [family for family in policy.families if family in raised]
+    return explain(
+        str(found.verdict), families, found.careless_score,
+        policy.review_rate * policy.score_review_share,
+        likely_from=policy.likely_careless_from,
+    )
+
+
+@dataclass(frozen=True)
+class SurveyTally:
+    """A survey with its respondents counted by verdict and by latest review decision."""
+
+    survey: str
+    title: str
+    respondents: int
+    by_verdict: dict[str, int]  # ok, review, likely_careless, not_screened
+    by_review: dict[str, int]  # keep, exclude, undecided, not_reviewed
+    flagged_not_reviewed: int
+
+
+def survey_tallies(session: Session) -> list[SurveyTally]:
+    """Every survey's respondents by verdict and review decision (one grouped query)."""
+    rows = session.execute(
+        select(
+            Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
+            (Respondent.flag_count > 0).label("flagged"), func.count(),
+        ).group_by(
+            Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
+            Respondent.flag_count > 0,
+        )
+    )
+    verdicts: dict[int, Counter[str]] = {}
+    reviews: dict[int, Counter[str]] = {}
+    waiting: Counter[int] = Counter()
+    for survey_id, verdict, decision, flagged, n in rows:
+        verdicts.setdefault(survey_id, Counter())[
+            verdict.value if verdict is not None else "not_screened"
+        ] += n
+        reviews.setdefault(survey_id, Counter())[
+            decision.value if decision is not None else "not_reviewed"
+        ] += n
+        if flagged and decision is None:
+            waiting[survey_id] += n
+    out = []
+    for survey, _number, count in store.list_surveys(session):
+        by_verdict = verdicts.get(survey.id, Counter())
+        by_review = reviews.get(survey.id, Counter())
+        out.append(
+            SurveyTally(
+                survey=survey.survey, title=survey.title, respondents=count,
+                by_verdict={
+                    key: by_verdict[key]
+                    for key in ("ok", "review", "likely_careless", "not_screened")
+                },
+                by_review={
+                    key: by_review[key]
+                    for key in ("keep", "exclude", "undecided", "not_reviewed")
+                },
+                flagged_not_reviewed=waiting[survey.id],
+            )
+        )
+    return out
+
+
+def has_careless_scores(session: Session, survey: Survey) -> bool:
+    """Whether any respondent of the survey has a careless score (a reference sample ran)."""
+    return (
+        session.scalar(
+            select(Respondent.id)
+            .where(Respondent.survey_id == survey.id, Respondent.careless_score.is_not(None))
+            .limit(1)
+        )
+        is not None
+    )
+
+
+def neighbours(
+    session: Session, survey: str, respondent: str, query: store.ListQuery
+) -> tuple[str | None, str | None]:
+    """The respondents before and after ``respondent`` in the listing ``query`` describes
+    (its filters and sort; its cursor and limit are ignored): (previous, next), None at an end
+    or when the respondent is not in that listing's order (a sort value it lacks)."""
+    _check(query)
+    found_survey = find_survey(session, survey)
+    found = find_respondent(session, found_survey, respondent)
+    field = query.sort.lstrip("-")
+    value = getattr(found, field)
+    if value is None:
+        return None, None
+    around = []
+    for sort in (query.sort[1:] if query.sort.startswith("-") else f"-{query.sort}", query.sort):
+        cursor = store.Cursor(sort, value, found.id).encode()
+        rows, _ = store.list_respondents(
+            session, found_survey.id, replace(query, sort=sort, cursor=cursor, limit=1)
+        )
+        around.append(rows[0].respondent_id if rows else None)
+    return around[0], around[1]
