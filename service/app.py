@@ -32,6 +32,7 @@ from .job_queue import JobQueue
 from .limits import Limits
 from .metrics import Metrics
 from .observability import RequestContext
+from .pages import routes as review_pages
 from .schemas import ProblemOut
 from .settings import Settings, get_settings
 
@@ -112,6 +113,7 @@ def create_app(settings: Settings | None = None, *, migrate: bool = True) -> Fas
         health, surveys, responses, respondents, reports, exports, jobs, detectors, metrics
     ):
         app.include_router(module.router)
+    review_pages.install(app)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app
 

@@ -7,6 +7,7 @@ the command line prints them. ::
     ServiceError
      ├── UnknownSurvey        no survey registered under this id
      ├── UnknownRespondent    the survey has no respondent under this id
+     ├── SignInRefused        a key that cannot open a review-page session
      ├── InvalidQuery         a listing asked for with a value it cannot use (names the field)
      ├── NoVersion            the survey has no registered version
      ├── RespondentConflict   respondents already stored with other answers (no replace)
@@ -28,6 +29,7 @@ __all__ = [
     "UnknownSurvey",
     "UnknownRespondent",
     "InvalidQuery",
+    "SignInRefused",
     "NoVersion",
     "RespondentConflict",
     "Conflict",
@@ -71,6 +73,14 @@ class InvalidQuery(ServiceError):
         self.field = field
         self.detail = detail
         super().__init__(message or f"{field}: {detail}.")
+
+
+class SignInRefused(ServiceError):
+    """A key refused at the review pages' sign-in: unknown or revoked, or not an analyst's."""
+
+    def __init__(self, code: str, message: str):
+        self.code = code  # unknown-key or wrong-role (for logs)
+        super().__init__(message)
 
 
 class NoVersion(ServiceError):

@@ -121,6 +121,21 @@ class ApiKey(Base):
     revoked_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime(), default=None)
 
 
+class WebSession(Base):
+    """A signed-in analyst on the review pages: the key it was opened with, until when it holds,
+    and the form token every page's form carries. The cookie's token is stored as a hash."""
+
+    __tablename__ = "web_sessions"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    lookup: Mapped[str] = mapped_column(String(16), unique=True)
+    token_hash: Mapped[str] = mapped_column(String(64))
+    form_token: Mapped[str] = mapped_column(String(64))
+    key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id", ondelete="CASCADE"), index=True)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), default=utcnow)
+    expires_at: Mapped[dt.datetime] = mapped_column(UTCDateTime(), index=True)
+
+
 class Survey(Base):
     __tablename__ = "surveys"
 

@@ -207,17 +207,18 @@ class SurveyTally:
     flagged_not_reviewed: int
 
 
-def survey_tallies(session: Session) -> list[SurveyTally]:
-    """Every survey's respondents by verdict and review decision (one grouped query)."""
-    rows = session.execute(
-        select(
-            Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
-            (Respondent.flag_count > 0).label("flagged"), func.count(),
-        ).group_by(
-            Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
-            Respondent.flag_count > 0,
-        )
+def survey_tallies(session: Session, only: Survey | None = None) -> list[SurveyTally]:
+    """Every survey's (or ``only`` that one's) respondents by verdict and review decision."""
+    statement = select(
+        Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
+        (Respondent.flag_count > 0).label("flagged"), func.count(),
+    ).group_by(
+        Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
+        Respondent.flag_count > 0,
     )
+    if only is not None:
+        statement = statement.where(Respondent.survey_id == only.id)
+    rows = session.execute(statement)
     verdicts: dict[int, Counter[str]] = {}
     reviews: dict[int, Counter[str]] = {}
     waiting: Counter[int] = Counter()
@@ -232,6 +233,8 @@ def survey_tallies(session: Session) -> list[SurveyTally]:
             waiting[survey_id] += n
     out = []
     for survey, _number, count in store.list_surveys(session):
+        if only is not None and survey.id != only.id:
+            continue
         by_verdict = verdicts.get(survey.id, Counter())
         by_review = reviews.get(survey.id, Counter())
         out.append(

@@ -118,6 +118,10 @@ class Settings(BaseSettings):
         default=3, ge=1,
         description="Times a job is started before a stale one is marked failed.",
     )
+    review_session_minutes: int = Field(
+        default=480, ge=1, le=7 * 24 * 60,
+        description="A review-page session ends this many minutes after signing in.",
+    )
 
     @field_validator("job_broker")
     @classmethod

@@ -52,6 +52,7 @@ from .models import (
     SurveyVersion,
     Verdict,
     WebhookDelivery,
+    WebSession,
 )
 from .security import new_token, new_webhook_secret
 
@@ -149,12 +150,53 @@ def revoke_key(session: Session, name: str) -> bool:
 
 
 def find_key(session: Session, lookup: str) -> AnyRow | None:
-    """(name, role, token_hash) of the active key with this lookup part."""
+    """(id, name, role, token_hash) of the active key with this lookup part."""
     return session.execute(
-        select(ApiKey.name, ApiKey.role, ApiKey.token_hash).where(
+        select(ApiKey.id, ApiKey.name, ApiKey.role, ApiKey.token_hash).where(
             ApiKey.lookup == lookup, ApiKey.revoked_at.is_(None)
         )
     ).first()
+
+
+# Sessions of the review pages --------------------------------------------------------------------
+
+
+def add_web_session(
+    session: Session, key_id: int, lookup: str, token_hash: str, form_token: str,
+    expires_at: dt.datetime,
+) -> None:
+    session.add(
+        WebSession(
+            key_id=key_id, lookup=lookup, token_hash=token_hash, form_token=form_token,
+            created_at=utcnow(), expires_at=expires_at,
+        )
+    )
+    session.flush()
+
+
+def find_web_session(session: Session, lookup: str, now: dt.datetime) -> AnyRow | None:
+    """(token_hash, form_token, expires_at, key name, key role) of an unexpired session whose
+    key is not revoked."""
+    return session.execute(
+        select(
+            WebSession.token_hash, WebSession.form_token, WebSession.expires_at, ApiKey.name,
+            ApiKey.role,
+        )
+        .join(ApiKey, ApiKey.id == WebSession.key_id)
+        .where(
+            WebSession.lookup == lookup, WebSession.expires_at > now, ApiKey.revoked_at.is_(None)
+        )
+    ).first()
+
+
+def end_web_session(session: Session, lookup: str) -> None:
+    session.execute(delete(WebSession).where(WebSession.lookup == lookup))
+
+
+def prune_web_sessions(session: Session, now: dt.datetime) -> int:
+    """Delete expired sessions; returns how many."""
+    result = session.execute(delete(WebSession).where(WebSession.expires_at <= now))
+    return int(getattr(result, "rowcount", 0) or 0)
 
 
 # Surveys ----------------------------------------------------------------------------------------

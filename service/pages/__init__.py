@@ -1,0 +1,1 @@
+"""Review pages served by the service."""
