@@ -214,7 +214,7 @@ COLUMN = 20  # px per item
 RIGHT = 20
 TOP_TITLE = 20
 BAND_TOP, BAND_HEIGHT = 30, 18
-PLOT_TOP = 70
+PLOT_TOP = 76
 OPTION_STEP = 30  # px between answer options on one format
 MIXED_HEIGHT = 150  # plot height when items use different formats
 ID_FONT = 10
@@ -344,7 +344,10 @@ def answer_pattern_svg(
     n = len(items)
     formats = [instrument.format_of(item) for item in items]
     mixed = len({_format_key(fmt) for fmt in formats}) > 1
-    codes = [_answer_code(item, answers.get(item.id), fmt) for item, fmt in zip(items, formats, strict=True)]
+    codes = [
+        _answer_code(item, answers.get(item.id), fmt)
+        for item, fmt in zip(items, formats, strict=True)
+    ]
     spans = _known_spans(highlights, instrument)
 
     # Vertical layout.
@@ -371,13 +374,20 @@ def answer_pattern_svg(
         return plot_bottom - plot_height * (code - fmt.lowest) / (fmt.points - 1)
 
     legend = _legend_lines(spans)
-    note = (
+    notes = [
         "Highlighted spans are evidence for a reviewer's decision, not a verdict on the "
         "respondent."
+    ]
+    if mixed:
+        notes.append(
+            "The items use different answer formats: each answer is placed by its position in "
+            "its own item's scale."
+        )
+    legend_chars = max([95, *(len(line) for line in notes), *(len(line) for line, _ in legend)])
+    width = max(
+        left + COLUMN * n + RIGHT, 16 + _width_of(legend_chars, 12) + RIGHT, _key_width() + RIGHT
     )
-    legend_chars = max([len(note), 95, *(len(line) for line, _ in legend)])
-    width = max(left + COLUMN * n + RIGHT, 16 + _width_of(legend_chars, 12) + RIGHT)
-    height = legend_top + 16 + LEGEND_LINE * (len(legend) + 1) + 14
+    height = legend_top + 16 + LEGEND_LINE * (len(legend) + len(notes)) + 14
 
     answered = sum(code is not None for code in codes)
     p = id_prefix
@@ -398,7 +408,8 @@ def answer_pattern_svg(
         "</text>",
     ]
 
-    # Highlights go first, behind everything else.
+    # Highlights go first, behind everything else; their numbers last, above everything.
+    badges: list[str] = []
     lanes: list[tuple[int, int, int]] = []  # (first, last, lane) of the spans drawn so far
     for number, (first, last, label) in enumerate(spans, start=1):
         lane = min(
@@ -408,15 +419,18 @@ def answer_pattern_svg(
         lanes.append((first, last, lane))
         x0 = left + COLUMN * first
         span_width = COLUMN * (last - first + 1)
-        top = PLOT_TOP - 22
+        top = PLOT_TOP - 26
         out.append(
             f'<g class="highlight" data-number="{number}" data-first="{_text(items[first].id)}" '
             f'data-last="{_text(items[last].id)}"><title>{number} — {_text(label)}</title>'
             f'<rect class="highlight-span" x="{_num(x0)}" y="{top}" width="{span_width}" '
             f'height="{_num(base_y + 10 - top)}" fill="url(#{p}-hatch)" fill-opacity="0.45" '
-            f'stroke="{HATCH}" stroke-width="1" stroke-dasharray="3 2"/>'
-            f'<circle cx="{_num(x0 + 9 + 17 * lane)}" cy="{top + 9}" r="7.5" fill="#ffffff" '
-            f'stroke="{HATCH}" stroke-width="1.2"/>'
+            f'stroke="{HATCH}" stroke-width="1" stroke-dasharray="3 2"/></g>'
+        )
+        badges.append(
+            f'<g class="highlight-number" data-number="{number}"><title>{number} — '
+            f'{_text(label)}</title><circle cx="{_num(x0 + 9 + 17 * lane)}" cy="{top + 9}" '
+            f'r="7.5" fill="#ffffff" stroke="{HATCH}" stroke-width="1.2"/>'
             f'<text x="{_num(x0 + 9 + 17 * lane)}" y="{top + 12.5}" font-size="10" '
             f'font-weight="700" text-anchor="middle">{number}</text></g>'
         )
@@ -498,7 +512,8 @@ def answer_pattern_svg(
                 f"<title>{_text(item.id)} is reverse-keyed</title></text>"
             )
 
-    out.extend(_legend(p, legend, note, legend_top))
+    out.extend(badges)
+    out.extend(_legend(p, legend, notes, legend_top))
     out.append("</svg>")
     return "\n".join(out)
 
@@ -569,12 +584,6 @@ def _axes(
         f'<text x="{_num(left - 8)}" y="{_num(base_y + 4)}" text-anchor="end" '
         f'fill="{MUTED}" font-style="italic">no answer</text>'
     )
-    if mixed:
-        out.append(
-            f'<text x="{_num(left)}" y="{PLOT_TOP - 26}" font-size="10" fill="{MUTED}">'
-            "Items use different answer formats: each answer is placed by its position in its "
-            "own item's scale.</text>"
-        )
     return out
 
 
@@ -589,8 +598,6 @@ def _bands(items: Sequence[Item], left: float) -> list[str]:
             f'<rect x="{_num(x0 + 1)}" y="{BAND_TOP}" width="{span_width - 2}" '
             f'height="{BAND_HEIGHT}" rx="3" fill="{BAND_FILLS[number % 2]}" '
             f'stroke="{BAND_EDGE}" stroke-width="0.8"/>'
-            f'<line x1="{_num(x0 + 1)}" y1="{BAND_TOP + BAND_HEIGHT}" x2="{_num(x0 + 1)}" '
-            f'y2="{PLOT_TOP - 24}" stroke="{BAND_EDGE}" stroke-width="0.8"/>'
             f'<text class="block-label" x="{_num(x0 + span_width / 2)}" '
             f'y="{BAND_TOP + 13}" text-anchor="middle">{_text(shown)}</text></g>'
         )
@@ -622,36 +629,13 @@ def _legend_lines(spans: Sequence[tuple[int, int, str]]) -> list[tuple[str, str]
     return out
 
 
-def _legend(p: str, lines: list[tuple[str, str]], note: str, top: float) -> list[str]:
+def _legend(p: str, lines: list[tuple[str, str]], notes: list[str], top: float) -> list[str]:
     """The key of the marks, the numbered highlights and the note on what they mean."""
     y = top
     out = [f'<g class="legend" id="{p}-legend">']
-    # The key: each mark drawn as in the plot, then its meaning.
-    x = 16.0
-    key = [
-        (f'<circle r="4.5" fill="{POSITIVE}"/>', "answer"),
-        (
-            f'<path d="M0,-6L6,0L0,6L-6,0Z" fill="#ffffff" stroke="{REVERSE}" stroke-width="2"/>',
-            "answer to a reverse-keyed item (R)",
-        ),
-        (
-            f'<path d="M-4,-4L4,4M-4,4L4,-4" stroke="{MISSING_MARK}" stroke-width="1.8"/>',
-            "no answer",
-        ),
-        (
-            f'<circle r="7" fill="none" stroke="{TARGET}" stroke-width="1.5"/>',
-            "answer an attention check asks for",
-        ),
-        (
-            f'<rect x="-6" y="-6" width="12" height="12" fill="url(#{p}-hatch)" '
-            f'stroke="{HATCH}" stroke-width="1"/>',
-            "span a flagged detector points at",
-        ),
-    ]
-    for shape, meaning in key:
+    for (shape, meaning), x in zip(_key(p), _key_positions(), strict=True):
         out.append(f'<g transform="translate({_num(x + 7)},{_num(y - 4)})">{shape}</g>')
         out.append(f'<text x="{_num(x + 18)}" y="{_num(y)}">{_text(meaning)}</text>')
-        x += 18 + _width_of(len(meaning), 11) + 18
     y += 8
     for shown, full in lines:
         y += LEGEND_LINE
@@ -659,10 +643,47 @@ def _legend(p: str, lines: list[tuple[str, str]], note: str, top: float) -> list
             f'<text class="legend-item" x="16" y="{_num(y)}" font-size="12">{_text(shown)}'
             f"<title>{_text(full)}</title></text>"
         )
-    y += LEGEND_LINE
-    out.append(
-        f'<text class="legend-note" x="16" y="{_num(y)}" font-size="11" fill="{MUTED}">'
-        f"{_text(note)}</text>"
-    )
+    for note in notes:
+        y += LEGEND_LINE
+        out.append(
+            f'<text class="legend-note" x="16" y="{_num(y)}" font-size="11" fill="{MUTED}">'
+            f"{_text(note)}</text>"
+        )
     out.append("</g>")
     return out
+
+
+#: The meanings the key lists, in order.
+KEY_MEANINGS = (
+    "answer",
+    "answer to a reverse-keyed item (R)",
+    "no answer",
+    "answer an attention check asks for",
+    "span a flagged detector points at",
+)
+
+
+def _key_positions() -> list[float]:
+    """The left edge of each entry of the key."""
+    out, x = [], 16.0
+    for meaning in KEY_MEANINGS:
+        out.append(x)
+        x += 18 + _width_of(len(meaning), 11) + 18
+    return out
+
+
+def _key_width() -> float:
+    return _key_positions()[-1] + 18 + _width_of(len(KEY_MEANINGS[-1]), 11)
+
+
+def _key(p: str) -> list[tuple[str, str]]:
+    """Each mark of the key drawn as in the plot, with its meaning."""
+    shapes = [
+        f'<circle r="4.5" fill="{POSITIVE}"/>',
+        f'<path d="M0,-6L6,0L0,6L-6,0Z" fill="#ffffff" stroke="{REVERSE}" stroke-width="2"/>',
+        f'<path d="M-4,-4L4,4M-4,4L4,-4" stroke="{MISSING_MARK}" stroke-width="1.8"/>',
+        f'<circle r="7" fill="none" stroke="{TARGET}" stroke-width="1.5"/>',
+        f'<rect x="-6" y="-6" width="12" height="12" fill="url(#{p}-hatch)" '
+        f'stroke="{HATCH}" stroke-width="1"/>',
+    ]
+    return list(zip(shapes, KEY_MEANINGS, strict=True))

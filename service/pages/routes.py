@@ -17,10 +17,11 @@ from __future__ import annotations
 import datetime as dt
 import hmac
 import secrets
-from dataclasses import dataclass, fields, replace
+from collections.abc import Mapping
+from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Annotated, Any
-from urllib.parse import urlencode
+from urllib.parse import parse_qsl, quote, urlencode
 
 import jinja2
 from fastapi import APIRouter, Depends, FastAPI, Form, Request
@@ -264,16 +265,17 @@ class QueueFilter:
     sort: str = ""  # "" = careless score where the survey has them, else flag count
 
     @classmethod
+    def from_pairs(cls, given: Mapping[str, str]) -> QueueFilter:
+        """The filter of a query string's pairs (other names are ignored)."""
+        return cls(**{f.name: given[f.name].strip() for f in fields(cls) if f.name in given})
+
+    @classmethod
     def from_request(cls, request: Request) -> QueueFilter:
-        given = request.query_params
-        return cls(**{f.name: given.get(f.name, f.default).strip() for f in fields(cls)})
+        return cls.from_pairs(request.query_params)
 
     @classmethod
     def from_text(cls, text: str) -> QueueFilter:
-        from urllib.parse import parse_qsl
-
-        given = dict(parse_qsl(text))
-        return cls(**{f.name: given.get(f.name, f.default).strip() for f in fields(cls)})
+        return cls.from_pairs(dict(parse_qsl(text)))
 
     def query_string(self) -> str:
         """The filter as a query string (only what differs from the defaults)."""
@@ -424,8 +426,7 @@ def _respondent_page(
 
 
 def respondent_path(survey: str, respondent: str, queue: str = "") -> str:
-    from urllib.parse import quote
-
+    """The page of a respondent (``queue``: the queue's filter as a query string)."""
     path = f"{PREFIX}/surveys/{quote(survey, safe='')}/respondents/{quote(respondent, safe='/')}"
     return path + (f"?{queue}" if queue else "")
 
@@ -438,7 +439,7 @@ def respondent_page(
     request: Request, survey: str, respondent: str, who: Who, database: DatabaseDep,
     recorded: str | None = None,
 ) -> HTMLResponse:
-    chosen = replace(QueueFilter.from_request(request))
+    chosen = QueueFilter.from_request(request)
     return _respondent_page(
         request, survey, respondent, who, database, chosen, recorded=recorded
     )

@@ -208,7 +208,8 @@ def test_a_session_cookie_opens_no_api_operation(service, filled):
     for method, path in [
         ("DELETE", f"/v1/surveys/{filled}/respondents/same0"),
         ("GET", f"/v1/surveys/{filled}/respondents"),
-        ("POST", f"/v1/surveys/{filled}/rotate-secret"),
+        ("POST", f"/v1/surveys/{filled}/webhook-secret"),
+        ("POST", "/v1/surveys"),
     ]:
         # The cookie's path keeps browsers from sending it here; send it anyway.
         reply = client.request(method, path, headers={"Cookie": f"{SESSION_COOKIE}={cookie}"})
