@@ -126,7 +126,10 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "    -H 'Content-Type: application/json' "
                 f"--data-binary @{args.out}/responses.json -o {args.out}/reply.json",
                 f"  head -c 700 {args.out}/reply.json; echo",
-                "Then list the flagged respondents:",
+                "Then review them in the browser: open",
+                f"  {base}/review",
+                f"  and sign in with the analyst key above ({args.out}/analyst.key);",
+                "or list the flagged respondents:",
                 f"  curl -sS '{base}/v1/surveys/{survey}/respondents?flagged=true&limit=10' \\",
                 f'    -H "Authorization: Bearer $(cat {args.out}/analyst.key)"',
                 "",

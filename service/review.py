@@ -12,7 +12,7 @@ from __future__ import annotations
 from collections import Counter
 from dataclasses import dataclass, replace
 
-from sqlalchemy import func, select
+from sqlalchemy import func, literal_column, select
 from sqlalchemy.orm import Session
 
 from detectors import REGISTRY
@@ -209,13 +209,13 @@ class SurveyTally:
 
 def survey_tallies(session: Session, only: Survey | None = None) -> list[SurveyTally]:
     """Every survey's (or ``only`` that one's) respondents by verdict and review decision."""
+    # A literal, not a bound 0: PostgreSQL would see the select's and the grouping's
+    # parameters as two expressions.
+    flagged = Respondent.flag_count > literal_column("0")
     statement = select(
         Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
-        (Respondent.flag_count > 0).label("flagged"), func.count(),
-    ).group_by(
-        Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
-        Respondent.flag_count > 0,
-    )
+        flagged.label("flagged"), func.count(),
+    ).group_by(Respondent.survey_id, Respondent.verdict, Respondent.review_decision, flagged)
     if only is not None:
         statement = statement.where(Respondent.survey_id == only.id)
     rows = session.execute(statement)

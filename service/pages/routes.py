@@ -44,6 +44,8 @@ __all__ = ["router", "install", "PREFIX", "SESSION_COOKIE", "QueueFilter"]
 PREFIX = "/review"
 SESSION_COOKIE = "heedful_review"
 SIGN_IN_COOKIE = "heedful_sign_in"
+#: Longest note of a review (as the API's).
+NOTE_LENGTH = 5000
 #: Respondents per queue page.
 QUEUE_PAGE = 25
 
@@ -454,7 +456,7 @@ def record_decision(
     database: DatabaseDep,
     form_token: Annotated[str, Form()] = "",
     decision: Annotated[str, Form()] = "",
-    note: Annotated[str, Form(max_length=5000)] = "",
+    note: Annotated[str, Form()] = "",
     queue: Annotated[str, Form()] = "",
 ) -> Response:
     if not _check_form(who.form_token, form_token):
@@ -464,6 +466,12 @@ def record_decision(
         return _respondent_page(
             request, survey, respondent, who, database, chosen, status=422,
             message="Choose a decision (keep, exclude or undecided) before recording.",
+        )
+    if len(note) > NOTE_LENGTH:
+        return _respondent_page(
+            request, survey, respondent, who, database, chosen, status=422,
+            message=f"The note is {len(note)} characters long; a note holds at most "
+            f"{NOTE_LENGTH}. Nothing was recorded.",
         )
     if "\x00" in note:
         return _respondent_page(

@@ -311,3 +311,18 @@ def test_sign_out_ends_the_session(browser, demo):
     page_title_is(browser, "Sign in")
     browser.get(f"{demo.url}/review/surveys")
     page_title_is(browser, "Sign in")
+
+
+def test_the_screening_report_renders_with_every_picture(browser, demo, tmp_path):
+    with demo.api() as api:
+        reply = api.get(f"/v1/surveys/{demo.survey}/report")
+    assert reply.status_code == 200
+    page = tmp_path / "report.html"
+    page.write_bytes(reply.content)
+    browser.get(page.as_uri())
+    pictures = browser.execute_script(
+        "return [...document.images].map(i => [i.complete, i.naturalWidth]);"
+    )
+    assert pictures and all(done and width > 0 for done, width in pictures)
+    assert "not a verdict" in browser.find_element(By.TAG_NAME, "body").text
+    screenshot(browser, "report", tmp_path)
