@@ -39,7 +39,7 @@ from .errors import (
 )
 
 __all__ = [
-    "Problem", "install", "PROBLEM_JSON", "problem_schema", "field_error", "from_service",
+    "Problem", "install", "note_refusal", "PROBLEM_JSON", "problem_schema", "field_error", "from_service",
 ]
 
 PROBLEM_JSON = "application/problem+json"
@@ -219,6 +219,14 @@ def _respond(request: Request, problem: Problem) -> JSONResponse:
         media_type=PROBLEM_JSON,
         headers=problem.headers,
     )
+
+
+def note_refusal(request: Request, status: int, kind: str, cause: str | None = None) -> None:
+    """The log line and count of a refusal answered other than with a problem document (the
+    review pages answer with a page)."""
+    problem = Problem(status, kind, kind=kind)
+    problem.cause = cause
+    _note(request, problem)
 
 
 def _note(request: Request, problem: Problem) -> None:

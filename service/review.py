@@ -222,14 +222,14 @@ def survey_tallies(session: Session, only: Survey | None = None) -> list[SurveyT
     verdicts: dict[int, Counter[str]] = {}
     reviews: dict[int, Counter[str]] = {}
     waiting: Counter[int] = Counter()
-    for survey_id, verdict, decision, flagged, n in rows:
+    for survey_id, verdict, decision, raised, n in rows:
         verdicts.setdefault(survey_id, Counter())[
             verdict.value if verdict is not None else "not_screened"
         ] += n
         reviews.setdefault(survey_id, Counter())[
             decision.value if decision is not None else "not_reviewed"
         ] += n
-        if flagged and decision is None:
+        if raised and decision is None:
             waiting[survey_id] += n
     out = []
     for survey, _number, count in store.list_surveys(session):

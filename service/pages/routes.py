@@ -36,7 +36,7 @@ from ..api.common import EVIDENCE_NOTE
 from ..api.deps import DatabaseDep, SettingsDep
 from ..errors import InvalidQuery, ServiceError, SignInRefused
 from ..models import Decision
-from ..problems import from_service
+from ..problems import from_service, note_refusal
 from .drawing import answer_pattern_svg, highlights_from
 
 __all__ = ["router", "install", "PREFIX", "SESSION_COOKIE", "QueueFilter"]
@@ -117,6 +117,7 @@ def _error_page(
     request: Request, error: ServiceError, who: web_sessions.ActiveSession | None
 ) -> HTMLResponse:
     problem = from_service(error)
+    note_refusal(request, problem.status, problem.kind or f"http-{problem.status}", problem.cause)
     return _render(
         request, "error.html", status=problem.status, who=who, title=problem.title,
         message=problem.detail,
@@ -145,6 +146,7 @@ def _check_form(expected: str, given: str) -> bool:
 
 
 def _refused_form(request: Request, who: web_sessions.ActiveSession | None) -> HTMLResponse:
+    note_refusal(request, 403, "form-token-refused")
     return _render(
         request, "error.html", status=403, who=who, title="Form refused",
         message="This form did not come from a page of this session (or the session has "
@@ -199,6 +201,7 @@ def sign_in(
     next: Annotated[str, Form()] = "",  # noqa: A002
 ) -> Response:
     if not _check_form(request.cookies.get(SIGN_IN_COOKIE, ""), form_token):
+        note_refusal(request, 403, "form-token-refused", "sign-in")
         return _sign_in_page(
             request, 403, "The sign-in form had expired or did not come from this page; "
             "nothing was checked. Please enter the key again.", next,
@@ -212,12 +215,15 @@ def sign_in(
         with database.write() as session:
             opened = web_sessions.sign_in(session, key, settings.review_session_minutes)
     except SignInRefused as refused:
+        status = 401 if refused.code == "unknown-key" else 403
         if refused.code == "unknown-key":
             limits.failed(address)
-        return _sign_in_page(request, 401 if refused.code == "unknown-key" else 403,
-                             str(refused), next)
+        note_refusal(request, status, "sign-in-refused", refused.code)
+        return _sign_in_page(request, status, str(refused), next)
     except ServiceError as error:  # too many failed keys from this address
-        return _sign_in_page(request, from_service(error).status, str(error), next)
+        problem = from_service(error)
+        note_refusal(request, problem.status, problem.kind or "refused", problem.cause)
+        return _sign_in_page(request, problem.status, str(error), next)
     response = RedirectResponse(_safe_next(next), status_code=303)
     response.set_cookie(
         SESSION_COOKIE, opened.token, expires=opened.expires_at, path=PREFIX, httponly=True,

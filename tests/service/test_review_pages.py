@@ -220,3 +220,13 @@ def test_sign_in_cookie_is_separate(service):
     page = service.client.get(f"{PREFIX}/sign-in")
     assert SIGN_IN_COOKIE in service.client.cookies
     assert form_token(page.text) == service.client.cookies[SIGN_IN_COOKIE]
+
+
+def test_refusals_on_the_pages_are_logged_by_reason_without_the_key(service, filled, caplog):
+    caplog.set_level("INFO", logger="heedful.service")
+    sign_in(service.client, "hf_000000000000_secret-part")
+    sign_in(service.client, service.ingest)
+    reasons = [getattr(r, "reason", None) for r in caplog.records]
+    assert "sign-in-refused:unknown-key" in reasons and "sign-in-refused:wrong-role" in reasons
+    assert not any("secret-part" in r.getMessage() or service.ingest in r.getMessage()
+                   for r in caplog.records)
