@@ -230,3 +230,28 @@ def test_refusals_on_the_pages_are_logged_by_reason_without_the_key(service, fil
     assert "sign-in-refused:unknown-key" in reasons and "sign-in-refused:wrong-role" in reasons
     assert not any("secret-part" in r.getMessage() or service.ingest in r.getMessage()
                    for r in caplog.records)
+
+
+def test_reviews_are_recorded_and_read_through_one_set_of_use_cases():
+    """The pages and the API share service.review: no other module calls the store's review
+    functions, and both edges call the use cases."""
+    import ast
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[2] / "service"
+    callers: dict[str, set[str]] = {}
+    for path in root.rglob("*.py"):
+        tree = ast.parse(path.read_text(), filename=str(path))
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Attribute) and isinstance(node.value, ast.Name):
+                name = f"{node.value.id}.{node.attr}"
+                callers.setdefault(name, set()).add(path.relative_to(root).as_posix())
+    for function in ("add_review", "reviews_of", "list_respondents", "get_respondent"):
+        assert callers.get(f"store.{function}", set()) <= {"review.py"}, function
+    for edge in ("api/respondents.py", "pages/routes.py"):
+        assert edge in callers.get("review_cases.record_review", set()) | callers.get(
+            "review.record_review", set()
+        ), edge
+        assert edge in callers.get("review_cases.respondent_detail", set()) | callers.get(
+            "review.respondent_detail", set()
+        ), edge
