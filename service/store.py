@@ -29,6 +29,7 @@ from sqlalchemy import (
     false,
     func,
     insert,
+    literal_column,
     or_,
     select,
     type_coerce,
@@ -206,6 +207,24 @@ def get_survey(session: Session, survey: str) -> Survey | None:
     if "\x00" in survey:  # never stored, and PostgreSQL refuses it in a query
         return None
     return session.scalar(select(Survey).where(Survey.survey == survey))
+
+
+def all_surveys(session: Session) -> list[Survey]:
+    return list(session.scalars(select(Survey).order_by(Survey.survey)))
+
+
+def review_counts(session: Session, survey_ids: Sequence[int] | None) -> list[AnyRow]:
+    """(survey id, verdict, review decision, flagged, respondents) of the surveys (all: None)."""
+    # A literal, not a bound 0: PostgreSQL would see the select's and the grouping's
+    # parameters as two expressions.
+    flagged = Respondent.flag_count > literal_column("0")
+    statement = select(
+        Respondent.survey_id, Respondent.verdict, Respondent.review_decision,
+        flagged.label("flagged"), func.count(),
+    ).group_by(Respondent.survey_id, Respondent.verdict, Respondent.review_decision, flagged)
+    if survey_ids is not None:
+        statement = statement.where(Respondent.survey_id.in_(survey_ids))
+    return list(session.execute(statement))
 
 
 def list_surveys(session: Session) -> list[tuple[Survey, int, int]]:

@@ -255,3 +255,35 @@ def test_reviews_are_recorded_and_read_through_one_set_of_use_cases():
         assert edge in callers.get("review_cases.respondent_detail", set()) | callers.get(
             "review.respondent_detail", set()
         ), edge
+
+
+def _numbers(text: str) -> list[int]:
+    row = re.search(r'<th scope="row"><a href="[^"]+">pulse</a>.*?</tr>', text, re.S).group(0)
+    return [int(n) for n in re.findall(r'<td class="num">(?:<strong>)?(\d+)', row)]
+
+
+def test_survey_counts_add_up_and_follow_decisions_at_once(service, filled):
+    client = service.client
+    sign_in(client, service.analyst)
+    before = _numbers(client.get(f"{PREFIX}/surveys").text)
+    respondents, waiting, *rest = before
+    by_verdict, by_review = rest[:4], rest[4:]
+    assert respondents == 33 == sum(by_verdict) == sum(by_review)
+    assert by_review == [0, 0, 0, 33]
+    api = client.get(
+        f"/v1/surveys/{filled}/respondents?flagged=true&limit=1000",
+        headers=service.auth(service.analyst),
+    ).json()["data"]
+    assert waiting == len(api)
+    page = client.get(f"{PREFIX}/surveys/{filled}/respondents/same0")
+    client.post(
+        f"{PREFIX}/surveys/{filled}/respondents/same0",
+        data={"decision": "keep", "form_token": form_token(page.text)},
+    )
+    client.post(
+        f"/v1/surveys/{filled}/respondents/same0/review", json={"decision": "exclude"},
+        headers=service.auth(service.analyst),
+    )
+    after = _numbers(client.get(f"{PREFIX}/surveys").text)
+    assert after[1] == waiting - 1
+    assert after[6:] == [0, 1, 0, 32]  # keep, exclude, undecided, not reviewed
