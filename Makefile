@@ -52,6 +52,7 @@ bench: $(STAMP)
 	$(BIN)/python tests/benchmarks/bench_screen_cli.py
 	$(BIN)/python tests/benchmarks/bench_service.py
 	$(BIN)/python tests/benchmarks/bench_startup.py
+	$(BIN)/python tests/benchmarks/bench_review_pages.py
 
 openapi: $(STAMP)
 	$(BIN)/heedful openapi --out openapi/openapi.json
