@@ -222,7 +222,8 @@ ID_CHARS = 14  # item ids longer than this are cut (the full id stays in a title
 LABEL_CHARS = 28  # option labels on the axis
 LEGEND_CHARS = 110  # legend lines
 LEGEND_LINE = 17
-CHAR_WIDTH = 0.56  # average glyph width in ems, to size text areas (an estimate)
+CHAR_WIDTH = 0.64  # average glyph width in ems, to size text areas (an estimate, generous
+# for wide sans-serif faces such as DejaVu Sans, a common fallback for system-ui on Linux)
 FONT = "system-ui, sans-serif"
 
 # Colours: all text and markers have at least 4.5:1 contrast on white.

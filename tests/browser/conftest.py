@@ -3,7 +3,8 @@ from PyPI; nothing is downloaded). ``make test`` installs the two Debian package
 (root with apt-get); elsewhere these tests show as skipped with the reason.
 
 The demo service runs as ``make run`` starts it (``python -m service.demo_server``) on a free
-loopback port, with the demo responses posted by its ingest key."""
+loopback port, with the demo responses posted by its ingest key and re-screened against a
+reference sample by its admin key, as the README's walk-through does."""
 
 from __future__ import annotations
 
@@ -93,6 +94,8 @@ def demo(tmp_path_factory) -> Iterator[Demo]:
                 headers={"Content-Type": "application/json"},
             )
             assert reply.status_code == 201, reply.status_code
+        with demo.api("admin") as client:  # a reference sample: careless scores, the default order
+            assert client.post(f"/v1/surveys/{survey}/rescreen").status_code == 200
         yield demo
     finally:
         if process.poll() is None:

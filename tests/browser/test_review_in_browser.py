@@ -57,8 +57,10 @@ def open_queue(driver, demo, query: str = "") -> list[str]:
 
 
 def open_first(driver) -> str:
-    """The queue's first respondent, opened with the keyboard; its id."""
-    first = driver.find_element(By.CLASS_NAME, "respondent-link")
+    """The queue's first respondent, opened with the keyboard (j, then Enter); its id."""
+    driver.find_element(By.TAG_NAME, "body").send_keys("j")
+    first = driver.switch_to.active_element
+    assert first.get_attribute("class") == "respondent-link"
     respondent = first.text
     first.send_keys(Keys.ENTER)
     page_title_is(driver, f"Respondent {respondent}")
@@ -109,10 +111,15 @@ def test_the_queue_filters_by_verdict_and_detector(browser, demo, tmp_path):
         expected = api.get(
             f"/v1/surveys/{demo.survey}/respondents",
             params={"verdict": "likely_careless", "detector": "long_string", "flagged": "true",
-                    "review": "none", "limit": 25, "sort": "-flag_count"},
+                    "review": "none", "limit": 25, "sort": "-careless_score"},
         ).json()["data"]
     assert shown == [row["respondent_id"] for row in expected]
     assert shown
+    browser.find_element(By.TAG_NAME, "body").send_keys("j")  # to the first respondent
+    browser.switch_to.active_element.send_keys("j")  # j moves down the list, k back up
+    assert browser.switch_to.active_element.text == shown[min(1, len(shown) - 1)]
+    browser.switch_to.active_element.send_keys("k")
+    assert browser.switch_to.active_element.text == shown[0]
     for cell in browser.find_elements(By.CSS_SELECTOR, "table.queue .verdict"):
         assert cell.text.endswith("likely careless")
     screenshot(browser, "review-queue", tmp_path)

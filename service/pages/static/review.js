@@ -42,6 +42,15 @@
       return;
     }
     if (event.ctrlKey || event.metaKey || event.altKey || typing(event.target)) return;
+    var rows = document.querySelectorAll("a.respondent-link");
+    if (rows.length && (event.key === "j" || event.key === "k")) {
+      // The queue: j / k move to the next / previous respondent's link; Enter opens it.
+      var at = Array.prototype.indexOf.call(rows, document.activeElement);
+      var to = event.key === "j" ? Math.min(at + 1, rows.length - 1) : Math.max(at - 1, 0);
+      event.preventDefault();
+      rows[at < 0 ? 0 : to].focus();
+      return;
+    }
     var keys = {
       n: function () { follow("go-next"); },
       p: function () { follow("go-previous"); },
