@@ -17,7 +17,8 @@ the command line prints them. ::
      ├── WriterBusy           too many posts already wait for the writer
      ├── WebhookIdReused      a webhook id already accepted with another body
      ├── UnknownJob           no background job under this id
-     └── JobNotDone           a job's result asked for before the job is done (or it failed)
+     ├── JobNotDone           a job's result asked for before the job is done (or it failed)
+     └── JobEnded             a job asked to stop after it ended
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ __all__ = [
     "WebhookIdReused",
     "UnknownJob",
     "JobNotDone",
+    "JobEnded",
     "CONFLICT_REASON",
 ]
 
@@ -162,6 +164,15 @@ class JobNotDone(ServiceError):
         self.error = error
         if state == "failed":
             message = f"The job failed, so it has no result: {error or 'no reason recorded'}."
+        elif state == "cancelled":
+            message = f"The job was cancelled, so it has no result ({error or 'no reason'})."
         else:
             message = f"The job is {state}; its result is there once it is done."
         super().__init__(message)
+
+
+class JobEnded(ServiceError):
+    def __init__(self, job_id: str, state: str):
+        self.job_id = job_id
+        self.state = state
+        super().__init__(f"The job has already ended ({state}); there is nothing to cancel.")

@@ -29,7 +29,7 @@ from .db import sqlite_path, utcnow
 from .errors import UnknownSurvey
 from .jobs import JobView
 from .metrics import Metrics
-from .models import JobKind
+from .models import JobKind, JobState
 from .settings import Settings
 
 __all__ = ["JobRunner", "job_folder", "private_folder", "REPORT_FILE"]
@@ -89,11 +89,18 @@ class JobRunner:
         try:
             with self._heartbeat(job_id), self.metrics.job(job.kind.value):
                 self._run(job)
-        except _TakenOver:
-            # A sweep found the job stale and queued it again: its other run counts.
-            log.warning("job %s taken over", job.kind.value, extra={
-                "event": "job-taken-over", "survey": job.survey, "reason": job.kind.value,
-            })
+        except _TakenOver as stopped:
+            if isinstance(stopped, _Cancelled):
+                # Stopped by a person: nothing of this run is kept.
+                shutil.rmtree(self.folder / job_id, ignore_errors=True)
+                log.info("job %s cancelled", job.kind.value, extra={
+                    "event": "job-cancelled", "survey": job.survey, "reason": job.kind.value,
+                })
+            else:
+                # A sweep found the job stale and queued it again: its other run counts.
+                log.warning("job %s taken over", job.kind.value, extra={
+                    "event": "job-taken-over", "survey": job.survey, "reason": job.kind.value,
+                })
         except Exception as error:
             # Only the type: an error's message may quote answers or ids.
             what = f"{type(error).__name__} while running the {job.kind.value} job"
@@ -114,8 +121,11 @@ class JobRunner:
         return True
 
     def _advance(self, job: JobView, progress: float, message: str) -> None:
+        """Record a stage; stop here when the job is no longer this worker's (cancelled, or
+        found stale and queued again)."""
         with self.database.write() as session:
-            jobs.advance(session, job.id, self.worker, progress, message, utcnow())
+            if not jobs.advance(session, job.id, self.worker, progress, message, utcnow()):
+                raise self._stopped(job.id)
 
     def _run(self, job: JobView) -> None:
         if job.kind is JobKind.RESCREEN:
@@ -128,7 +138,7 @@ class JobRunner:
                 # In the re-screen's transaction: its results and the job's end commit together.
                 if not jobs.finish(session, job.id, self.worker, utcnow(),
                                    result=json.loads(json.dumps(reply, default=_json_value))):
-                    raise _TakenOver
+                    raise self._stopped(job.id)
             return
         target = private_folder(private_folder(self.folder) / job.id)
         if job.kind is JobKind.NIGHTLY:
@@ -174,7 +184,13 @@ class JobRunner:
         with self.database.write() as session:
             if not jobs.finish(session, job.id, self.worker, utcnow(), result_path=str(path),
                                result=result):
-                raise _TakenOver
+                raise self._stopped(job.id)
+
+    def _stopped(self, job_id: str) -> _TakenOver:
+        """Why a job stopped being this worker's: cancelled, or found stale and taken over."""
+        with self.database.read() as session:
+            cancelled = jobs.view(session, job_id).state is JobState.CANCELLED
+        return _Cancelled() if cancelled else _TakenOver()
 
     @contextmanager
     def _heartbeat(self, job_id: str) -> Iterator[None]:
@@ -212,6 +228,12 @@ class JobRunner:
                 session, now, stale, self.settings.job_attempts, skip=alive
             )
             overdue = jobs.overdue_queued(session, now, stale)
+            forgotten = (
+                jobs.forget_ended(session, now, self.settings.job_keep_days)
+                if self.settings.job_keep_days > 0 else []
+            )
+        for job_id in forgotten:
+            shutil.rmtree(self.folder / job_id, ignore_errors=True)
         for job_id in recovered.queued_again + overdue:
             try:
                 self.offer(job_id)
@@ -226,6 +248,14 @@ class JobRunner:
 
 class _TakenOver(Exception):
     """The job stopped being this worker's while it ran (found stale and queued again)."""
+
+    job_outcome = "taken_over"
+
+
+class _Cancelled(_TakenOver):
+    """The job was cancelled while it ran."""
+
+    job_outcome = "cancelled"
 
 
 def _survey(session: Any, name: str) -> Any:

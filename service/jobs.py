@@ -18,11 +18,11 @@ from collections.abc import Collection, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select, update
+from sqlalchemy import delete, select, update
 from sqlalchemy.orm import Session
 
 from . import store
-from .errors import JobNotDone, UnknownJob, UnknownSurvey
+from .errors import JobEnded, JobNotDone, UnknownJob, UnknownSurvey
 from .models import Job, JobKind, JobState, Survey
 
 __all__ = [
@@ -41,6 +41,9 @@ __all__ = [
     "recover_stale",
     "overdue_queued",
     "over_sync_limit",
+    "cancel",
+    "ENDED",
+    "forget_ended",
     "RECENT_LIMIT",
 ]
 
@@ -133,6 +136,42 @@ def finished_result(session: Session, job_id: str) -> tuple[JobView, str | None]
     if job.state != JobState.DONE:
         raise JobNotDone(job.id, JobState(job.state).value, job.error)
     return _view(job, survey.survey), job.result_path
+
+
+#: The states a job ends in.
+ENDED = (JobState.DONE, JobState.FAILED, JobState.CANCELLED)
+
+
+def cancel(session: Session, job_id: str, by: str, now: dt.datetime) -> JobView:
+    """Stop a queued or running job (raises :class:`UnknownJob`, and :class:`JobEnded` when it
+    has ended). A running job's worker finds out at its next stage or at the end and records
+    nothing of it (a re-screen's results are written in the transaction that would end it)."""
+    job, survey = job_or_error(session, job_id)
+    stopped = _updated(
+        session,
+        update(Job).where(Job.id == job_id, Job.state.in_((JobState.QUEUED, JobState.RUNNING)))
+        .values(state=JobState.CANCELLED, finished_at=now, heartbeat_at=now,
+                message="cancelled", error=f"cancelled by {by}"[:_MESSAGE_CHARS]),
+    )
+    session.expire(job)
+    if not stopped:
+        raise JobEnded(job_id, JobState(job.state).value)
+    return _view(job, survey.survey)
+
+
+def forget_ended(session: Session, now: dt.datetime, keep_days: float) -> list[str]:
+    """Delete the jobs that ended more than ``keep_days`` ago; their ids (the caller removes
+    their result files)."""
+    cutoff = now - dt.timedelta(days=keep_days)
+    old = list(session.scalars(
+        select(Job.id).where(Job.state.in_(ENDED), Job.finished_at < cutoff)
+    ).all())
+    for chunk in range(0, len(old), 500):  # bounded by the number found
+        session.execute(
+            delete(Job).where(Job.id.in_(old[chunk:chunk + 500]), Job.state.in_(ENDED)),
+            execution_options={"synchronize_session": False},
+        )
+    return old
 
 
 def _updated(session: Session, statement: Any) -> bool:

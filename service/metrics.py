@@ -97,12 +97,13 @@ class Metrics:
 
     @contextmanager
     def job(self, kind: str) -> Iterator[None]:
-        """Count and time one job; an exception counts it as failed and goes on."""
+        """Count and time one job; an exception counts it as failed (or as its ``job_outcome``:
+        cancelled, taken over) and goes on."""
         started = time.perf_counter()
         try:
             yield
-        except BaseException:
-            self.jobs.labels(kind, "failed").inc()
+        except BaseException as error:
+            self.jobs.labels(kind, getattr(error, "job_outcome", "failed")).inc()
             raise
         else:
             self.jobs.labels(kind, "done").inc()

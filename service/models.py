@@ -89,12 +89,14 @@ class JobKind(enum.StrEnum):
 
 
 class JobState(enum.StrEnum):
-    """Where a background job stands: ``queued`` -> ``running`` -> ``done`` or ``failed``."""
+    """Where a background job stands: ``queued`` -> ``running`` -> ``done`` or ``failed``;
+    ``cancelled`` when a person stopped it while queued or running."""
 
     QUEUED = "queued"
     RUNNING = "running"
     DONE = "done"
     FAILED = "failed"
+    CANCELLED = "cancelled"
 
 
 def _enum(kind: type[enum.Enum], name: str) -> Enum:

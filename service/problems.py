@@ -25,6 +25,7 @@ from detectors import HeedfulError, InstrumentError, ResponseDataError, SettingE
 from .errors import (
     CONFLICT_REASON,
     InvalidQuery,
+    JobEnded,
     JobNotDone,
     NoVersion,
     RespondentConflict,
@@ -208,6 +209,8 @@ def from_service(error: ServiceError) -> Problem:
         return Problem(404, str(error), kind="unknown-job")
     if isinstance(error, JobNotDone):
         return Problem(409, str(error), kind="job-not-done", state=error.state)
+    if isinstance(error, JobEnded):
+        return Problem(409, str(error), kind="job-ended", state=error.state)
     return Problem(422, str(error), kind="invalid-input")
 
 

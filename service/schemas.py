@@ -841,8 +841,8 @@ class JobOut(BaseModel):
     kind: Literal["rescreen", "report", "export", "nightly"]
     survey: str
     options: dict[str, Any]
-    state: Literal["queued", "running", "done", "failed"] = Field(
-        description="queued, running, done or failed."
+    state: Literal["queued", "running", "done", "failed", "cancelled"] = Field(
+        description="queued, running, done, failed or cancelled."
     )
     progress: float = Field(description="0 to 1, by stages.")
     message: str = Field(description="The stage reached, in a few words.")

@@ -118,6 +118,11 @@ class Settings(BaseSettings):
         default=3, ge=1,
         description="Times a job is started before a stale one is marked failed.",
     )
+    job_keep_days: float = Field(
+        default=30.0, ge=0,
+        description="A job that ended (done, failed, cancelled) is deleted with its result "
+        "file this many days later; 0 keeps them.",
+    )
     review_session_minutes: int = Field(
         default=480, ge=1, le=7 * 24 * 60,
         description="A review-page session ends this many minutes after signing in.",

@@ -9,6 +9,7 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, Response
 
 from .. import exports, jobs
+from ..db import utcnow
 from ..job_queue import JobQueue
 from ..job_runner import REPORT_FILE
 from ..jobs import JobView
@@ -138,6 +139,28 @@ def list_jobs(survey: str, caller: Reader, database: DatabaseDep) -> JobList:
 def get_job(job: str, caller: Reader, database: DatabaseDep) -> JobOut:
     with database.read() as session:
         return job_out(jobs.view(session, job))
+
+
+@router.delete(
+    "/v1/jobs/{job}",
+    operation_id="cancelJob",
+    summary="Cancel a queued or running job (the key that started it, or an admin key)",
+    description="A queued job will not start; a running one stops at its next stage and "
+    "records nothing (a re-screen writes its results only in the transaction that ends it). "
+    "409 when the job has already ended. The job stays listed as `cancelled`, with who "
+    "cancelled it in `error`.",
+    response_model=JobOut,
+    responses=errors(401, 403, 404, 409),
+)
+def cancel_job(job: str, caller: Reader, database: DatabaseDep) -> JobOut:
+    with database.write() as session:
+        found = jobs.view(session, job)
+        if caller.role != Role.ADMIN and found.requested_by != caller.name:
+            raise Problem(
+                403, "Only the key that started a job, or an admin key, can cancel it.",
+                kind="forbidden",
+            )
+        return job_out(jobs.cancel(session, job, caller.name, utcnow()))
 
 
 @router.get(

@@ -349,3 +349,74 @@ def test_a_failed_job_names_the_error_type_not_its_message(tmp_path):
         assert "r00001" not in result.text
         assert 'heedful_jobs_total{kind="export",outcome="failed"} 1.0' in client.get(
             "/metrics").text
+
+
+def test_a_queued_job_cancelled_by_the_key_that_started_it_never_runs(tmp_path):
+    url = f"sqlite:///{tmp_path / 'heedful.db'}"
+    with _app(Settings(database_url=url, job_workers=0)) as (client, keys):
+        survey = _survey_with_respondents(client, keys, n=60)
+        job = _start(client, keys["analyst"], survey, kind="report")
+        with client.app.state.database.write() as session:
+            other = store.create_key(session, "another-analyst", Role.ANALYST)
+        refused = client.delete(f"/v1/jobs/{job['id']}", headers=_auth(other))
+        assert refused.status_code == 403
+        reply = client.delete(f"/v1/jobs/{job['id']}", headers=_auth(keys["analyst"]))
+        assert reply.status_code == 200, reply.text
+        assert reply.json()["state"] == "cancelled"
+        assert reply.json()["error"].startswith("cancelled by analyst-")
+        again = client.delete(f"/v1/jobs/{job['id']}", headers=_auth(keys["admin"]))
+        assert again.status_code == 409 and again.json()["state"] == "cancelled"
+        result = client.get(f"/v1/jobs/{job['id']}/result", headers=_auth(keys["analyst"]))
+        assert result.status_code == 409 and result.json()["state"] == "cancelled"
+        assert client.delete("/v1/jobs/nosuchjob", headers=_auth(keys["admin"])).status_code == 404
+    with _app(Settings(database_url=url, job_workers=1)) as (client, keys):
+        later = _start(client, keys["analyst"], survey, kind="report")
+        assert _wait_done(client, keys["analyst"], later["id"])["state"] == "done"
+        cancelled = client.get(f"/v1/jobs/{job['id']}", headers=_auth(keys["analyst"])).json()
+        assert cancelled["state"] == "cancelled" and cancelled["attempts"] == 0
+
+
+def test_a_running_job_cancelled_stops_at_its_next_stage_and_records_nothing(tmp_path):
+    from service.job_runner import JobRunner, _Cancelled
+
+    url = f"sqlite:///{tmp_path / 'heedful.db'}"
+    with _app(Settings(database_url=url, job_workers=0)) as (client, keys):
+        survey = _survey_with_respondents(client, keys, n=60)
+        job = _start(client, keys["admin"], survey, kind="rescreen")
+        app = client.app
+        runner = JobRunner(app.state.database, app.state.settings, app.state.metrics,
+                           offer=lambda job_id: None)
+        with app.state.database.write() as session:
+            running = jobs.claim(session, job["id"], runner.worker, dt.datetime.now(dt.UTC))
+        assert running is not None
+        reply = client.delete(f"/v1/jobs/{job['id']}", headers=_auth(keys["admin"]))
+        assert reply.status_code == 200 and reply.json()["state"] == "cancelled"
+        with pytest.raises(_Cancelled):
+            runner._advance(running, 0.5, "the next stage")
+        with app.state.database.write() as session:
+            assert not jobs.finish(session, job["id"], runner.worker, dt.datetime.now(dt.UTC),
+                                   result={"x": 1})
+        shown = client.get(f"/v1/jobs/{job['id']}", headers=_auth(keys["admin"])).json()
+        assert shown["state"] == "cancelled" and shown["result"] is None
+
+
+def test_ended_jobs_and_their_files_are_deleted_after_the_keeping_days(tmp_path):
+    url = f"sqlite:///{tmp_path / 'heedful.db'}"
+    settings = Settings(database_url=url, job_workers=1, job_keep_days=30)
+    with _app(settings) as (client, keys):
+        survey = _survey_with_respondents(client, keys, n=60)
+        analyst = keys["analyst"]
+        old = _wait_done(client, analyst, _start(client, analyst, survey, kind="export")["id"])
+        new = _wait_done(client, analyst, _start(client, analyst, survey, kind="export")["id"])
+        runner = client.app.state.job_queue.runner
+        folder = runner.folder / old["id"]
+        assert folder.is_dir()
+        with client.app.state.database.write() as session:
+            session.execute(update(Job).where(Job.id == old["id"]).values(
+                finished_at=dt.datetime.now(dt.UTC) - dt.timedelta(days=31)
+            ))
+        runner.sweep()
+        assert client.get(f"/v1/jobs/{old['id']}", headers=_auth(analyst)).status_code == 404
+        assert not folder.exists()
+        kept = client.get(f"/v1/jobs/{new['id']}/result", headers=_auth(analyst))
+        assert kept.status_code == 200
