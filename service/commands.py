@@ -70,10 +70,18 @@ def cmd_worker(args: argparse.Namespace) -> int:
     settings = settings_from(args)
     logging.config.dictConfig(log_config(settings.log_level, settings.log_format == "json"))
     database = open_database(args)
-    queue = JobQueue(database, settings, Metrics())
+    metrics = Metrics()
+    queue = JobQueue(database, settings, metrics)
     prepare_process()
     where = settings.job_broker or "the queue file in the job folder"
     print(f"Heedful worker: {args.threads} thread(s) running jobs from {where}", flush=True)
+    if args.metrics_port is not None:
+        from prometheus_client import start_http_server
+
+        # The worker's own counts (jobs by kind and outcome, their durations); no key is
+        # asked for, so it listens on the loopback address unless told otherwise.
+        start_http_server(args.metrics_port, addr=args.metrics_host, registry=metrics.registry)
+        print(f"  metrics: http://{args.metrics_host}:{args.metrics_port}/metrics", flush=True)
     try:
         queue.run_worker(args.threads)
     finally:
@@ -358,6 +366,14 @@ def register(subparsers: Any) -> None:
     )
     p.add_argument(
         "--threads", type=int, default=1, help="jobs run at once (default: %(default)s)"
+    )
+    p.add_argument(
+        "--metrics-port", type=int, metavar="PORT",
+        help="serve the worker's job metrics (Prometheus text) on this port, without a key",
+    )
+    p.add_argument(
+        "--metrics-host", default="127.0.0.1",
+        help="address of --metrics-port (default: %(default)s; only expose it to the scraper)",
     )
     add_database_option(p)
     p.set_defaults(func=guard(cmd_worker))

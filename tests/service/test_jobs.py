@@ -14,6 +14,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
+import httpx
 import pytest
 from sqlalchemy import update
 
@@ -23,7 +24,7 @@ from service.models import Job, JobKind, Role
 from service.settings import Settings
 
 from .conftest import TestClient, make_document, postgres_schema, random_rows
-from .live_server import heedful_command
+from .live_server import free_port, heedful_command
 
 #: Longest wait for a job (seconds); a job of a few hundred respondents takes a few seconds.
 JOB_SECONDS = 120
@@ -289,9 +290,13 @@ def test_two_apps_and_a_worker_share_jobs_over_redis_and_postgresql(postgres_sch
             env = {**os.environ, "HEEDFUL_DATABASE_URL": postgres_schema_url,
                    "HEEDFUL_JOB_BROKER": REDIS_URL, "HEEDFUL_JOB_QUEUE_NAME": name,
                    "HEEDFUL_JOB_FOLDER": shared["job_folder"], "HEEDFUL_LOG_FORMAT": "json"}
+            metrics_port = free_port()
             with log.open("wb") as out:
-                worker = subprocess.Popen([*heedful_command(), "worker", "--threads", "2"], env=env,
-                                          stdout=out, stderr=subprocess.STDOUT)
+                worker = subprocess.Popen(
+                    [*heedful_command(), "worker", "--threads", "2",
+                     "--metrics-port", str(metrics_port)],
+                    env=env, stdout=out, stderr=subprocess.STDOUT,
+                )
             started = []
             for i in range(8):
                 client = first if i % 2 == 0 else second
@@ -313,6 +318,12 @@ def test_two_apps_and_a_worker_share_jobs_over_redis_and_postgresql(postgres_sch
             while first.app.state.job_queue.waiting() and time.monotonic() < deadline:
                 time.sleep(0.2)  # the duplicate messages are read and dropped
             assert first.app.state.job_queue.waiting() == 0
+            # The worker's own counts, from its metrics port.
+            text = httpx.get(f"http://127.0.0.1:{metrics_port}/metrics", timeout=10).text
+            counted_by_worker = sum(
+                float(line.rsplit(" ", 1)[1]) for line in text.splitlines()
+                if line.startswith("heedful_jobs_total{") and 'outcome="done"' in line
+            )
             worker.terminate()
             worker.wait(timeout=90)
             lines = [json.loads(line) for line in log.read_text().splitlines()
@@ -320,6 +331,7 @@ def test_two_apps_and_a_worker_share_jobs_over_redis_and_postgresql(postgres_sch
             runs_in_worker = sum(1 for line in lines if line.get("event") == "job-started")
             # Each job ran exactly once, wherever it ran.
             assert runs_in_apps + runs_in_worker == 8, (runs_in_apps, runs_in_worker)
+            assert counted_by_worker == runs_in_worker
             second_result = second.get(f"/v1/jobs/{started[0]}/result",
                                        headers=_auth(keys["analyst"]))
             assert second_result.status_code == 200
