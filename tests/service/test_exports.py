@@ -463,3 +463,25 @@ def test_an_export_from_a_shared_read_equals_one_read_on_its_own(service, stored
         together, _ = exports.export_frame(session, survey, without=without, stored=shared)
     assert len(alone) == len(together) > 0
     pd.testing.assert_frame_equal(alone, together)
+
+
+@pytest.mark.parametrize("fmt", ["sav", "dta"])
+def test_the_polars_frame_gives_the_file_pyreadstat_writes_from_pandas(
+    service, stored, tmp_path, fmt, monkeypatch
+):
+    """The writer's fast input (a polars frame) against pyreadstat's own pandas path: both
+    files read back to the same values, variable types, formats, labels and value labels."""
+    from service import stat_files
+
+    with service.database.read() as session:
+        survey = store.get_survey(session, "pulse")
+        exports.write_export(session, survey, fmt, tmp_path / f"fast.{fmt}")
+        monkeypatch.setattr(stat_files, "for_writer", lambda frame: frame)
+        exports.write_export(session, survey, fmt, tmp_path / f"plain.{fmt}")
+    fast, fast_meta = _read(tmp_path / f"fast.{fmt}", fmt)
+    plain, plain_meta = _read(tmp_path / f"plain.{fmt}", fmt)
+    pd.testing.assert_frame_equal(fast, plain)
+    for attribute in ("original_variable_types", "readstat_variable_types", "column_names_to_labels",
+                      "variable_value_labels", "variable_measure", "file_label"):
+        assert getattr(fast_meta, attribute) == getattr(plain_meta, attribute), attribute
+    assert fast.isna().to_numpy().any()  # missing values were written (as missing)
