@@ -333,3 +333,26 @@ def test_the_screening_report_renders_with_every_picture(browser, demo, tmp_path
     assert pictures and all(done and width > 0 for done, width in pictures)
     assert "not a verdict" in browser.find_element(By.TAG_NAME, "body").text
     screenshot(browser, "report", tmp_path)
+
+
+def test_the_pages_reflow_in_a_narrow_window(browser, demo):
+    """No page needs sideways scrolling in a narrow window; wide tables and the drawing scroll
+    inside regions of their own (WCAG 2.2 "Reflow", approximated at the browser's narrowest
+    window)."""
+    signed_in(browser, demo)
+    victim = queue_victim(demo)
+    browser.set_window_size(500, 1000)
+    try:
+        for path in (
+            "/review/surveys", f"/review/surveys/{demo.survey}?review=",
+            f"/review/surveys/{demo.survey}/respondents/{victim}",
+        ):
+            browser.get(demo.url + path)
+            wait_for(browser, ready.presence_of_element_located((By.TAG_NAME, "h1")))
+            scroll, client = browser.execute_script(
+                "return [document.documentElement.scrollWidth, "
+                "document.documentElement.clientWidth]"
+            )
+            assert scroll <= client, (path, scroll, client)
+    finally:
+        browser.set_window_size(1440, 1100)
