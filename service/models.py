@@ -200,7 +200,9 @@ class Respondent(Base):
         UniqueConstraint("survey_id", "respondent_id"),
         Index("ix_respondents_received", "survey_id", "received_at", "id"),
         Index("ix_respondents_flag_count", "survey_id", "flag_count", "id"),
-        Index("ix_respondents_careless_score", "survey_id", "careless_score", "id"),
+        Index(
+            "ix_respondents_careless_score", "survey_id", "careless_score", "flag_count", "id"
+        ),
     )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)

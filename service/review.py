@@ -315,13 +315,11 @@ def neighbours(
     _check(query)
     found_survey = find_survey(session, survey)
     found = find_respondent(session, found_survey, respondent)
-    field = query.sort.lstrip("-")
-    value = getattr(found, field)
-    if value is None:
+    if getattr(found, query.sort.lstrip("-")) is None:
         return None, None
     around = []
     for sort in (query.sort[1:] if query.sort.startswith("-") else f"-{query.sort}", query.sort):
-        cursor = store.Cursor(sort, value, found.id).encode()
+        cursor = store.Cursor.after(sort, found).encode()
         rows, _ = store.list_respondents(
             session, found_survey.id, replace(query, sort=sort, cursor=cursor, limit=1)
         )

@@ -470,7 +470,8 @@ class Cursor:
             elif field == "flag_count":
                 value = _within(int(value), LARGEST_SMALLINT)
             elif field == "careless_score":
-                value = float(value)
+                score, flags = value  # ties broken by the flag count
+                value = [float(score), _within(int(flags), LARGEST_SMALLINT)]
             else:
                 value = str(value)
                 if "\x00" in value:
@@ -479,6 +480,16 @@ class Cursor:
         except (TypeError, ValueError, OverflowError) as error:
             raise BadCursor("the cursor is not one this service issued") from error
         return cls(sort, value, pk)
+
+    @classmethod
+    def after(cls, sort: str, row: Any) -> Cursor:
+        """The cursor that lists what comes after ``row`` (a respondent, or a listed row) in
+        the order ``sort`` names."""
+        field = sort.lstrip("-")
+        value = getattr(row, field)
+        if field == "careless_score":
+            value = [value, row.flag_count]
+        return cls(sort, value, row.id)
 
 
 #: Largest values of the SmallInteger and Integer columns (flag count, row id) compared with
@@ -554,22 +565,34 @@ def list_respondents(
         statement = statement.where(Respondent.received_at >= query.received_after)
     if query.received_before is not None:
         statement = statement.where(Respondent.received_at < query.received_before)
+    # Careless scores tie often (a percentile among the reference's respondents: everyone
+    # beyond the reference's most suspect shares the top value): ties go by the flag count.
+    keys = [column, Respondent.flag_count] if column is Respondent.careless_score else [column]
     if query.cursor is not None:
         cursor = Cursor.decode(query.cursor, query.sort)
-        same = column == cursor.value
-        if descending:
-            after = or_(column < cursor.value, and_(same, Respondent.id < cursor.pk))
-        else:
-            after = or_(column > cursor.value, and_(same, Respondent.id > cursor.pk))
-        statement = statement.where(after)
-    order = (column.desc(), Respondent.id.desc()) if descending else (column, Respondent.id)
-    rows = list(session.execute(statement.order_by(*order).limit(query.limit + 1)))
+        values = cursor.value if len(keys) > 1 else [cursor.value]
+        statement = statement.where(_after(keys, values, cursor.pk, descending))
+    order = [*keys, Respondent.id]
+    rows = list(session.execute(
+        statement.order_by(*(c.desc() for c in order) if descending else order)
+        .limit(query.limit + 1)
+    ))
     next_cursor = None
     if len(rows) > query.limit:
         rows = rows[: query.limit]
-        last = rows[-1]
-        next_cursor = Cursor(query.sort, getattr(last, column.key), last.id).encode()
+        next_cursor = Cursor.after(query.sort, rows[-1]).encode()
     return rows, next_cursor
+
+
+def _after(keys: Sequence[Any], values: Sequence[Any], pk: int, descending: bool) -> Any:
+    """The keyset condition: rows that come after (``values``, ``pk``) in the order of
+    ``keys`` then the row id."""
+    beyond = (lambda c, v: c < v) if descending else (lambda c, v: c > v)
+    columns, bounds = [*keys, Respondent.id], [*values, pk]
+    return or_(*(
+        and_(*(columns[j] == bounds[j] for j in range(i)), beyond(columns[i], bounds[i]))
+        for i in range(len(columns))
+    ))
 
 
 def get_respondent(session: Session, survey_id: int, respondent_id: str) -> Respondent | None:

@@ -98,7 +98,8 @@ def list_respondents(
         Sort,
         Query(
             description="Sort key; a leading '-' sorts descending. Sorting by careless_score "
-            "lists only respondents that have one (screened against a reference sample)."
+            "lists only respondents that have one (screened against a reference sample), "
+            "equal scores by flag count (the same direction)."
         ),
     ] = "-flag_count",
     limit: Annotated[int, Query(ge=1, description="Rows per page.")] = 100,

@@ -313,3 +313,18 @@ def test_a_review_note_with_a_nul_is_refused(service, filled):
     )
     assert reply.status_code == 422, reply.text
     assert [e["pointer"] for e in reply.json()["errors"]] == ["#/note"]
+
+
+def test_careless_score_ties_go_by_flag_count_across_pages(service, filled):
+    """Equal careless scores are common (a percentile among the reference's respondents);
+    such respondents are listed by flag count, most first, and paging keeps that order."""
+    assert service.client.post(
+        f"{BASE}/rescreen", headers=service.auth(service.admin)
+    ).status_code == 200
+    for sort, sign in (("-careless_score", -1), ("careless_score", 1)):
+        rows = _all_pages(service, limit=3, sort=sort)
+        tied = [r for r in rows if [x["careless_score"] for x in rows].count(r["careless_score"]) > 1]
+        assert len({r["flag_count"] for r in tied}) > 1  # ties that the flag count orders
+        keys = [(sign * r["careless_score"], sign * r["flag_count"]) for r in rows]
+        assert keys == sorted(keys)
+        assert len({r["respondent_id"] for r in rows}) == len(rows) == len(filled)
