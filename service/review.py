@@ -40,6 +40,7 @@ __all__ = [
     "find_respondent",
     "respondents_page",
     "respondent_detail",
+    "detail_of",
     "record_review",
     "SurveyTally",
     "survey_tallies",
@@ -111,7 +112,11 @@ def _split(flags: str) -> list[str]:
 def respondent_detail(session: Session, survey: str, respondent: str) -> RespondentDetail:
     """Everything a reviewer reads about one respondent (answers, results, reviews, history)."""
     found_survey = find_survey(session, survey)
-    found = find_respondent(session, found_survey, respondent)
+    return detail_of(session, found_survey, find_respondent(session, found_survey, respondent))
+
+
+def detail_of(session: Session, found_survey: Survey, found: Respondent) -> RespondentDetail:
+    """:func:`respondent_detail` of a survey and respondent already found."""
     numbers = store.version_numbers(session, found_survey.id)
     results = outcomes.results_of(session, found)
     codes = outcomes.detector_codes(session)
@@ -307,14 +312,12 @@ def has_careless_scores(session: Session, survey: Survey) -> bool:
 
 
 def neighbours(
-    session: Session, survey: str, respondent: str, query: store.ListQuery
+    session: Session, found_survey: Survey, found: Respondent, query: store.ListQuery
 ) -> tuple[str | None, str | None]:
-    """The respondents before and after ``respondent`` in the listing ``query`` describes
-    (its filters and sort; its cursor and limit are ignored): (previous, next), None at an end
-    or when the respondent is not in that listing's order (a sort value it lacks)."""
+    """The respondents before and after ``found`` in the listing ``query`` describes (its
+    filters and sort; its cursor and limit are ignored): (previous, next), None at an end or
+    when the respondent is not in that listing's order (a sort value it lacks)."""
     _check(query)
-    found_survey = find_survey(session, survey)
-    found = find_respondent(session, found_survey, respondent)
     if getattr(found, query.sort.lstrip("-")) is None:
         return None, None
     around = []

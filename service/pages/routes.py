@@ -28,6 +28,7 @@ from fastapi import APIRouter, Depends, FastAPI, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
+from pydantic import ValidationError
 
 from detectors import REGISTRY, Instrument
 
@@ -35,8 +36,9 @@ from .. import review, screeners, store, web_sessions
 from ..api.common import EVIDENCE_NOTE
 from ..api.deps import DatabaseDep, SettingsDep
 from ..errors import InvalidQuery, ServiceError, SignInRefused
-from ..models import Decision
+from ..models import Decision, Survey
 from ..problems import from_service, note_refusal
+from ..schemas import ReviewIn
 from .drawing import answer_pattern_svg, highlights_from
 
 __all__ = ["router", "install", "PREFIX", "SESSION_COOKIE", "QueueFilter"]
@@ -44,8 +46,6 @@ __all__ = ["router", "install", "PREFIX", "SESSION_COOKIE", "QueueFilter"]
 PREFIX = "/review"
 SESSION_COOKIE = "heedful_review"
 SIGN_IN_COOKIE = "heedful_sign_in"
-#: Longest note of a review (as the API's).
-NOTE_LENGTH = 5000
 #: Respondents per queue page.
 QUEUE_PAGE = 25
 
@@ -339,9 +339,11 @@ def _midnight(day: dt.date) -> dt.datetime:
     return dt.datetime.combine(day, dt.time(), tzinfo=dt.UTC)
 
 
-def _default_sort(session: Any, survey: str) -> str:
-    found = review.find_survey(session, survey)
-    return "-careless_score" if review.has_careless_scores(session, found) else "-flag_count"
+def _default_sort(session: Any, found_survey: Survey) -> str:
+    """The queue's order unless one is chosen: careless score where the survey has them."""
+    if review.has_careless_scores(session, found_survey):
+        return "-careless_score"
+    return "-flag_count"
 
 
 @router.get("/surveys/{survey}", response_class=HTMLResponse)
@@ -353,8 +355,9 @@ def queue_page(
     page = None
     with database.read() as session:
         try:
-            default_sort = _default_sort(session, survey)
-            tally = review.survey_tallies(session, review.find_survey(session, survey))[0]
+            found_survey = review.find_survey(session, survey)
+            default_sort = _default_sort(session, found_survey)
+            tally = review.survey_tallies(session, found_survey)[0]
             try:
                 query = chosen.list_query(default_sort, cursor)
                 page = review.respondents_page(session, survey, query)
@@ -376,19 +379,18 @@ def queue_page(
 def _respondent_context(
     session: Any, survey: str, respondent: str, chosen: QueueFilter
 ) -> dict[str, Any]:
-    detail = review.respondent_detail(session, survey, respondent)
     found_survey = review.find_survey(session, survey)
     found = review.find_respondent(session, found_survey, respondent)
+    detail = review.detail_of(session, found_survey, found)
     instrument: Instrument = screeners.screener_for(session, found.survey_version_id).instrument
     highlights = highlights_from(detail.results, instrument)
     drawing = answer_pattern_svg(
         instrument, detail.answers, highlights,
         title=f"Answers of respondent {respondent} in the order they were asked",
     )
-    default_sort = _default_sort(session, survey)
     try:
         previous, following = review.neighbours(
-            session, survey, respondent, chosen.list_query(default_sort)
+            session, found_survey, found, chosen.list_query(_default_sort(session, found_survey))
         )
     except InvalidQuery:
         previous, following = None, None
@@ -473,29 +475,27 @@ def record_decision(
             request, survey, respondent, who, database, chosen, status=422,
             message="Choose a decision (keep, exclude or undecided) before recording.",
         )
-    if len(note) > NOTE_LENGTH:
+    try:  # the API's rules for a review, in one place
+        checked = ReviewIn.model_validate({"decision": decision, "note": note})
+    except ValidationError as error:
+        first = error.errors()[0]
         return _respondent_page(
             request, survey, respondent, who, database, chosen, status=422,
-            message=f"The note is {len(note)} characters long; a note holds at most "
-            f"{NOTE_LENGTH}. Nothing was recorded.",
-        )
-    if "\x00" in note:
-        return _respondent_page(
-            request, survey, respondent, who, database, chosen, status=422,
-            message="The note holds a NUL character; remove it and record again.",
+            message=f"The {first['loc'][-1]} was not recorded: {first['msg']}.",
         )
     with database.write() as session:
         try:
-            review.record_review(session, survey, respondent, Decision(decision), note, who.name)
+            review.record_review(
+                session, survey, respondent, Decision(checked.decision), checked.note, who.name
+            )
+            found_survey = review.find_survey(session, survey)
+            found = review.find_respondent(session, found_survey, respondent)
         except ServiceError as error:
             return _error_page(request, error, who)
-    with database.read() as session:
         try:
-            default_sort = _default_sort(session, survey)
-            _, following = review.neighbours(
-                session, survey, respondent, chosen.list_query(default_sort)
-            )
-        except ServiceError:
+            query = chosen.list_query(_default_sort(session, found_survey))
+            _, following = review.neighbours(session, found_survey, found, query)
+        except InvalidQuery:
             following = None
     queue_text = chosen.query_string()
     recorded = urlencode([("recorded", respondent)])

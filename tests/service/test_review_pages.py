@@ -254,7 +254,7 @@ def test_reviews_are_recorded_and_read_through_one_set_of_use_cases():
         ), edge
         assert edge in callers.get("review_cases.respondent_detail", set()) | callers.get(
             "review.respondent_detail", set()
-        ), edge
+        ) | callers.get("review.detail_of", set()), edge
 
 
 def _numbers(text: str) -> list[int]:
@@ -287,3 +287,20 @@ def test_survey_counts_add_up_and_follow_decisions_at_once(service, filled):
     after = _numbers(client.get(f"{PREFIX}/surveys").text)
     assert after[1] == waiting - 1
     assert after[6:] == [0, 1, 0, 32]  # keep, exclude, undecided, not reviewed
+
+
+@pytest.mark.parametrize("note,words", [("x" * 5001, "at most 5000"), ("a\x00b", "note")])
+def test_a_note_the_api_would_refuse_is_refused_on_the_page_too(service, filled, note, words):
+    client = service.client
+    sign_in(client, service.analyst)
+    page = client.get(f"{PREFIX}/surveys/{filled}/respondents/same2")
+    reply = client.post(
+        f"{PREFIX}/surveys/{filled}/respondents/same2",
+        data={"decision": "keep", "note": note, "form_token": form_token(page.text)},
+        follow_redirects=False,
+    )
+    assert reply.status_code == 422 and words in reply.text
+    detail = client.get(
+        f"/v1/surveys/{filled}/respondents/same2", headers=service.auth(service.analyst)
+    ).json()
+    assert detail["reviews"] == []
